@@ -1,0 +1,624 @@
+"""An active-inference agent for fixed-base arms: perception and action on one free energy.
+
+Generative model
+----------------
+The belief ``z`` holds the joint angles in generalized coordinates up to embedding order
+``p`` (order-major, shape ``(p + 1, n)``). Sensations:
+
+* ``joint_angle``: encoder angles, ``y = q + z_q`` (observes order 0);
+* ``joint_velocity``: encoder velocities, ``y = q' + z_v`` (observes order 1);
+* ``camera``: pixel coordinates of the tool tip, ``y = pi(T fk(q)) + z_px`` (order 0), present
+  only on fresh frames in which the tip is visible;
+* ``motor`` (velocity control): the motors track the last command, ``q' ~ a`` (an efference
+  copy, order 1).
+
+Prior dynamics are generalized motion ``z' = D z`` with white jerk (random-walk noise on the
+highest order), and -- in ``goal="prior"`` mode -- an attractor on the velocity (velocity
+control) or acceleration (torque control):
+
+    q' = f(q) = J+(q) k sat(x_target - fk(q)) + k_null (I - J+ J)(q_home - q),
+
+``J+`` the damped least-squares inverse of the tip Jacobian (Wampler 1986, IEEE Trans SMC;
+Nakamura & Hanafusa 1986, J Dyn Syst Meas Control). In ``goal="reference"`` mode the belief
+carries no goal (it stays an unbiased estimate) and the attractor is a reference that only the
+action sees.
+
+Perception
+----------
+Each control step the belief is moved by its generalized motion over ``dt`` -- the flow
+``D z`` integrated exactly by local linearisation (Ozaki 1992, Statistica Sinica 2), which for
+this linear flow is ``expm(D dt)`` (``integration="euler"`` uses ``I + D dt``) -- and then by one
+Gauss-Newton step on the Laplace-encoded free energy
+
+    F(z) = 1/2 (z - z-)' Pi- (z - z-) + sum_m 1/2 e_m' P_m e_m - 1/2 sum_m ln|P_m|
+
+(Friston 2008, PLoS Comput Biol, eq. 9; Buckley et al. 2017, J Math Psychol, sec. 5), where
+``Pi-`` is the prior precision carried forward from the last step's curvature (the Laplace
+approximation, Friston et al. 2010, "Generalised filtering", Math Probl Eng, eq. 10). The step
+``dz = -inv(H) dF/dz`` uses the curvature ``H = Pi- + sum G' P G``; its inverse is the belief's
+covariance, used for the next prior and for the ``belief_sd`` diagnostic.
+
+Action
+------
+Action descends the same free energy through the predicted sensations, with the step
+preconditioned by the curvature with respect to the action (a Newton step). Under velocity
+control ``dy_velocity/da = I``, so the step sets the command to the velocity the agent
+believes in (``goal="prior"``) or to the attractor's velocity (``goal="reference"``). Under
+torque control the forward model is rigid-body dynamics, ``dq''/dtau = inv(M(q))``, and the
+Newton step turns ``inv(M)`` into ``M``: ``tau = M(q) q''_wanted + h(q, q')``.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from math import factorial
+from typing import Any
+
+import numpy as np
+from scipy.linalg import expm
+from scipy.linalg.lapack import dpotrf, dpotri
+from scipy.stats import chi2
+
+from blanket.description import ArmDescription
+from blanket.errors import ConfigError
+from blanket.model import BodyState, ModelTerm, Term
+
+__all__ = ["ArmAgent", "AgentOptions", "torque_action_free_energy"]
+
+_GOALS = ("prior", "reference")
+_INTEGRATIONS = ("ozaki", "euler")
+
+
+class AgentOptions:
+    """Options of :class:`ArmAgent`, with their defaults and allowed ranges.
+
+    Every option is a keyword of :meth:`ArmAgent.from_env` and a key of a scenario file's
+    ``[agent]`` table. Unknown names raise :class:`~blanket.errors.ConfigError`.
+    """
+
+    defaults: dict[str, Any] = {
+        "order": 2,
+        "goal": "prior",
+        "integration": "ozaki",
+        "attractor_gain_1_s": 4.0,
+        "max_tip_speed_m_s": 0.6,
+        "damping_m": 0.02,
+        "posture_gain_1_s": 0.5,
+        "velocity_gain_1_s": 25.0,
+        "joint_angle_precision": None,
+        "joint_velocity_precision": None,
+        "camera_precision": None,
+        "motor_precision": None,
+        "goal_precision": None,
+        "jerk_intensity": 50.0,
+        "action_fraction": 1.0,
+        "learn_precision": False,
+        "precision_learning_rate": 0.5,
+        "fault_detection": False,
+        "fault_window_s": 0.1,
+        "fault_false_alarm": 1e-7,
+        "length_scale": 1.0,
+        "mass_scale": 1.0,
+        "payload_kg": 0.0,
+        "divergence_limit": 1e3,
+    }
+
+    @classmethod
+    def resolve(cls, options: Mapping[str, Any]) -> dict[str, Any]:
+        unknown = sorted(set(options) - set(cls.defaults))
+        if unknown:
+            raise ConfigError(
+                f"unknown agent option {unknown[0]!r}; valid options: {', '.join(cls.defaults)}"
+            )
+        out = dict(cls.defaults)
+        out.update(options)
+        order = out["order"]
+        if not isinstance(order, int | np.integer) or not 0 < int(order) <= 6:
+            raise ConfigError(f"agent option order must be a whole number in 1..6, got {order!r}")
+        if out["goal"] not in _GOALS:
+            raise ConfigError(f"agent option goal must be one of {_GOALS}, got {out['goal']!r}")
+        if out["integration"] not in _INTEGRATIONS:
+            raise ConfigError(
+                f"agent option integration must be one of {_INTEGRATIONS}, "
+                f"got {out['integration']!r}"
+            )
+        for key in (
+            "attractor_gain_1_s",
+            "max_tip_speed_m_s",
+            "velocity_gain_1_s",
+            "jerk_intensity",
+            "length_scale",
+            "mass_scale",
+            "fault_window_s",
+            "divergence_limit",
+        ):
+            v = out[key]
+            if not isinstance(v, int | float) or not np.isfinite(v) or v <= 0:
+                raise ConfigError(f"agent option {key} must be a number > 0, got {v!r}")
+        for key in ("damping_m", "posture_gain_1_s", "payload_kg", "precision_learning_rate"):
+            v = out[key]
+            if not isinstance(v, int | float) or not np.isfinite(v) or v < 0:
+                raise ConfigError(f"agent option {key} must be a number >= 0, got {v!r}")
+        v = out["action_fraction"]
+        if not isinstance(v, int | float) or not 0 < v <= 1:
+            raise ConfigError(f"agent option action_fraction must be in (0, 1], got {v!r}")
+        v = out["fault_false_alarm"]
+        if not isinstance(v, int | float) or not 0 < v < 0.5:
+            raise ConfigError(f"agent option fault_false_alarm must be in (0, 0.5), got {v!r}")
+        for key in (
+            "joint_angle_precision",
+            "joint_velocity_precision",
+            "camera_precision",
+            "motor_precision",
+            "goal_precision",
+        ):
+            v = out[key]
+            if v is not None and (not isinstance(v, int | float) or not np.isfinite(v) or v <= 0):
+                raise ConfigError(f"agent option {key} must be a number > 0 or omitted, got {v!r}")
+        out["order"] = int(order)
+        return out
+
+
+def _shift_taylor(order: int, dt: float, integration: str) -> np.ndarray:
+    """Transition of generalized motion over ``dt`` for one joint, shape (p+1, p+1)."""
+    D = np.eye(order + 1, k=1)
+    if integration == "euler":
+        return np.eye(order + 1) + D * dt
+    return expm(D * dt)
+
+
+def _jerk_covariance(order: int, dt: float, intensity: float) -> np.ndarray:
+    """Discrete covariance of white noise of ``intensity`` driving the highest order.
+
+    Van Loan's method in closed form for the integrator chain: the (i, j) entry (orders
+    counted down from the highest, ``a = p - i``, ``b = p - j``) is
+    ``q dt^(a+b+1) / ((a+b+1) a! b!)`` (Van Loan 1978, IEEE Trans Autom Control 23(3)).
+    """
+    W = np.zeros((order + 1, order + 1))
+    for i in range(order + 1):
+        for j in range(order + 1):
+            a, b = order - i, order - j
+            W[i, j] = intensity * dt ** (a + b + 1) / ((a + b + 1) * factorial(a) * factorial(b))
+    return W
+
+
+def torque_action_free_energy(
+    tau: np.ndarray,
+    mass_matrix: np.ndarray,
+    nonlinear: np.ndarray,
+    wanted_acceleration: np.ndarray,
+    precision: np.ndarray,
+) -> tuple[float, np.ndarray]:
+    """Free energy of the predicted acceleration under torque ``tau``, and ``dF/dtau``.
+
+    The forward model is rigid-body dynamics, ``q'' = inv(M) (tau - h)`` (Featherstone 2008,
+    *Rigid Body Dynamics Algorithms*, eq. 1.1), so with ``e = q''_wanted - q''(tau)``:
+    ``F = 1/2 e' P e`` and ``dF/dtau = -inv(M)' P e``. The curvature is
+    ``inv(M)' P inv(M)``; the Newton step ``-inv(curvature) dF/dtau`` lands on
+    ``tau = h + M q''_wanted``.
+    """
+    Minv = np.linalg.inv(mass_matrix)
+    e = wanted_acceleration - Minv @ (tau - nonlinear)
+    P = np.diag(precision) if np.ndim(precision) == 1 else np.asarray(precision)
+    return 0.5 * float(e @ P @ e), -Minv.T @ P @ e
+
+
+class ArmAgent:
+    """Active-inference reaching agent; see the module docstring for the model.
+
+    Build it with :meth:`from_env`. It reads only the env's static
+    :class:`~blanket.description.ArmDescription` and the observations passed to :meth:`act`.
+    """
+
+    def __init__(
+        self,
+        description: ArmDescription,
+        extra_terms: Sequence[ModelTerm] = (),
+        **options: Any,
+    ) -> None:
+        from blanket.body import ArmModel
+
+        opts = AgentOptions.resolve(options)
+        self.options = opts
+        self.description = description
+        self.body = ArmModel.from_urdf(
+            description.urdf_path,
+            description.end_effector,
+            joint_names=description.joint_names,
+            length_scale=float(opts["length_scale"]),
+            mass_scale=float(opts["mass_scale"]),
+            payload_kg=float(opts["payload_kg"]),
+        )
+        self.n = n = description.n_joints
+        self.order = p = opts["order"]
+        self.size = (p + 1) * n
+        self.dt = description.control_dt
+        self.control = description.control
+        self.camera = description.camera
+        self.extra_terms = list(extra_terms)
+
+        sq = max(description.encoder_angle_noise_rad, 1e-6)
+        sv = max(description.encoder_velocity_noise_rad_s, 1e-6)
+        self.precision = {
+            "joint_angle": np.full(n, opts["joint_angle_precision"] or 1.0 / sq**2),
+            "joint_velocity": np.full(n, opts["joint_velocity_precision"] or 1.0 / sv**2),
+            "camera": np.full(
+                2,
+                opts["camera_precision"]
+                or (1.0 / max(self.camera.pixel_noise_px, 1e-3) ** 2 if self.camera else 0.0),
+            ),
+        }
+        self.motor_precision = float(opts["motor_precision"] or 1.0 / (0.5 * sv) ** 2)
+        self.goal_precision = float(opts["goal_precision"] or 1.0 / (2.0 * sv) ** 2)
+        self._initial_precision = {k: v.copy() for k, v in self.precision.items()}
+
+        # Generalized motion and its noise, shared by every joint (kron with I_n).
+        phi_t = _shift_taylor(p, self.dt, opts["integration"])
+        w_t = _jerk_covariance(p, self.dt, float(opts["jerk_intensity"]))
+        w_t += np.diag(np.full(p + 1, 1e-12))
+        eye = np.eye(n)
+        self._phi = np.kron(phi_t, eye)
+        self._w = np.kron(w_t, eye)
+        # Encoder terms have constant Jacobians: precompute their curvature.
+        self._sel = [slice(k * n, (k + 1) * n) for k in range(p + 1)]
+        self._channel_names = ["joint_angle", "joint_velocity", "camera", "motor", "goal"]
+        self._fault_threshold = {}
+        self._fault_alpha = 1.0 - np.exp(-self.dt / float(opts["fault_window_s"]))
+        w_eff = max(1.0, 2.0 / self._fault_alpha - 1.0)  # effective samples of the EWMA
+        for name, dof in (("joint_angle", 1), ("joint_velocity", 1), ("camera", 2)):
+            # Innovation test (Bar-Shalom, Li & Kirubarajan 2001, sec. 5.4.2): the windowed
+            # mean of normalized innovations is ~ chi2(w m) / w under no fault.
+            self._fault_threshold[name] = (
+                chi2.ppf(1.0 - float(opts["fault_false_alarm"]), w_eff * dof) / w_eff
+            )
+        self.reset()
+
+    # -- construction -------------------------------------------------------------------
+    @classmethod
+    def from_env(cls, env: Any, extra_terms: Sequence[ModelTerm] = (), **options: Any) -> ArmAgent:
+        """Build an agent from an env's static description (never its simulator state)."""
+        description = getattr(env.unwrapped, "description", None)
+        if not isinstance(description, ArmDescription):
+            raise ConfigError(
+                f"env {type(env.unwrapped).__name__} has no ArmDescription; "
+                "ArmAgent needs an arm env such as blanket/arm-reach-v0"
+            )
+        return cls(description, extra_terms=extra_terms, **options)
+
+    # -- episode state ------------------------------------------------------------------
+    def reset(self) -> None:
+        """Forget the episode: the next observation re-initialises the belief."""
+        self._belief: np.ndarray | None = None
+        self._cov = np.zeros((self.size, self.size))
+        self._action = np.zeros(self.n)
+        self._home = np.zeros(self.n)
+        self.precision = {k: v.copy() for k, v in self._initial_precision.items()}
+        self._fault_stat = {k: np.zeros(self.n if k != "camera" else 1) for k in self._fault_threshold}
+        self._fault = {k: np.zeros_like(v, dtype=bool) for k, v in self._fault_stat.items()}
+        self._diag: dict[str, Any] = {}
+        self._safe_stop_reason = ""
+        self._last_finite_q = np.zeros(self.n)
+
+    def _initialise(self, obs: Mapping[str, Any]) -> None:
+        n, p = self.n, self.order
+        q = np.asarray(obs["joint_angle_rad"], dtype=float)
+        v = np.asarray(obs["joint_velocity_rad_s"], dtype=float)
+        z = np.zeros((p + 1, n))
+        z[0] = q
+        z[1] = v
+        self._belief = z.reshape(-1)
+        var = np.empty(self.size)
+        var[self._sel[0]] = 1.0 / self.precision["joint_angle"]
+        var[self._sel[1]] = 1.0 / self.precision["joint_velocity"]
+        for k in range(2, p + 1):
+            var[self._sel[k]] = 10.0 ** (2 * k)
+        self._cov = np.diag(var)
+        self._home = q.copy()
+        self._last_finite_q = q.copy()
+        self._action = v.copy() if self.control == "velocity" else np.zeros(n)
+
+    # -- the attractor ------------------------------------------------------------------
+    def attractor(
+        self, q: np.ndarray, body: BodyState, target: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """Joint velocity the goal asks for, and its Jacobian with respect to ``q``.
+
+        ``f(q) = J+ k sat(x* - x) + k_null (I - J+ J)(q_home - q)`` with the damped
+        least-squares inverse ``J+ = J' inv(J J' + lambda^2 I)`` (Wampler 1986, IEEE Trans SMC
+        16(1), eq. 7). The Jacobian ignores the derivative of ``J`` (Gauss-Newton).
+        """
+        opts = self.options
+        J = body.tip_jacobian
+        err = target - body.tip_position_m
+        k = opts["attractor_gain_1_s"]
+        vel = k * err
+        speed = float(np.sqrt(vel @ vel))
+        vmax = opts["max_tip_speed_m_s"]
+        scale = vmax / speed if speed > vmax else 1.0
+        lam2 = opts["damping_m"] ** 2
+        JJt = J @ J.T
+        JJt[np.diag_indices(3)] += lam2
+        Jpinv = J.T @ np.linalg.inv(JJt)
+        JpJ = Jpinv @ J
+        null = np.eye(self.n) - JpJ
+        kn = opts["posture_gain_1_s"]
+        f = Jpinv @ (vel * scale) + kn * (null @ (self._home - q))
+        F = -k * scale * JpJ - kn * null
+        return f, F
+
+    # -- one step -----------------------------------------------------------------------
+    def act(self, obs: Mapping[str, Any]) -> np.ndarray:
+        """Update the belief from ``obs`` and return the next command."""
+        if self._belief is None:
+            self._initialise(obs)
+        try:
+            action = self._step(obs)
+        except (np.linalg.LinAlgError, FloatingPointError, ValueError) as exc:
+            return self._safe_stop(f"numerical failure: {exc}")
+        return action
+
+    def predict(
+        self,
+        observation: Mapping[str, Any],
+        state: Any = None,
+        episode_start: Any = None,
+        deterministic: bool = True,
+    ) -> tuple[np.ndarray, Any]:
+        """Stable-baselines3 style: ``(action, state)``; resets where ``episode_start``."""
+        if episode_start is not None and bool(np.any(episode_start)):
+            self.reset()
+        return self.act(observation), state
+
+    def _safe_stop(self, reason: str) -> np.ndarray:
+        self._safe_stop_reason = reason
+        self._diag["safe_stop"] = True
+        self._diag["safe_stop_reason"] = reason
+        if self.control == "torque":
+            return self.body.gravity_torque(self._last_finite_q)
+        return np.zeros(self.n)
+
+    def _terms(
+        self, obs: Mapping[str, Any], z: np.ndarray, body: BodyState
+    ) -> list[tuple[str, np.ndarray, np.ndarray, np.ndarray]]:
+        """(name, error, jacobian, diagonal precision) of every term active this step."""
+        n, N = self.n, self.size
+        s0, s1 = self._sel[0], self._sel[1]
+        terms = []
+        q = z[s0]
+        # Encoders: constant Jacobians (selection of order 0 and order 1).
+        y = np.asarray(obs["joint_angle_rad"], dtype=float)
+        Gq = np.zeros((n, N))
+        Gq[:, s0] = np.eye(n)
+        Pq = self.precision["joint_angle"] * ~self._fault["joint_angle"] + 1e-6
+        terms.append(("joint_angle", y - q, Gq, Pq))
+        yv = np.asarray(obs["joint_velocity_rad_s"], dtype=float)
+        Gv = np.zeros((n, N))
+        Gv[:, s1] = np.eye(n)
+        Pv = self.precision["joint_velocity"] * ~self._fault["joint_velocity"] + 1e-6
+        terms.append(("joint_velocity", yv - z[s1], Gv, Pv))
+        # Camera: pixel of the tool tip, on fresh frames where it is visible.
+        cam = self.camera
+        if cam is not None and int(obs.get("camera_fresh", 0)) and int(obs.get("tip_visible", 0)):
+            ypx = np.asarray(obs["tip_pixel_px"], dtype=float)
+            gpx = cam.project(body.tip_position_m)
+            Gpx = np.zeros((2, N))
+            Gpx[:, s0] = cam.project_jacobian(body.tip_position_m) @ body.tip_jacobian
+            Ppx = self.precision["camera"] * (0.0 if self._fault["camera"][0] else 1.0) + 1e-9
+            terms.append(("camera", ypx - gpx, Gpx, Ppx))
+        # Efference copy: velocity motors track the last command.
+        if self.control == "velocity":
+            terms.append(("motor", self._action - z[s1], Gv, np.full(n, self.motor_precision)))
+        if self.options["goal"] == "prior":
+            target = np.asarray(obs["target_position_m"], dtype=float)
+            f, F = self.attractor(q, body, target)
+            G = np.zeros((n, N))
+            if self.control == "velocity":
+                # prior: q' = f(q)  ->  error 0 - (q' - f(q)), d/dz = [-F, I, 0...]
+                G[:, s0] = -F
+                G[:, s1] = np.eye(n)
+                err = f - z[s1]
+            else:
+                # prior: q'' = k_v (f(q) - q')
+                kv = self.options["velocity_gain_1_s"]
+                s2 = self._sel[2]
+                G[:, s0] = -kv * F
+                G[:, s1] = kv * np.eye(n)
+                G[:, s2] = np.eye(n)
+                err = kv * (f - z[s1]) - z[s2]
+            # In torque control the error is an acceleration: scale its precision by 1/kv^2 so
+            # the goal weighs on the velocity belief as it does under velocity control.
+            scale = 1.0 if self.control == "velocity" else 1.0 / self.options["velocity_gain_1_s"] ** 2
+            terms.append(("goal", err, G, np.full(n, self.goal_precision * scale)))
+        for term in self.extra_terms:
+            t = term.evaluate(obs, z.reshape(self.order + 1, n), body)
+            if t is not None:
+                terms.append((term.name, t.error, t.jacobian, np.asarray(t.precision, float)))
+        return terms
+
+    def _step(self, obs: Mapping[str, Any]) -> np.ndarray:
+        n = self.n
+        s0, s1 = self._sel[0], self._sel[1]
+        # Prediction: generalized motion over dt (local linearisation of D z), Laplace prior.
+        z_prior = self._phi @ self._belief
+        cov_prior = self._phi @ self._cov @ self._phi.T + self._w
+        chol, info = dpotrf(cov_prior, lower=1, clean=1)
+        if info != 0:
+            raise np.linalg.LinAlgError("prior covariance is not positive definite")
+        prec_prior, info = dpotri(chol, lower=1)
+        prec_prior = np.tril(prec_prior) + np.tril(prec_prior, -1).T
+
+        q = z_prior[s0]
+        tip, J = self.body.tip_position_and_jacobian(q)
+        body = BodyState(tip, J)
+        terms = self._terms(obs, z_prior, body)
+
+        # Gauss-Newton step on F: H = Pi- + sum G'PG ; grad = -sum G'P e at z-.
+        H = prec_prior.copy()
+        grad = np.zeros(self.size)
+        energy = 0.0
+        errors: dict[str, np.ndarray] = {}
+        for name, e, G, P in terms:
+            GtP = G.T * P
+            H += GtP @ G
+            grad -= GtP @ e
+            energy += 0.5 * float(e @ (P * e)) - 0.5 * float(np.sum(np.log(P)))
+            errors[name] = e
+        chol, info = dpotrf(H, lower=1, clean=1)
+        if info != 0:
+            raise np.linalg.LinAlgError("free-energy curvature is not positive definite")
+        cov, _ = dpotri(chol, lower=1)
+        cov = np.tril(cov) + np.tril(cov, -1).T
+        z = z_prior - cov @ grad
+        if not np.all(np.isfinite(z)) or not np.isfinite(energy):
+            return self._safe_stop("belief or free energy is not finite")
+        if np.max(np.abs(z[s1])) > self.options["divergence_limit"]:
+            return self._safe_stop("belief velocity exploded")
+
+        # Fault detection on innovations (before the update), then precision learning.
+        if self.options["fault_detection"]:
+            self._detect_faults(errors, cov_prior, terms)
+        if self.options["learn_precision"]:
+            self._learn_precisions(terms, cov_prior)
+
+        self._belief = z
+        self._cov = cov
+        self._last_finite_q = z[s0].copy()
+        action = self._action_update(obs, z)
+        self._action = action
+        self._diag = {
+            "free_energy": energy,
+            "prediction_error": errors,
+            "safe_stop": False,
+            "safe_stop_reason": "",
+        }
+        return action
+
+    def _action_update(self, obs: Mapping[str, Any], z: np.ndarray) -> np.ndarray:
+        """Newton step of the action on F through the predicted sensations."""
+        d = self.description
+        s0, s1 = self._sel[0], self._sel[1]
+        q, v = z[s0], z[s1]
+        frac = self.options["action_fraction"]
+        if self.options["goal"] == "reference" or self.control == "torque":
+            target = np.asarray(obs["target_position_m"], dtype=float)
+            tip, J = self.body.tip_position_and_jacobian(q)
+            f, _ = self.attractor(q, BodyState(tip, J), target)
+        if self.control == "velocity":
+            # F_a = 1/2 P (y_v(a) - v*)^2 with y_v(a) = a: Newton step a += frac (v* - a).
+            wanted = v if self.options["goal"] == "prior" else f
+            a = self._action + frac * (wanted - self._action)
+            return np.clip(a, -d.velocity_limit_rad_s, d.velocity_limit_rad_s)
+        # Torque: y_v(tau) = v + dt inv(M)(tau - h); curvature dt^2 inv(M) P inv(M) -> the
+        # Newton step gives tau = h + M qdd_wanted.
+        kv = self.options["velocity_gain_1_s"]
+        if self.options["goal"] == "prior":
+            qdd = z[self._sel[2]]
+        else:
+            qdd = kv * (f - v)
+        tau = self.body.nonlinear_effects(q, v) + self.body.mass_matrix(q) @ qdd
+        a = self._action + frac * (tau - self._action)
+        return np.clip(a, -d.torque_limit_n_m, d.torque_limit_n_m)
+
+    def _detect_faults(self, errors, cov_prior, terms) -> None:
+        """Windowed innovation test per channel (per joint for encoders)."""
+        alpha = self._fault_alpha
+        for name, e, G, P in terms:
+            if name not in self._fault_threshold:
+                continue
+            R = 1.0 / self._initial_precision[name]
+            if name == "camera":
+                S = G @ cov_prior @ G.T + np.diag(R)
+                stat = np.array([float(e @ np.linalg.solve(S, e)) / 2.0])
+            else:
+                sel = self._sel[0] if name == "joint_angle" else self._sel[1]
+                s_diag = np.diag(cov_prior)[sel] + R
+                stat = e * e / s_diag
+            m = self._fault_stat[name]
+            m += alpha * (stat - m)
+            thr = self._fault_threshold[name]
+            # Flag above the threshold; heal once well below it (hysteresis).
+            self._fault[name] = np.where(self._fault[name], m > 0.5 * thr, m > thr)
+
+    def _learn_precisions(self, terms, cov_prior) -> None:
+        """Log-precision gradient step per channel, on the innovations.
+
+        With the belief marginalised, a channel's free energy is the negative log-likelihood
+        of its innovation ``nu ~ N(0, S)``, ``S = G Sigma- G' + inv(P)``. For ``P = exp(l)``,
+        per component (diagonal ``S``), ``dF/dl_i = 1/2 (nu_i^2 / S_ii - 1) / (P_i S_ii)``. Its fixed
+        point is ``E[nu^2] = S``, the innovation-matching condition of adaptive Kalman
+        filtering (Mehra 1970, IEEE Trans Autom Control 15(2)). Steps are slow (rate
+        ``precision_learning_rate`` per second) and bounded to +-7 in ``l`` around the start.
+        """
+        rate = self.options["precision_learning_rate"] * self.dt
+        for name, e, G, _P in terms:
+            if name not in ("joint_angle", "joint_velocity", "camera"):
+                continue
+            cur = self.precision[name]
+            if name == "camera":
+                gs = np.einsum("ij,jk,ik->i", G, cov_prior, G)
+            else:
+                sel = self._sel[0] if name == "joint_angle" else self._sel[1]
+                gs = np.diag(cov_prior)[sel]
+            S = gs + 1.0 / cur
+            grad = 0.5 * (e * e / S - 1.0) / (cur * S)
+            if name == "camera":
+                grad = np.full(2, grad.mean())
+            healthy = ~self._fault[name] if name != "camera" else ~self._fault[name].repeat(2)
+            log_p = np.log(cur) - rate * grad * healthy
+            p0 = self._initial_precision[name]
+            self.precision[name] = np.exp(np.clip(log_p, np.log(p0) - 7.0, np.log(p0) + 7.0))
+
+    # -- free energy at an arbitrary belief (for checks and analysis) ----------------------
+    def free_energy_and_gradient(
+        self,
+        obs: Mapping[str, Any],
+        belief: np.ndarray,
+        prior_mean: np.ndarray | None = None,
+        prior_precision: np.ndarray | None = None,
+    ) -> tuple[float, np.ndarray]:
+        """Laplace-encoded free energy at ``belief`` and its gradient ``dF/dz``.
+
+        ``F = 1/2 dz' Pi dz + sum_m (1/2 e_m' P_m e_m - 1/2 ln|P_m|)``, ``dz = z - prior_mean``;
+        ``dF/dz = Pi dz - sum_m G_m' P_m e_m`` (Friston 2008, PLoS Comput Biol, eq. 9), with
+        every term evaluated at ``belief`` itself. The goal term's Jacobian neglects the
+        derivative of the tip Jacobian (Gauss-Newton), so it is exact only where the task
+        error and the posture error vanish.
+        """
+        z = np.asarray(belief, dtype=float).reshape(-1)
+        if self._belief is None:
+            self._initialise(obs)
+        q = z[self._sel[0]]
+        body = BodyState(*self.body.tip_position_and_jacobian(q))
+        energy, grad = 0.0, np.zeros(self.size)
+        if prior_mean is not None and prior_precision is not None:
+            dz = z - np.asarray(prior_mean, dtype=float).reshape(-1)
+            grad += prior_precision @ dz
+            energy += 0.5 * float(dz @ prior_precision @ dz)
+        for _name, e, G, P in self._terms(obs, z, body):
+            energy += 0.5 * float(e @ (P * e)) - 0.5 * float(np.sum(np.log(P)))
+            grad -= (G.T * P) @ e
+        return energy, grad
+
+    # -- reporting ----------------------------------------------------------------------
+    def diagnostics(self) -> dict[str, Any]:
+        """The ``internal.*`` log group for the last step.
+
+        Keys: ``belief`` (order+1, n), ``belief_sd`` (order+1, n), ``free_energy``,
+        ``prediction_error`` (per channel), ``precision`` (per channel), ``fault`` (per
+        channel), ``safe_stop`` and ``safe_stop_reason``.
+        """
+        p1, n = self.order + 1, self.n
+        out: dict[str, Any] = dict(self._diag)
+        if self._belief is not None:
+            out["belief"] = self._belief.reshape(p1, n).copy()
+            out["belief_sd"] = np.sqrt(np.maximum(np.diag(self._cov), 0.0)).reshape(p1, n)
+        out["precision"] = {k: v.copy() for k, v in self.precision.items()}
+        out["fault"] = {k: v.copy() for k, v in self._fault.items()}
+        out.setdefault("safe_stop", bool(self._safe_stop_reason))
+        out.setdefault("safe_stop_reason", self._safe_stop_reason)
+        return out
+
+    @property
+    def belief(self) -> np.ndarray | None:
+        """Current belief, shape (order+1, n), or None before the first observation."""
+        return None if self._belief is None else self._belief.reshape(self.order + 1, self.n)

@@ -1,0 +1,193 @@
+"""The ``blanket`` command.
+
+Sub-commands: ``demo`` (the built-in greenhouse scenario), ``run`` (a scenario file),
+``plot`` and ``inspect`` (run folders), ``bench`` (benchmark against baselines), ``tune``
+(precision sweeps), ``train-rl`` (RL baselines). Bad input prints one line and exits 2.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import json
+import sys
+from collections.abc import Sequence
+from pathlib import Path
+from typing import Any
+
+from blanket.errors import ConfigError
+
+__all__ = ["main", "SAFETY_NOTE"]
+
+SAFETY_NOTE = (
+    "Safety: blanket drives simulated robots only. Before commanding real hardware, apply the "
+    "robot maker's limits, a risk assessment and local codes (ISO 10218-1/-2 for industrial "
+    "robots, ISO/TS 15066 for collaborative operation), and have qualified people sign off."
+)
+
+ARM_ROBOTS = ("iiwa", "panda", "xarm6")
+BASE_ROBOTS = ("rover", "husky")
+
+# Sub-commands implemented beside the code they drive: (module, add-parser, run) names.
+_EXTERNAL = {
+    "plot": ("blanket.logs.cli", "add_plot_parser", "run_plot"),
+    "inspect": ("blanket.logs.cli", "add_inspect_parser", "run_inspect"),
+    "bench": ("blanket.bench.cli", "add_bench_parser", "run_bench"),
+    "train-rl": ("blanket.bench.cli", "add_train_parser", "run_train"),
+    "tune": ("blanket.tune.cli", "add_tune_parser", "run_tune"),
+}
+
+
+def _positive_int(text: str) -> int:
+    try:
+        v = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be a whole number >= 1, got {text!r}") from None
+    if v < 1:
+        raise argparse.ArgumentTypeError(f"must be a whole number >= 1, got {text!r}")
+    return v
+
+
+def _seed(text: str) -> int:
+    try:
+        v = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be a whole number >= 0, got {text!r}") from None
+    if v < 0:
+        raise argparse.ArgumentTypeError(f"must be a whole number >= 0, got {text!r}")
+    return v
+
+
+def _add_run_options(p: argparse.ArgumentParser, episodes_default: int | None) -> None:
+    p.add_argument("--out", metavar="DIR", help="run folder (default: a new one under "
+                   "./blanket-runs/); a non-empty folder is refused unless --overwrite")
+    p.add_argument("--overwrite", action="store_true", help="reuse a non-empty --out folder")
+    p.add_argument("--episodes", type=_positive_int, default=episodes_default, metavar="N",
+                   help="number of episodes" + (f" (default {episodes_default})"
+                                                if episodes_default else ""))
+    p.add_argument("--seed", type=_seed, default=None, metavar="S",
+                   help="seed of the first episode; episode i uses S + i (default 0)")
+    p.add_argument("--no-log", action="store_true", help="do not write trajectory logs")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="blanket",
+        description="Test active-inference controllers on simulated arms and mobile bases.",
+        epilog=SAFETY_NOTE,
+    )
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    sub.required = True
+
+    demo = sub.add_parser(
+        "demo",
+        help="run the built-in greenhouse potting-bench scenario",
+        description="Reach seedling-tray cells on the potting bench (arms) or drive to the "
+        "charging dock between bench rows (rover, husky) with the active-inference agent.",
+        epilog=SAFETY_NOTE,
+    )
+    demo.add_argument("--robot", default="iiwa", metavar="NAME",
+                      help=f"one of {', '.join(ARM_ROBOTS + BASE_ROBOTS)} (default iiwa)")
+    demo.add_argument("--control", default="velocity", metavar="MODE",
+                      help="velocity or torque (arms only; default velocity)")
+    _add_run_options(demo, episodes_default=5)
+
+    run = sub.add_parser("run", help="run a scenario file", epilog=SAFETY_NOTE,
+                         description="Run the env and agent a scenario TOML file names.")
+    run.add_argument("scenario", metavar="SCENARIO.toml")
+    _add_run_options(run, episodes_default=None)
+
+    for name, (module, add_name, _run_name) in _EXTERNAL.items():
+        try:
+            mod = importlib.import_module(module)
+        except ImportError:
+            continue
+        getattr(mod, add_name)(sub)
+    return parser
+
+
+def _demo_scenario(args: argparse.Namespace) -> Any:
+    from blanket.scenario import Scenario
+
+    robot = args.robot
+    if robot in ARM_ROBOTS:
+        if args.control not in ("velocity", "torque"):
+            raise ConfigError(f"--control must be velocity or torque, got {args.control!r}")
+        return Scenario(
+            env="blanket/arm-reach-v0",
+            env_options={"robot": robot, "control": args.control},
+            name=f"greenhouse-bench-{robot}-{args.control}",
+        )
+    if robot in BASE_ROBOTS:
+        return Scenario(env="blanket/base-goto-v0", env_options={"robot": robot},
+                        name=f"greenhouse-rows-{robot}")
+    raise ConfigError(
+        f"--robot must be one of {', '.join(ARM_ROBOTS + BASE_ROBOTS)}, got {robot!r}"
+    )
+
+
+def _print_summary(summary: dict[str, Any], out_dir: Path) -> None:
+    def fmt(v: Any, unit: str = "", scale: float = 1.0, digits: int = 2) -> str:
+        if v is None:
+            return "-"
+        return f"{v * scale:.{digits}f}{unit}"
+
+    rows = [
+        ("episodes", str(summary["episodes"])),
+        ("reached (held 0.25 s)", f"{summary['success_rate'] * 100:.0f} %"),
+        ("final error, median", fmt(summary["final_error_m"], " cm", 100.0)),
+        ("time to reach, median", fmt(summary["time_to_success_s"], " s")),
+        ("agent step, median", fmt(summary["agent_step_us"], " us", digits=1)),
+        ("sim step + sensors, median", fmt(summary["sim_step_us"], " us", digits=1)),
+    ]
+    if "final_heading_error_rad" in summary:
+        rows.insert(3, ("final heading error, median",
+                        fmt(summary["final_heading_error_rad"], " deg", 57.29577951308232)))
+    if summary.get("contact_rate"):
+        rows.append(("episodes with contact", f"{summary['contact_rate'] * 100:.0f} %"))
+    width = max(len(r[0]) for r in rows)
+    print(f"\n  {'measure':<{width}}  value")
+    print(f"  {'-' * width}  {'-' * 10}")
+    for k, v in rows:
+        print(f"  {k:<{width}}  {v}")
+    print(f"\n  run folder: {out_dir}")
+
+
+def _run(args: argparse.Namespace) -> int:
+    from blanket.runner import prepare_out_dir, run_scenario
+    from blanket.scenario import load_scenario
+
+    if args.command == "demo":
+        scenario = _demo_scenario(args)
+        episodes = args.episodes
+    else:
+        scenario = load_scenario(args.scenario)
+        episodes = args.episodes or scenario.episodes or 5
+    seed = args.seed if args.seed is not None else (scenario.seed or 0)
+    out_dir = prepare_out_dir(args.out, args.overwrite, prefix=scenario.name)
+    summary = run_scenario(scenario, episodes=episodes, seed=seed, out_dir=out_dir,
+                           progress=not args.quiet, record=not args.no_log)
+    _print_summary(summary, out_dir)
+    return 0
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        if args.command in ("demo", "run"):
+            return _run(args)
+        module, _add, run_name = _EXTERNAL[args.command]
+        return int(getattr(importlib.import_module(module), run_name)(args) or 0)
+    except KeyboardInterrupt:
+        print("blanket: interrupted; finished episodes are kept", file=sys.stderr)
+        return 130
+    except (ConfigError, ValueError, FileNotFoundError, json.JSONDecodeError) as exc:
+        msg = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        print(f"blanket: error: {msg}", file=sys.stderr)
+        return 2
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

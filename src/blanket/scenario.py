@@ -1,0 +1,219 @@
+"""Scenario files: which env, its options, and which agent -- read with tomllib only.
+
+A scenario file is TOML::
+
+    name = "tray-a corner cells"          # optional
+    env = "blanket/arm-reach-v0"          # an env id (required)
+    episodes = 10                         # optional default for --episodes
+    seed = 0                              # optional default for --seed
+
+    [env_options]                         # keywords of the env's constructor
+    robot = "panda"
+    control = "velocity"
+    episode_s = 4.0
+
+    [agent]                               # options of the agent
+    class = "mypackage.agents:MyAgent"    # optional: an import path you wrote
+    order = 2
+
+Relative paths (``env_options.urdf``) resolve against the file's folder. Unknown keys are
+rejected with the closest valid names.
+"""
+
+from __future__ import annotations
+
+import difflib
+import importlib
+import inspect
+import tomllib
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import gymnasium
+
+from blanket.errors import ConfigError
+
+__all__ = ["Scenario", "load_scenario", "load_object", "env_option_names", "make_env"]
+
+_TOP_KEYS = {"name": str, "env": str, "episodes": int, "seed": int}
+_TABLES = ("env_options", "agent", "conditions")
+_PATH_OPTIONS = ("urdf",)
+
+
+@dataclass
+class Scenario:
+    """A parsed scenario: env id, env options, agent options and optional defaults."""
+
+    env: str
+    env_options: dict[str, Any] = field(default_factory=dict)
+    agent: dict[str, Any] = field(default_factory=dict)
+    name: str = "scenario"
+    episodes: int | None = None
+    seed: int | None = None
+    source: str | None = None
+
+    def to_toml(self) -> str:
+        """Render as TOML text that :func:`load_scenario` reads back."""
+        lines = [f"name = {_toml_value(self.name)}", f"env = {_toml_value(self.env)}"]
+        if self.episodes is not None:
+            lines.append(f"episodes = {self.episodes}")
+        if self.seed is not None:
+            lines.append(f"seed = {self.seed}")
+        for table, values in (("env_options", self.env_options), ("agent", self.agent)):
+            lines.append("")
+            lines.append(f"[{table}]")
+            for k, v in values.items():
+                if v is not None:
+                    lines.append(f"{k} = {_toml_value(v)}")
+        return "\n".join(lines) + "\n"
+
+
+def _toml_value(v: Any) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, int | float):
+        return repr(v)
+    if isinstance(v, str):
+        return '"' + v.replace("\\", "\\\\").replace('"', '\\"') + '"'
+    if isinstance(v, list | tuple):
+        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
+    raise ConfigError(f"cannot write {v!r} to a scenario file")
+
+
+def _suggest(name: str, valid: list[str]) -> str:
+    close = difflib.get_close_matches(name, valid, n=3)
+    if close:
+        return f"did you mean {', '.join(close)}?"
+    return f"valid: {', '.join(sorted(valid))}"
+
+
+def load_object(path: str, what: str = "class") -> Any:
+    """Import ``package.module:Name`` -- only an import path the user wrote, never eval."""
+    if not isinstance(path, str) or ":" not in path:
+        raise ConfigError(f"{what} must be an import path 'package.module:Name', got {path!r}")
+    module_name, _, attr = path.partition(":")
+    try:
+        module = importlib.import_module(module_name)
+    except Exception as exc:  # noqa: BLE001 - report any import failure in one line
+        raise ConfigError(f"{what} {path!r} does not load: {type(exc).__name__}: {exc}") from None
+    obj = module
+    for part in attr.split("."):
+        if not hasattr(obj, part):
+            raise ConfigError(f"{what} {path!r} does not load: module has no attribute {part!r}")
+        obj = getattr(obj, part)
+    return obj
+
+
+def _entry_point(env_id: str) -> Any:
+    try:
+        spec = gymnasium.spec(env_id)
+    except Exception:  # noqa: BLE001 - gymnasium raises several error types here
+        ids = [k for k in gymnasium.registry if k.startswith("blanket/")]
+        raise ConfigError(f"env {env_id!r} is not registered; {_suggest(env_id, ids)}") from None
+    ep = spec.entry_point
+    if isinstance(ep, str):
+        return load_object(ep, "env entry point")
+    return ep
+
+
+def env_option_names(env_id: str) -> dict[str, Any]:
+    """Constructor keywords of an env id and their defaults."""
+    cls = _entry_point(env_id)
+    sig = inspect.signature(cls.__init__ if inspect.isclass(cls) else cls)
+    return {
+        name: (None if p.default is inspect.Parameter.empty else p.default)
+        for name, p in sig.parameters.items()
+        if name != "self" and p.kind in (p.POSITIONAL_OR_KEYWORD, p.KEYWORD_ONLY)
+    }
+
+
+def _check_env_options(env_id: str, options: Mapping[str, Any], where: str) -> None:
+    valid = env_option_names(env_id)
+    for key, value in options.items():
+        if key not in valid:
+            raise ConfigError(
+                f"{where}: unknown env option {key!r} for {env_id}; {_suggest(key, list(valid))}"
+            )
+        default = valid[key]
+        if default is None:
+            continue
+        if isinstance(default, bool):
+            ok = isinstance(value, bool)
+            want = "true or false"
+        elif isinstance(default, int | float):
+            ok = isinstance(value, int | float) and not isinstance(value, bool)
+            want = "a number"
+        elif isinstance(default, str):
+            ok = isinstance(value, str)
+            want = "a string"
+        else:
+            ok, want = True, ""
+        if not ok:
+            raise ConfigError(
+                f"{where}: env option {key} must be {want}, got {type(value).__name__} {value!r}"
+            )
+
+
+def load_scenario(path: str | Path) -> Scenario:
+    """Read and validate a scenario file (see the module docstring for the format)."""
+    path = Path(path)
+    if not path.is_file():
+        raise ConfigError(f"scenario file {str(path)!r} does not exist")
+    try:
+        data = tomllib.loads(path.read_text(encoding="utf-8"))
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        raise ConfigError(f"{path.name}: not valid TOML: {exc}") from None
+    return scenario_from_dict(data, base_dir=path.parent, where=path.name)
+
+
+def scenario_from_dict(
+    data: Mapping[str, Any], base_dir: Path | None = None, where: str = "scenario"
+) -> Scenario:
+    """Validate a scenario given as a mapping (the parsed TOML)."""
+    for key in data:
+        if key not in _TOP_KEYS and key not in _TABLES:
+            raise ConfigError(
+                f"{where}: unknown key {key!r}; {_suggest(key, list(_TOP_KEYS) + list(_TABLES))}"
+            )
+    for key, typ in _TOP_KEYS.items():
+        if key in data and (
+            not isinstance(data[key], typ) or (typ is int and isinstance(data[key], bool))
+        ):
+            raise ConfigError(
+                f"{where}: {key} must be {'a string' if typ is str else 'a whole number'}, "
+                f"got {data[key]!r}"
+            )
+    if "env" not in data:
+        raise ConfigError(f"{where}: missing required key 'env' (an env id such as "
+                          "'blanket/arm-reach-v0')")
+    for table in _TABLES:
+        if table in data and not isinstance(data[table], dict):
+            raise ConfigError(f"{where}: {table} must be a table ([{table}])")
+    env_id = data["env"]
+    env_options = dict(data.get("env_options", {}))
+    for key in _PATH_OPTIONS:
+        if key in env_options and isinstance(env_options[key], str) and base_dir is not None:
+            p = Path(env_options[key]).expanduser()
+            if not p.is_absolute():
+                p = (base_dir / p).resolve()
+            env_options[key] = str(p)
+    _check_env_options(env_id, env_options, where)
+    if "episodes" in data and data["episodes"] < 1:
+        raise ConfigError(f"{where}: episodes must be >= 1, got {data['episodes']}")
+    return Scenario(
+        env=env_id,
+        env_options=env_options,
+        agent=dict(data.get("agent", {})),
+        name=data.get("name", Path(where).stem),
+        episodes=data.get("episodes"),
+        seed=data.get("seed"),
+        source=where,
+    )
+
+
+def make_env(env_id: str, env_options: Mapping[str, Any]) -> gymnasium.Env:
+    """``gymnasium.make`` with option checking; config problems become one-line errors."""
+    _check_env_options(env_id, env_options, "env_options")
+    return gymnasium.make(env_id, **env_options)
