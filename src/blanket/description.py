@@ -51,6 +51,17 @@ class CameraDescription:
             [self.fx_px * pc[0] / pc[2] + self.cx_px, self.fy_px * pc[1] / pc[2] + self.cy_px]
         )
 
+    def project_with_jacobian(self, point_base: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Pixel ``(u, v)`` of a base-frame point and ``d(u, v)/d(point)``, shape (2, 3)."""
+        R = self.base_from_camera[:3, :3]
+        pc = (np.asarray(point_base, dtype=float) - self.base_from_camera[:3, 3]) @ R
+        x, y, z = pc
+        iz = 1.0 / z
+        fx, fy = self.fx_px, self.fy_px
+        pixel = np.array([fx * x * iz + self.cx_px, fy * y * iz + self.cy_px])
+        dpix = np.array([[fx * iz, 0.0, -fx * x * iz * iz], [0.0, fy * iz, -fy * y * iz * iz]])
+        return pixel, dpix @ R.T
+
     def project_jacobian(self, point_base: np.ndarray) -> np.ndarray:
         """Jacobian ``d(u, v) / d(point_base)``, shape (2, 3), of :meth:`project`."""
         R = self.base_from_camera[:3, :3]

@@ -56,12 +56,17 @@ from typing import Any
 
 import numpy as np
 from scipy.linalg import expm
-from scipy.linalg.lapack import dpotrf, dpotri
+from scipy.linalg.lapack import dposv, dpotrf, dpotrs
 from scipy.stats import chi2
 
 from blanket.description import ArmDescription
 from blanket.errors import ConfigError
 from blanket.model import BodyState, ModelTerm, Term
+
+try:  # the compiled perception kernel; the numpy path computes the same step
+    from blanket.agent import _kernel
+except ImportError:  # pragma: no cover - numba missing
+    _kernel = None
 
 __all__ = ["ArmAgent", "AgentOptions", "torque_action_free_energy"]
 
@@ -257,8 +262,15 @@ class ArmAgent:
         w_t = _jerk_covariance(p, self.dt, float(opts["jerk_intensity"]))
         w_t += np.diag(np.full(p + 1, 1e-12))
         eye = np.eye(n)
+        self._phi_t = phi_t
         self._phi = np.kron(phi_t, eye)
+        self._phi_T = np.ascontiguousarray(self._phi.T)
         self._w = np.kron(w_t, eye)
+        self._eye_N = np.eye(self.size)
+        self._eye_n = np.eye(n)
+        self._attractor_velocity = np.zeros(n)
+        self._compiled = _kernel is not None and not self.extra_terms
+        self._buffers()
         # Encoder terms have constant Jacobians: precompute their curvature.
         self._sel = [slice(k * n, (k + 1) * n) for k in range(p + 1)]
         self._channel_names = ["joint_angle", "joint_velocity", "camera", "motor", "goal"]
@@ -296,6 +308,7 @@ class ArmAgent:
         self._fault_stat = {k: np.zeros(self.n if k != "camera" else 1) for k in self._fault_threshold}
         self._fault = {k: np.zeros_like(v, dtype=bool) for k, v in self._fault_stat.items()}
         self._diag: dict[str, Any] = {}
+        self._lazy_errors = False
         self._safe_stop_reason = ""
         self._last_finite_q = np.zeros(self.n)
 
@@ -337,10 +350,13 @@ class ArmAgent:
         scale = vmax / speed if speed > vmax else 1.0
         lam2 = opts["damping_m"] ** 2
         JJt = J @ J.T
-        JJt[np.diag_indices(3)] += lam2
-        Jpinv = J.T @ np.linalg.inv(JJt)
+        JJt.flat[::4] += lam2
+        _, X, info = dposv(JJt, J, lower=1)  # X = inv(J J' + lambda^2 I) J
+        if info != 0:
+            raise np.linalg.LinAlgError("damped Jacobian product is not positive definite")
+        Jpinv = X.T
         JpJ = Jpinv @ J
-        null = np.eye(self.n) - JpJ
+        null = self._eye_n - JpJ
         kn = opts["posture_gain_1_s"]
         f = Jpinv @ (vel * scale) + kn * (null @ (self._home - q))
         F = -k * scale * JpJ - kn * null
@@ -352,7 +368,7 @@ class ArmAgent:
         if self._belief is None:
             self._initialise(obs)
         try:
-            action = self._step(obs)
+            action = self._step_compiled(obs) if self._compiled else self._step_numpy(obs)
         except (np.linalg.LinAlgError, FloatingPointError, ValueError) as exc:
             return self._safe_stop(f"numerical failure: {exc}")
         return action
@@ -435,56 +451,141 @@ class ArmAgent:
                 terms.append((term.name, t.error, t.jacobian, np.asarray(t.precision, float)))
         return terms
 
-    def _step(self, obs: Mapping[str, Any]) -> np.ndarray:
-        n = self.n
-        s0, s1 = self._sel[0], self._sel[1]
+    def _step_numpy(self, obs: Mapping[str, Any]) -> np.ndarray:
+        """One perception step (prediction + Gauss-Newton step on F), then the action.
+
+        The built-in terms are assembled block by block (their Jacobians are selections or
+        small dense blocks), which is what keeps a 7-DoF step in tens of microseconds;
+        :meth:`free_energy_and_gradient` evaluates the same terms generically and the tests
+        check that both agree.
+        """
+        n, N = self.n, self.size
+        p1 = self.order + 1
+        opts = self.options
         # Prediction: generalized motion over dt (local linearisation of D z), Laplace prior.
-        z_prior = self._phi @ self._belief
-        cov_prior = self._phi @ self._cov @ self._phi.T + self._w
-        chol, info = dpotrf(cov_prior, lower=1, clean=1)
+        z_prior = (self._phi_t @ self._belief.reshape(p1, n)).reshape(-1)
+        cov_prior = self._phi @ self._cov @ self._phi_T
+        cov_prior += self._w
+        chol, info = dpotrf(cov_prior, lower=1, clean=0)
         if info != 0:
             raise np.linalg.LinAlgError("prior covariance is not positive definite")
-        prec_prior, info = dpotri(chol, lower=1)
-        prec_prior = np.tril(prec_prior) + np.tril(prec_prior, -1).T
-
-        q = z_prior[s0]
+        H, _ = dpotrs(chol, self._eye_N, lower=1)  # prior precision Pi-
+        q = z_prior[:n]
+        v = z_prior[n : 2 * n]
         tip, J = self.body.tip_position_and_jacobian(q)
-        body = BodyState(tip, J)
-        terms = self._terms(obs, z_prior, body)
 
-        # Gauss-Newton step on F: H = Pi- + sum G'PG ; grad = -sum G'P e at z-.
-        H = prec_prior.copy()
-        grad = np.zeros(self.size)
-        energy = 0.0
+        grad = np.zeros(N)
+        hdiag = np.zeros(N)
         errors: dict[str, np.ndarray] = {}
-        for name, e, G, P in terms:
-            GtP = G.T * P
-            H += GtP @ G
-            grad -= GtP @ e
-            energy += 0.5 * float(e @ (P * e)) - 0.5 * float(np.sum(np.log(P)))
-            errors[name] = e
-        chol, info = dpotrf(H, lower=1, clean=1)
+        # Encoder angles and velocities: Jacobians select orders 0 and 1.
+        pq = self._effective_precision("joint_angle")
+        pv = self._effective_precision("joint_velocity")
+        eq = obs["joint_angle_rad"] - q
+        ev = obs["joint_velocity_rad_s"] - v
+        grad[:n] -= pq * eq
+        grad[n : 2 * n] -= pv * ev
+        hdiag[:n] += pq
+        hdiag[n : 2 * n] += pv
+        energy = 0.5 * (float(eq @ (pq * eq)) + float(ev @ (pv * ev)))
+        logdet = float(np.log(pq).sum() + np.log(pv).sum())
+        errors["joint_angle"] = eq
+        errors["joint_velocity"] = ev
+        # Camera: the tool tip's pixel on fresh frames where it is visible.
+        cam = self.camera
+        g_cam = None
+        if cam is not None and obs.get("camera_fresh", 0) and obs.get("tip_visible", 0):
+            pix, dpix = cam.project_with_jacobian(tip)
+            g_cam = dpix @ J
+            ec = obs["tip_pixel_px"] - pix
+            pc = self._effective_precision("camera")
+            gtp = g_cam.T * pc
+            H[:n, :n] += gtp @ g_cam
+            grad[:n] -= gtp @ ec
+            energy += 0.5 * float(ec @ (pc * ec))
+            logdet += float(np.log(pc).sum())
+            errors["camera"] = ec
+        # Efference copy: velocity motors track the last command.
+        if self.control == "velocity":
+            pm = self.motor_precision
+            em = self._action - v
+            grad[n : 2 * n] -= pm * em
+            hdiag[n : 2 * n] += pm
+            energy += 0.5 * pm * float(em @ em)
+            logdet += n * np.log(pm)
+            errors["motor"] = em
+        # The goal: attractor on the velocity (or acceleration) as prior dynamics.
+        target = np.asarray(obs["target_position_m"], dtype=float)
+        f, F = self.attractor(q, BodyState(tip, J), target)
+        self._attractor_velocity = f
+        if opts["goal"] == "prior":
+            pg = self.goal_precision
+            if self.control == "velocity":
+                eg = f - v
+                grad[:n] += pg * (F.T @ eg)
+                grad[n : 2 * n] -= pg * eg
+                FtF = pg * (F.T @ F)
+                H[:n, :n] += FtF
+                H[:n, n : 2 * n] -= pg * F.T
+                H[n : 2 * n, :n] -= pg * F
+                hdiag[n : 2 * n] += pg
+            else:
+                kv = opts["velocity_gain_1_s"]
+                pg = pg / kv**2
+                acc = z_prior[2 * n : 3 * n]
+                eg = kv * (f - v) - acc
+                s2 = slice(2 * n, 3 * n)
+                Ft = F.T
+                grad[:n] += pg * kv * (Ft @ eg)
+                grad[n : 2 * n] -= pg * kv * eg
+                grad[s2] -= pg * eg
+                H[:n, :n] += (pg * kv * kv) * (Ft @ F)
+                H[:n, n : 2 * n] -= (pg * kv * kv) * Ft
+                H[n : 2 * n, :n] -= (pg * kv * kv) * F
+                H[:n, s2] -= (pg * kv) * Ft
+                H[s2, :n] -= (pg * kv) * F
+                H[n : 2 * n, s2] += pg * kv * np.eye(n)
+                H[s2, n : 2 * n] += pg * kv * np.eye(n)
+                hdiag[n : 2 * n] += pg * kv * kv
+                hdiag[s2] += pg
+            energy += 0.5 * pg * float(eg @ eg)
+            logdet += n * np.log(pg)
+            errors["goal"] = eg
+        if self.extra_terms:
+            body = BodyState(tip, J)
+            for term in self.extra_terms:
+                t = term.evaluate(obs, z_prior.reshape(p1, n), body)
+                if t is None:
+                    continue
+                P = np.asarray(t.precision, dtype=float)
+                gtp = t.jacobian.T * P
+                H += gtp @ t.jacobian
+                grad -= gtp @ t.error
+                energy += 0.5 * float(t.error @ (P * t.error))
+                logdet += float(np.log(P).sum())
+                errors[term.name] = t.error
+        H.flat[:: N + 1] += hdiag
+        energy -= 0.5 * logdet
+        chol, info = dpotrf(H, lower=1, clean=0)
         if info != 0:
             raise np.linalg.LinAlgError("free-energy curvature is not positive definite")
-        cov, _ = dpotri(chol, lower=1)
-        cov = np.tril(cov) + np.tril(cov, -1).T
+        cov, _ = dpotrs(chol, self._eye_N, lower=1)
         z = z_prior - cov @ grad
-        if not np.all(np.isfinite(z)) or not np.isfinite(energy):
+        if not (np.isfinite(energy) and np.isfinite(z).all()):
             return self._safe_stop("belief or free energy is not finite")
-        if np.max(np.abs(z[s1])) > self.options["divergence_limit"]:
+        if np.abs(z[n : 2 * n]).max() > opts["divergence_limit"]:
             return self._safe_stop("belief velocity exploded")
 
-        # Fault detection on innovations (before the update), then precision learning.
-        if self.options["fault_detection"]:
-            self._detect_faults(errors, cov_prior, terms)
-        if self.options["learn_precision"]:
-            self._learn_precisions(terms, cov_prior)
+        if opts["fault_detection"]:
+            self._detect_faults(errors, cov_prior, g_cam)
+        if opts["learn_precision"]:
+            self._learn_precisions(errors, cov_prior, g_cam)
 
         self._belief = z
         self._cov = cov
-        self._last_finite_q = z[s0].copy()
-        action = self._action_update(obs, z)
+        self._last_finite_q = z[:n]
+        action = self._action_update(z)
         self._action = action
+        self._lazy_errors = False
         self._diag = {
             "free_energy": energy,
             "prediction_error": errors,
@@ -493,77 +594,200 @@ class ArmAgent:
         }
         return action
 
-    def _action_update(self, obs: Mapping[str, Any], z: np.ndarray) -> np.ndarray:
+    def _buffers(self) -> None:
+        n, N = self.n, self.size
+        self._z_out = np.zeros(N)
+        self._cov_out = np.zeros((N, N))
+        self._cov_prior = np.zeros((N, N))
+        self._F = np.zeros((n, n))
+        self._g_cam = np.zeros((2, n))
+        self._err = {k: np.zeros(n) for k in ("joint_angle", "joint_velocity", "motor", "goal")}
+        self._err["camera"] = np.zeros(2)
+        self._work = np.zeros((N, 4 * N))
+        self._f_out = np.zeros(n)
+        self._cam_on = False
+        if self.camera is not None:
+            c = self.camera
+            self._cam_R = np.ascontiguousarray(c.base_from_camera[:3, :3], dtype=float)
+            self._cam_t = np.ascontiguousarray(c.base_from_camera[:3, 3], dtype=float)
+            self._cam_k = np.array([c.fx_px, c.fy_px, c.cx_px, c.cy_px], dtype=float)
+        else:
+            self._cam_R, self._cam_t, self._cam_k = np.eye(3), np.zeros(3), np.ones(4)
+        o = self.options
+        self._attractor_params = np.array(
+            [o["attractor_gain_1_s"], o["max_tip_speed_m_s"], o["damping_m"] ** 2,
+             o["posture_gain_1_s"]], dtype=float)
+        if o["goal"] == "reference":
+            self._goal_mode, self._pg = 0, 0.0
+        elif self.control == "velocity":
+            self._goal_mode, self._pg = 1, self.goal_precision
+        else:
+            self._goal_mode = 2
+            self._pg = self.goal_precision / o["velocity_gain_1_s"] ** 2
+        self._pm = self.motor_precision if self.control == "velocity" else 0.0
+        self._zero2 = np.zeros(2)
+
+    def _step_compiled(self, obs: Mapping[str, Any]) -> np.ndarray:
+        """The same step as :meth:`_step_numpy`, through the compiled kernel."""
+        n = self.n
+        z = self._belief
+        q_prior = self._phi_t[0] @ z.reshape(self.order + 1, n)
+        tip, J = self.body.tip_position_and_jacobian(q_prior)
+        cam_on = bool(
+            self.camera is not None and obs.get("camera_fresh", 0) and obs.get("tip_visible", 0)
+        )
+        pq = self._effective_precision("joint_angle")
+        pv = self._effective_precision("joint_velocity")
+        pc = self._effective_precision("camera")
+        err = self._err
+        status, energy = _kernel.perception_step(
+            z, self._cov, self._phi_t, self._w,
+            np.asarray(obs["joint_angle_rad"], dtype=float),
+            np.asarray(obs["joint_velocity_rad_s"], dtype=float),
+            self._action, pq, pv, self._pm, tip, J, cam_on,
+            np.asarray(obs["tip_pixel_px"], dtype=float) if cam_on else self._zero2,
+            self._cam_R, self._cam_t, self._cam_k, pc,
+            np.asarray(obs["target_position_m"], dtype=float), self._home,
+            self._attractor_params, self._goal_mode, self._pg,
+            float(self.options["velocity_gain_1_s"]),
+            self._z_out, self._cov_out, self._cov_prior, self._f_out, self._F, self._g_cam,
+            err["joint_angle"], err["joint_velocity"], err["motor"], err["camera"], err["goal"],
+            self._work,
+        )
+        if status != _kernel.OK:
+            raise np.linalg.LinAlgError(
+                ("prior covariance", "free-energy curvature", "damped Jacobian product")[status - 1]
+                + " is not positive definite"
+            )
+        logdet = float(np.log(pq).sum() + np.log(pv).sum())
+        if cam_on:
+            logdet += float(np.log(pc).sum())
+        if self._pm > 0:
+            logdet += n * np.log(self._pm)
+        if self._goal_mode:
+            logdet += n * np.log(self._pg)
+        energy -= 0.5 * logdet
+        z_new = self._z_out
+        if not (np.isfinite(energy) and np.isfinite(z_new).all()):
+            return self._safe_stop("belief or free energy is not finite")
+        if np.abs(z_new[n : 2 * n]).max() > self.options["divergence_limit"]:
+            return self._safe_stop("belief velocity exploded")
+        self._cam_on = cam_on
+        if self.options["fault_detection"] or self.options["learn_precision"]:
+            errors = self._error_dict()
+            g_cam = self._g_cam if cam_on else None
+            if self.options["fault_detection"]:
+                self._detect_faults(errors, self._cov_prior, g_cam)
+            if self.options["learn_precision"]:
+                self._learn_precisions(errors, self._cov_prior, g_cam)
+        # swap buffers: the new belief becomes current, the old one the next output
+        self._belief, self._z_out = z_new, self._belief
+        self._cov, self._cov_out = self._cov_out, self._cov
+        self._attractor_velocity = self._f_out.copy()
+        self._last_finite_q = self._belief[:n]
+        action = self._action_update(self._belief)
+        self._action = action
+        self._diag = {"free_energy": energy, "safe_stop": False, "safe_stop_reason": ""}
+        self._lazy_errors = True
+        return action
+
+    def _error_dict(self) -> dict[str, np.ndarray]:
+        names = ["joint_angle", "joint_velocity"]
+        if self._cam_on:
+            names.append("camera")
+        if self._pm > 0:
+            names.append("motor")
+        if self._goal_mode:
+            names.append("goal")
+        return {k: self._err[k].copy() for k in names}
+
+    def _effective_precision(self, name: str) -> np.ndarray:
+        """A channel's precision, down-weighted where it is flagged faulty."""
+        P = self.precision[name]
+        if self.options["fault_detection"]:
+            flags = self._fault[name]
+            if flags.any():
+                return np.where(flags if name != "camera" else flags.repeat(2), P * 1e-6, P)
+        return P
+
+    def _action_update(self, z: np.ndarray) -> np.ndarray:
         """Newton step of the action on F through the predicted sensations."""
         d = self.description
-        s0, s1 = self._sel[0], self._sel[1]
-        q, v = z[s0], z[s1]
+        n = self.n
+        q, v = z[:n], z[n : 2 * n]
         frac = self.options["action_fraction"]
-        if self.options["goal"] == "reference" or self.control == "torque":
-            target = np.asarray(obs["target_position_m"], dtype=float)
-            tip, J = self.body.tip_position_and_jacobian(q)
-            f, _ = self.attractor(q, BodyState(tip, J), target)
+        f = self._attractor_velocity
         if self.control == "velocity":
             # F_a = 1/2 P (y_v(a) - v*)^2 with y_v(a) = a: Newton step a += frac (v* - a).
             wanted = v if self.options["goal"] == "prior" else f
             a = self._action + frac * (wanted - self._action)
             return np.clip(a, -d.velocity_limit_rad_s, d.velocity_limit_rad_s)
-        # Torque: y_v(tau) = v + dt inv(M)(tau - h); curvature dt^2 inv(M) P inv(M) -> the
-        # Newton step gives tau = h + M qdd_wanted.
-        kv = self.options["velocity_gain_1_s"]
+        # Torque: q''(tau) = inv(M)(tau - h); the Newton step on F_a gives
+        # tau = h + M q''_wanted (see torque_action_free_energy).
         if self.options["goal"] == "prior":
-            qdd = z[self._sel[2]]
+            qdd = z[2 * n : 3 * n]
         else:
-            qdd = kv * (f - v)
+            qdd = self.options["velocity_gain_1_s"] * (f - v)
         tau = self.body.nonlinear_effects(q, v) + self.body.mass_matrix(q) @ qdd
         a = self._action + frac * (tau - self._action)
         return np.clip(a, -d.torque_limit_n_m, d.torque_limit_n_m)
 
-    def _detect_faults(self, errors, cov_prior, terms) -> None:
-        """Windowed innovation test per channel (per joint for encoders)."""
+    def _innovation_variance(
+        self, name: str, cov_prior: np.ndarray, g_cam: np.ndarray | None
+    ) -> np.ndarray:
+        """Diagonal of the predicted innovation covariance ``G Sigma- G'`` (without noise)."""
+        n = self.n
+        if name == "camera":
+            return np.einsum("ij,jk,ik->i", g_cam, cov_prior[:n, :n], g_cam)
+        sel = slice(0, n) if name == "joint_angle" else slice(n, 2 * n)
+        return np.diagonal(cov_prior)[sel]
+
+    def _detect_faults(self, errors, cov_prior, g_cam) -> None:
+        """Windowed innovation test per channel (per joint for the encoders).
+
+        The normalized innovation ``nu^2 / S`` (``S`` its predicted variance with the noise
+        at its nominal precision) is averaged over an exponential window of
+        ``fault_window_s``; a channel whose average exceeds the chi-square quantile of the
+        false-alarm rate is flagged (Bar-Shalom, Li & Kirubarajan 2001, *Estimation with
+        Applications to Tracking and Navigation*, sec. 5.4.2), its precision is cut to 1e-6 of
+        its value, and the flag clears once the average falls below half the threshold.
+        """
         alpha = self._fault_alpha
-        for name, e, G, P in terms:
-            if name not in self._fault_threshold:
+        for name in ("joint_angle", "joint_velocity", "camera"):
+            if name not in errors:
                 continue
-            R = 1.0 / self._initial_precision[name]
+            e = errors[name]
+            S = self._innovation_variance(name, cov_prior, g_cam) + 1.0 / self.precision[name]
+            stat = e * e / S
             if name == "camera":
-                S = G @ cov_prior @ G.T + np.diag(R)
-                stat = np.array([float(e @ np.linalg.solve(S, e)) / 2.0])
-            else:
-                sel = self._sel[0] if name == "joint_angle" else self._sel[1]
-                s_diag = np.diag(cov_prior)[sel] + R
-                stat = e * e / s_diag
+                stat = np.array([stat.mean()])
             m = self._fault_stat[name]
             m += alpha * (stat - m)
             thr = self._fault_threshold[name]
-            # Flag above the threshold; heal once well below it (hysteresis).
             self._fault[name] = np.where(self._fault[name], m > 0.5 * thr, m > thr)
 
-    def _learn_precisions(self, terms, cov_prior) -> None:
+    def _learn_precisions(self, errors, cov_prior, g_cam) -> None:
         """Log-precision gradient step per channel, on the innovations.
 
         With the belief marginalised, a channel's free energy is the negative log-likelihood
         of its innovation ``nu ~ N(0, S)``, ``S = G Sigma- G' + inv(P)``. For ``P = exp(l)``,
-        per component (diagonal ``S``), ``dF/dl_i = 1/2 (nu_i^2 / S_ii - 1) / (P_i S_ii)``. Its fixed
-        point is ``E[nu^2] = S``, the innovation-matching condition of adaptive Kalman
+        per component (diagonal ``S``), ``dF/dl_i = 1/2 (nu_i^2 / S_ii - 1) / (P_i S_ii)``. Its
+        fixed point is ``E[nu^2] = S``, the innovation-matching condition of adaptive Kalman
         filtering (Mehra 1970, IEEE Trans Autom Control 15(2)). Steps are slow (rate
         ``precision_learning_rate`` per second) and bounded to +-7 in ``l`` around the start.
         """
         rate = self.options["precision_learning_rate"] * self.dt
-        for name, e, G, _P in terms:
-            if name not in ("joint_angle", "joint_velocity", "camera"):
+        for name in ("joint_angle", "joint_velocity", "camera"):
+            if name not in errors:
                 continue
+            e = errors[name]
             cur = self.precision[name]
-            if name == "camera":
-                gs = np.einsum("ij,jk,ik->i", G, cov_prior, G)
-            else:
-                sel = self._sel[0] if name == "joint_angle" else self._sel[1]
-                gs = np.diag(cov_prior)[sel]
-            S = gs + 1.0 / cur
+            S = self._innovation_variance(name, cov_prior, g_cam) + 1.0 / cur
             grad = 0.5 * (e * e / S - 1.0) / (cur * S)
+            healthy = ~self._fault[name]
             if name == "camera":
                 grad = np.full(2, grad.mean())
-            healthy = ~self._fault[name] if name != "camera" else ~self._fault[name].repeat(2)
+                healthy = healthy.repeat(2)
             log_p = np.log(cur) - rate * grad * healthy
             p0 = self._initial_precision[name]
             self.precision[name] = np.exp(np.clip(log_p, np.log(p0) - 7.0, np.log(p0) + 7.0))
@@ -609,6 +833,8 @@ class ArmAgent:
         """
         p1, n = self.order + 1, self.n
         out: dict[str, Any] = dict(self._diag)
+        if getattr(self, "_lazy_errors", False) and "prediction_error" not in out:
+            out["prediction_error"] = self._error_dict()
         if self._belief is not None:
             out["belief"] = self._belief.reshape(p1, n).copy()
             out["belief_sd"] = np.sqrt(np.maximum(np.diag(self._cov), 0.0)).reshape(p1, n)

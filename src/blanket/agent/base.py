@@ -1,0 +1,630 @@
+"""Active-inference agent for a differential-drive base driving to a dock between bench rows.
+
+Generative model
+----------------
+The belief is the planar pose ``(x, y, heading)`` in generalized coordinates, an array
+``(order + 1, 3)`` (order-major, :mod:`blanket.gcoords`): row 0 the pose, row 1 its world-frame
+rate, row 2 (``order=2``) its acceleration. Sensory channels and priors:
+
+- ``odometry`` (velocity order): wheel speeds ``g = wheel_speeds(cos h x' + sin h y', h')``
+  with the effective track (:class:`blanket.body.diff_drive.DiffDriveModel`), precision
+  ``1 / wheel_speed_noise^2``;
+- ``gyro`` (velocity order, optional): ``g = h'``;
+- ``lateral_slip`` (velocity order): the no-side-slip constraint ``-sin h x' + cos h y' +
+  icr h' = 0``, a prior of the body model with a small standard deviation;
+- ``landmark_bearing`` / ``landmark_range`` (pose order, at each fresh camera frame, visible
+  posts only): the range-bearing model of :mod:`blanket.sensors.landmarks` with its analytic
+  Jacobians, precisions ``1 / noise^2``;
+- prediction: the previous belief carried forward by the shift operator, ``expm(D dt) mu~``
+  (the generalized motion ``D mu~``), with precision from the previous curvature of the free
+  energy deflated by random accelerations (Laplace assumption: the conditional covariance is
+  the inverse curvature);
+- ``goal`` (the attractor, velocity order): prior dynamics ``x' = f(x)``, the world-frame rate
+  that the polar-coordinate law of Astolfi 1999 (J Dyn Syst Meas Control 121, "Exponential
+  stabilization of a wheeled mobile robot via discontinuous control"; gains as in Siegwart,
+  Nourbakhsh & Scaramuzza 2011, sec. 3.6.2.4: ``v = k_rho rho``, ``omega = k_alpha alpha +
+  k_beta beta``) asks for at the believed pose. A differential drive cannot be stabilised to a
+  pose by smooth time-invariant feedback (Brockett 1983), so the law is discontinuous at the
+  goal and staged: *localise* (turn on the spot until enough posts are seen), *travel* along
+  waypoints, *approach* the dock with the polar law, *align* the heading on the spot.
+
+Perception descends the Laplace-encoded free energy (Friston 2008, "Hierarchical models in the
+brain", PLoS Comput Biol, eqs. 7-9; Buckley et al. 2017, J Math Psychol, sec. 5)
+``F = 1/2 sum_m e_m' P_m e_m + 1/2 e_p' P_p e_p + 1/2 e_f' P_f e_f - 1/2 sum ln|P|``
+with steps scaled by its curvature (Gauss-Newton: ``d mu = -H^-1 dF/dmu``, ``H = sum J' P J``),
+which is stable for any precision. The goal term is differentiated only through the rate (the
+attractor's dependence on the pose is held fixed) so the goal never drags the pose belief
+towards the dock; it is also left out of the reported belief covariance.
+
+Action descends the same free energy through the sensations it changes: with wheel-velocity
+control ``dy/da = I`` for the odometry channel, so ``da = -gain H_a^-1 P_o e_o`` where ``H_a``
+is the curvature of F in the action once the belief has relaxed (a Schur complement,
+``P_o - P_o G H^-1 G' P_o``). Since the relaxed belief leans towards the attractor, the
+precision-weighted odometry error is the attractor's pull seen in wheel space; action cancels it.
+
+Obstacles: the map's benches (and posts) are inflated by the half width plus a margin and a
+shortest path through their corners (a visibility graph, Lozano-Perez & Wesley 1979, Commun
+ACM 22) gives the waypoints the attractor follows; planning happens once, when the base first
+localises. Limits: axis-aligned boxes only; no replanning around unmapped obstacles; the start
+must leave the base's own clearance; a bearing-only camera needs three visible posts to localise
+(two with ranges); waypoint corners are cut by at most ``waypoint_radius_m``.
+"""
+
+from __future__ import annotations
+
+import heapq
+from typing import Any
+
+import numpy as np
+from scipy.linalg import expm
+
+from blanket.base_description import BaseDescription
+from blanket.body.diff_drive import DiffDriveModel, polar_coordinates, pose_rate, wrap_angle
+from blanket.errors import ConfigError
+from blanket.gcoords import shift_operator
+from blanket.sensors.landmarks import bearing_range, bearing_range_jacobian
+
+__all__ = ["BaseAgent", "plan_waypoints", "segment_hits_box", "attractor_velocity"]
+
+
+def segment_hits_box(p: np.ndarray, q: np.ndarray, box: np.ndarray) -> bool:
+    """Whether the segment ``p -> q`` passes through the open box ``(x0, y0, x1, y1)`` (slab test)."""
+    t0, t1 = 0.0, 1.0
+    d = np.asarray(q, dtype=float) - np.asarray(p, dtype=float)
+    for axis in range(2):
+        lo, hi = box[axis], box[axis + 2]
+        if abs(d[axis]) < 1e-12:
+            if not (lo < p[axis] < hi):
+                return False
+            continue
+        ta = (lo - p[axis]) / d[axis]
+        tb = (hi - p[axis]) / d[axis]
+        if ta > tb:
+            ta, tb = tb, ta
+        t0, t1 = max(t0, ta), min(t1, tb)
+        if t0 >= t1:
+            return False
+    return True
+
+
+def plan_waypoints(
+    start_xy: np.ndarray, goal_xy: np.ndarray, boxes: np.ndarray, inflation_m: float
+) -> list[np.ndarray]:
+    """Shortest path from start to goal around inflated boxes, through their corners.
+
+    Nodes are the corners of the boxes grown by ``inflation_m`` (nudged 1 mm outwards); edges
+    join nodes whose segment crosses no grown box (boxes that contain an end point are ignored
+    for that edge, so a start inside a margin can leave it). Dijkstra's algorithm on the
+    visibility graph. Returns the waypoints after the start, ending with the goal.
+    """
+    b = np.asarray(boxes, dtype=float).reshape(-1, 4)
+    grown = b + np.array([-1, -1, 1, 1]) * inflation_m
+    corners = []
+    for x0, y0, x1, y1 in grown + np.array([-1, -1, 1, 1]) * 1e-3:
+        corners += [(x0, y0), (x1, y0), (x1, y1), (x0, y1)]
+    nodes = [np.asarray(start_xy, float), np.asarray(goal_xy, float)]
+    for c in corners:
+        c = np.array(c)
+        inside = np.any((grown[:, 0] < c[0]) & (c[0] < grown[:, 2]) & (grown[:, 1] < c[1]) & (c[1] < grown[:, 3]))
+        if not inside:
+            nodes.append(c)
+
+    def contains(box: np.ndarray, p: np.ndarray) -> bool:
+        return bool(box[0] < p[0] < box[2] and box[1] < p[1] < box[3])
+
+    def free(i: int, j: int) -> bool:
+        p, q = nodes[i], nodes[j]
+        for box in grown:
+            if contains(box, p) or contains(box, q):
+                continue
+            if segment_hits_box(p, q, box):
+                return False
+        return True
+
+    n = len(nodes)
+    dist = np.full(n, np.inf)
+    prev = np.full(n, -1)
+    dist[0] = 0.0
+    heap = [(0.0, 0)]
+    done = np.zeros(n, dtype=bool)
+    while heap:
+        d, i = heapq.heappop(heap)
+        if done[i]:
+            continue
+        done[i] = True
+        if i == 1:
+            break
+        for j in range(n):
+            if done[j] or j == i:
+                continue
+            nd = d + float(np.hypot(*(nodes[j] - nodes[i])))
+            if nd < dist[j] and free(i, j):
+                dist[j] = nd
+                prev[j] = i
+                heapq.heappush(heap, (nd, j))
+    if not np.isfinite(dist[1]):
+        return [nodes[1]]
+    path = []
+    k = 1
+    while k != 0:
+        path.append(nodes[k])
+        k = int(prev[k])
+    return path[::-1]
+
+
+def attractor_velocity(
+    pose: np.ndarray,
+    target: np.ndarray,
+    final: bool,
+    gains: tuple[float, float, float],
+    speed_m_s: float,
+    turn_rad_s: float,
+    align_radius_m: float = 0.03,
+) -> tuple[float, float]:
+    """Desired body velocity ``(v, omega)`` towards a waypoint or the final pose.
+
+    Waypoints: turn on the spot while the target bearing exceeds 0.5 rad, otherwise drive with
+    ``v = min(speed, k_rho rho + 0.1)`` and ``omega = k_alpha alpha``. The final pose: the polar
+    law ``v = k_rho rho``, ``omega = k_alpha alpha + k_beta beta`` (Astolfi 1999; Siegwart et al.
+    2011, sec. 3.6.2.4, stable for ``k_rho > 0``, ``k_beta < 0``, ``k_alpha > k_rho``), driving
+    backwards when the goal lies behind, and inside ``align_radius_m`` a pure heading alignment
+    (the staged goal that sidesteps Brockett's condition).
+    """
+    k_rho, k_alpha, k_beta = gains
+    if not final:
+        rho, alpha, _ = polar_coordinates(pose, np.r_[target[:2], 0.0])
+        if abs(alpha) > 0.5:
+            return 0.0, float(np.clip(k_alpha * alpha, -turn_rad_s, turn_rad_s))
+        v = min(speed_m_s, k_rho * rho + 0.1) * np.cos(alpha)
+        return float(v), float(np.clip(k_alpha * alpha, -turn_rad_s, turn_rad_s))
+    rho, alpha, beta = polar_coordinates(pose, target)
+    if rho < align_radius_m:
+        err = float(wrap_angle(target[2] - pose[2]))
+        return 0.0, float(np.clip(1.5 * err, -turn_rad_s, turn_rad_s)) if abs(err) > 0.01 else 0.0
+    direction = 1.0
+    if abs(alpha) > np.pi / 2:  # goal behind: reverse (alpha, beta measured from the rear)
+        direction = -1.0
+        alpha = float(wrap_angle(alpha + np.pi))
+        beta = float(wrap_angle(beta + np.pi))
+    v = direction * min(speed_m_s, k_rho * rho)
+    omega = k_alpha * alpha + k_beta * beta
+    return float(v), float(np.clip(omega, -turn_rad_s, turn_rad_s))
+
+
+_DEFAULTS: dict[str, Any] = {
+    "embedding_order": 1,
+    "goal_precision": 400.0,
+    "acceleration_sd_m_s2": 2.0,
+    "yaw_acceleration_sd_rad_s2": 4.0,
+    "pose_drift_sd_m": 0.002,
+    "lateral_slip_sd_m_s": None,
+    "perception_iterations": 2,
+    "action_gain": 0.6,
+    "cruise_fraction": 0.7,
+    "gains": (0.8, 2.5, -0.8),
+    "waypoint_radius_m": 0.2,
+    "clearance_margin_m": 0.25,
+    "dock_approach_m": 0.8,
+    "search_turn_fraction": 0.5,
+}
+
+
+class BaseAgent:
+    """Active-inference controller for ``blanket/base-goto-v0`` (see the module docstring).
+
+    Parameters
+    ----------
+    description : BaseDescription
+        The env's static description (the only thing besides observations the agent reads).
+    **options
+        Any of ``embedding_order`` (1 or 2), ``goal_precision`` (attractor precision on the
+        velocity order, (m/s)^-2), ``acceleration_sd_m_s2``, ``yaw_acceleration_sd_rad_s2``
+        (random accelerations of the prediction), ``pose_drift_sd_m`` (per-step pose noise),
+        ``lateral_slip_sd_m_s`` (default 0.02 for the rover, 0.1 for a skid steer),
+        ``perception_iterations``, ``action_gain`` (0, 1], ``cruise_fraction`` (of the top speed),
+        ``gains`` (k_rho, k_alpha, k_beta), ``waypoint_radius_m``, ``clearance_margin_m``,
+        ``dock_approach_m`` (pre-dock waypoint distance), ``search_turn_fraction``.
+    """
+
+    def __init__(self, description: BaseDescription, **options: Any) -> None:
+        unknown = sorted(set(options) - set(_DEFAULTS))
+        if unknown:
+            raise ConfigError(f"unknown BaseAgent option(s) {unknown}; valid: {sorted(_DEFAULTS)}")
+        opts = {**_DEFAULTS, **options}
+        order = opts["embedding_order"]
+        if order not in (1, 2):
+            raise ConfigError(f"embedding_order must be 1 or 2, got {order!r}")
+        if not (0 < float(opts["action_gain"]) <= 1):
+            raise ConfigError(f"action_gain must be in (0, 1], got {opts['action_gain']!r}")
+        if not (float(opts["goal_precision"]) > 0):
+            raise ConfigError(f"goal_precision must be > 0, got {opts['goal_precision']!r}")
+        self.description = description
+        self.options = opts
+        d = description
+        self.model = DiffDriveModel(d.wheel_radius_m, d.effective_track_m, d.icr_offset_m)
+        self.order = int(order)
+        self.n = 3 * (self.order + 1)
+        self.dt = 1.0 / d.control_hz
+        D = shift_operator(self.order, 3)
+        self.transition = expm(D * self.dt)
+        slip = opts["lateral_slip_sd_m_s"]
+        if slip is None:
+            slip = 0.02 if d.icr_offset_m == 0.0 and d.effective_track_m == d.track_m else 0.1
+        self.lateral_precision = 1.0 / float(slip) ** 2
+        self.odometry_precision = 1.0 / max(d.wheel_speed_noise_rad_s, 1e-3) ** 2
+        self.gyro_precision = 1.0 / max(d.yaw_rate_noise_rad_s, 1e-4) ** 2
+        self.bearing_precision = 1.0 / max(d.bearing_noise_rad, 1e-4) ** 2
+        self.range_precision = (
+            None if d.range_noise_m is None else 1.0 / max(d.range_noise_m, 1e-4) ** 2
+        )
+        acc = np.array(
+            [opts["acceleration_sd_m_s2"]] * 2 + [opts["yaw_acceleration_sd_rad_s2"]], dtype=float
+        )
+        q = np.zeros(self.n)
+        q[:3] = float(opts["pose_drift_sd_m"]) ** 2
+        if self.order == 1:
+            q[3:6] = (acc * self.dt) ** 2
+        else:
+            q[3:6] = (0.1 * acc * self.dt) ** 2
+            q[6:9] = (10.0 * acc * self.dt) ** 2
+        self.process_covariance = np.diag(q)
+        self.speed_m_s = float(opts["cruise_fraction"]) * d.wheel_radius_m * d.wheel_speed_limit_rad_s
+        self.turn_rad_s = (
+            float(opts["cruise_fraction"]) * 2 * d.wheel_radius_m * d.wheel_speed_limit_rad_s
+            / d.effective_track_m
+        )
+        half_gap = self._min_gap(d) / 2.0
+        self.inflation_m = min(d.half_width_m + float(opts["clearance_margin_m"]), half_gap - 0.05)
+        self.reset()
+
+    @classmethod
+    def from_env(cls, env: Any, **options: Any) -> BaseAgent:
+        """Build from ``env.unwrapped.description`` (a :class:`BaseDescription`)."""
+        desc = getattr(env.unwrapped, "description", None)
+        if not isinstance(desc, BaseDescription):
+            raise ConfigError("env.unwrapped.description must be a BaseDescription (a base env)")
+        return cls(desc, **options)
+
+    @staticmethod
+    def _min_gap(d: BaseDescription) -> float:
+        b = d.bench_boxes_m
+        gaps = []
+        for i in range(len(b)):
+            for j in range(len(b)):
+                if i != j:
+                    gx = max(b[j, 0] - b[i, 2], b[i, 0] - b[j, 2], 0.0)
+                    gy = max(b[j, 1] - b[i, 3], b[i, 1] - b[j, 3], 0.0)
+                    g = float(np.hypot(gx, gy))
+                    if g > 0:
+                        gaps.append(g)
+        return min(gaps) if gaps else 10.0
+
+    # ------------------------------------------------------------------ lifecycle
+    def reset(self) -> None:
+        """Forget the episode: belief back to an uninformed pose, action zero, no plan."""
+        self.mu = np.zeros((self.order + 1, 3))
+        self.covariance = np.diag(np.r_[[100.0] * 3, [1e-2] * (self.n - 3)])
+        self.action = np.zeros(2)
+        self.localised = False
+        self.waypoints: list[np.ndarray] = []
+        self.waypoint_index = 0
+        self.stage = "localise"
+        self._diag: dict[str, Any] = {}
+        self._free_energy = 0.0
+
+    # ------------------------------------------------------------------ perception
+    def _obs(self, obs: dict[str, Any]) -> dict[str, Any]:
+        L = self.description.n_landmarks
+        out = {
+            "wheel": np.asarray(obs["wheel_speed_rad_s"], dtype=float).reshape(2),
+            "fresh": bool(int(np.asarray(obs.get("camera_fresh", 0)))),
+            "visible": np.asarray(obs.get("landmark_visible", np.zeros(L)), dtype=bool).reshape(L),
+            "bearing": np.asarray(obs.get("landmark_bearing_rad", np.zeros(L)), dtype=float).reshape(L),
+            "range": None,
+            "gyro": None,
+        }
+        if self.range_precision is not None and "landmark_range_m" in obs:
+            out["range"] = np.asarray(obs["landmark_range_m"], dtype=float).reshape(L)
+        if self.description.use_gyro and "yaw_rate_rad_s" in obs:
+            out["gyro"] = float(np.asarray(obs["yaw_rate_rad_s"]).reshape(-1)[0])
+        return out
+
+    def _landmark_terms(
+        self, pose: np.ndarray, y: dict[str, Any]
+    ) -> list[tuple[str, np.ndarray, np.ndarray, np.ndarray]]:
+        """(channel, error, Jacobian of the prediction w.r.t. the pose, precision) per channel."""
+        d = self.description
+        vis = y["visible"]
+        if not (y["fresh"] and vis.any()):
+            return []
+        lm = d.landmarks_m[vis]
+        b, r = bearing_range(pose, lm, d.camera_offset_m)
+        jb, jr = bearing_range_jacobian(pose, lm, d.camera_offset_m)
+        terms = [
+            (
+                "landmark_bearing",
+                np.asarray(wrap_angle(y["bearing"][vis] - b)),
+                jb,
+                np.full(len(lm), self.bearing_precision),
+            )
+        ]
+        if y["range"] is not None:
+            terms.append(("landmark_range", y["range"][vis] - r, jr, np.full(len(lm), self.range_precision)))
+        return terms
+
+    def _velocity_terms(
+        self, mu_flat: np.ndarray, y: dict[str, Any]
+    ) -> list[tuple[str, np.ndarray, np.ndarray, np.ndarray]]:
+        """Odometry, gyro and no-side-slip terms; Jacobians w.r.t. the full flattened belief."""
+        h = mu_flat[2]
+        rate = mu_flat[3:6]
+        idx = [2, 3, 4, 5]
+        g = self.model.predict_wheel_speeds(h, rate)
+        G = np.zeros((2, self.n))
+        G[:, idx] = self.model.predict_wheel_speeds_jacobian(h, rate)
+        terms = [("odometry", y["wheel"] - g, G, np.full(2, self.odometry_precision))]
+        if y["gyro"] is not None:
+            Jg = np.zeros((1, self.n))
+            Jg[0, 5] = 1.0
+            terms.append(("gyro", np.array([y["gyro"] - rate[2]]), Jg, np.array([self.gyro_precision])))
+        Jl = np.zeros((1, self.n))
+        Jl[0, idx] = self.model.lateral_residual_jacobian(h, rate)
+        terms.append(
+            ("lateral_slip", np.array([-self.model.lateral_residual(h, rate)]), Jl, np.array([self.lateral_precision]))
+        )
+        return terms
+
+    def _goal_rate(self, pose: np.ndarray) -> np.ndarray:
+        """Attractor ``f(x)`` on the velocity order, world frame."""
+        v, om = self._desired_body_velocity(pose)
+        return pose_rate(pose, v, om, lateral_m_s=-self.model.icr_offset_m * om)
+
+    def _desired_body_velocity(self, pose: np.ndarray) -> tuple[float, float]:
+        d = self.description
+        if not self.localised:
+            turn = float(self.options["search_turn_fraction"]) * self.turn_rad_s
+            return 0.0, turn
+        # advance along the waypoints
+        while self.waypoint_index < len(self.waypoints) - 1:
+            wp = self.waypoints[self.waypoint_index]
+            if np.hypot(*(wp[:2] - pose[:2])) < float(self.options["waypoint_radius_m"]):
+                self.waypoint_index += 1
+            else:
+                break
+        final = self.waypoint_index == len(self.waypoints) - 1
+        target = self.waypoints[self.waypoint_index]
+        self.stage = "travel" if not final else "approach"
+        if final and np.hypot(*(target[:2] - pose[:2])) < 0.03:
+            self.stage = "align"
+        v, om = attractor_velocity(
+            pose,
+            target if final else np.r_[target[:2], 0.0],
+            final,
+            tuple(self.options["gains"]),
+            self.speed_m_s,
+            self.turn_rad_s,
+        )
+        # keep both wheels inside the limit (scale v and omega together: same curvature)
+        w = self.model.wheel_speeds(v, om)
+        peak = float(np.max(np.abs(w)))
+        cap = 0.95 * d.wheel_speed_limit_rad_s
+        if peak > cap:
+            v, om = v * cap / peak, om * cap / peak
+        return v, om
+
+    def _localise(self, y: dict[str, Any]) -> bool:
+        """Global pose from one frame: grid search over positions, then Gauss-Newton refinement."""
+        d = self.description
+        vis = y["visible"]
+        need = 2 if y["range"] is not None else 3
+        if not (y["fresh"] and vis.sum() >= need):
+            return False
+        lm = d.landmarks_m[vis]
+        bounds = d.world_bounds_m
+        gx, gy = np.meshgrid(
+            np.arange(bounds[0], bounds[2], 0.1), np.arange(bounds[1], bounds[3], 0.1)
+        )
+        cam = np.stack([gx.ravel(), gy.ravel()], axis=1)  # candidate lens positions
+        delta = lm[None, :, :] - cam[:, None, :]
+        headings = np.arctan2(delta[..., 1], delta[..., 0]) - y["bearing"][vis][None, :]
+        hbar = np.arctan2(np.sin(headings).mean(1), np.cos(headings).mean(1))
+        cost = self.bearing_precision * np.sum(wrap_angle(headings - hbar[:, None]) ** 2, axis=1)
+        if y["range"] is not None:
+            rr = np.hypot(delta[..., 0], delta[..., 1])
+            cost = cost + self.range_precision * np.sum((rr - y["range"][vis][None, :]) ** 2, axis=1)
+        best = None
+        for k in np.argsort(cost)[:5]:
+            pose = np.array(
+                [
+                    cam[k, 0] - d.camera_offset_m * np.cos(hbar[k]),
+                    cam[k, 1] - d.camera_offset_m * np.sin(hbar[k]),
+                    hbar[k],
+                ]
+            )
+            for _ in range(8):
+                H = np.zeros((3, 3))
+                grad = np.zeros(3)
+                for _, e, J, p in self._landmark_terms(pose, y):
+                    H += J.T @ (p[:, None] * J)
+                    grad -= J.T @ (p * e)
+                step = -np.linalg.solve(H + 1e-6 * np.eye(3), grad)
+                pose = pose + step
+                pose[2] = wrap_angle(pose[2])
+            chi2 = sum(float(np.sum(p * e * e)) for _, e, _, p in self._landmark_terms(pose, y))
+            if best is None or chi2 < best[0]:
+                best = (chi2, pose, H)
+        chi2, pose, H = best
+        dof = int(vis.sum()) * (2 if y["range"] is not None else 1) - 3
+        if chi2 > 3.0 * max(dof, 1) + 10.0:
+            return False
+        self.mu[0] = pose
+        body_v, body_om = self.model.body_velocity(y["wheel"])
+        self.mu[1] = pose_rate(pose, body_v, body_om)
+        if self.order == 2:
+            self.mu[2] = 0.0
+        cov = np.diag(np.r_[[1.0] * 3, [1e-2] * (self.n - 3)])
+        cov[:3, :3] = np.linalg.inv(H + 1e-6 * np.eye(3))
+        self.covariance = cov
+        self.localised = True
+        dock = d.dock_pose
+        approach = dock[:2] - float(self.options["dock_approach_m"]) * np.array(
+            [np.cos(dock[2]), np.sin(dock[2])]
+        )
+        post_boxes = np.c_[d.landmarks_m - 0.05, d.landmarks_m + 0.05]
+        boxes = np.vstack([d.bench_boxes_m, post_boxes])
+        path = plan_waypoints(pose[:2], approach, boxes, self.inflation_m)
+        self.waypoints = [np.r_[p, 0.0] for p in path] + [dock.copy()]
+        self.waypoint_index = 0
+        return True
+
+    def perceive(self, obs: dict[str, Any]) -> None:
+        """One perception update from an observation (prediction, then curvature-scaled descent)."""
+        y = self._obs(obs)
+        # prediction by the generalized motion D mu~ (exact for the linear shift: expm(D dt))
+        flat_prev = self.mu.ravel()
+        pred = self.transition @ flat_prev
+        pred[2] = wrap_angle(pred[2])
+        cov_pred = self.transition @ self.covariance @ self.transition.T + self.process_covariance
+        prior_precision = np.linalg.inv(cov_pred)
+        if not self.localised and self._localise(y):
+            pred = self.mu.ravel().copy()
+            prior_precision = np.linalg.inv(self.covariance)
+        m = pred.copy()
+        goal_P = float(self.options["goal_precision"])
+        H_evidence = prior_precision
+        for _ in range(int(self.options["perception_iterations"])):
+            grad = np.zeros(self.n)
+            H = np.zeros((self.n, self.n))
+            terms = self._velocity_terms(m, y)
+            if self.localised:
+                for name, e, Jp, p in self._landmark_terms(m[:3], y):
+                    J = np.zeros((len(e), self.n))
+                    J[:, :3] = Jp
+                    terms.append((name, e, J, p))
+            for _, e, J, p in terms:
+                grad -= J.T @ (p * e)
+                H += J.T @ (p[:, None] * J)
+            dm = m - pred
+            dm[2] = wrap_angle(dm[2])
+            grad += prior_precision @ dm
+            H += prior_precision
+            H_evidence = H.copy()
+            f = self._goal_rate(m[:3])
+            grad[3:6] += goal_P * (m[3:6] - f)
+            H[3:6, 3:6] += goal_P * np.eye(3)
+            step = -np.linalg.solve(H, grad)
+            m = m + step
+            m[2] = wrap_angle(m[2])
+        self.mu = m.reshape(self.order + 1, 3)
+        self.covariance = np.linalg.inv(H_evidence)
+        self.covariance = 0.5 * (self.covariance + self.covariance.T)
+        self._last_H = H
+        # diagnostics: errors and free energy at the new belief
+        terms = self._velocity_terms(m, y)
+        if self.localised:
+            terms += [(n, e, J, p) for n, e, J, p in self._landmark_terms(m[:3], y)]
+        f = self._goal_rate(m[:3])
+        e_goal = m[3:6] - f
+        dm = m - pred
+        dm[2] = wrap_angle(dm[2])
+        F = 0.5 * float(dm @ prior_precision @ dm) + 0.5 * goal_P * float(e_goal @ e_goal)
+        L = self.description.n_landmarks
+        diag: dict[str, Any] = {}
+        for name in ("landmark_bearing", "landmark_range"):
+            diag[f"prediction_error.{name}"] = np.full(L, np.nan)
+            diag[f"precision.{name}"] = np.zeros(L)
+        for name, e, _, p in terms:
+            F += 0.5 * float(np.sum(p * e * e)) - 0.5 * float(np.sum(np.log(p)))
+            if name.startswith("landmark"):
+                diag[f"prediction_error.{name}"][y["visible"]] = e
+                diag[f"precision.{name}"][y["visible"]] = p
+            else:
+                diag[f"prediction_error.{name}"] = e
+                diag[f"precision.{name}"] = p
+        diag["prediction_error.goal"] = e_goal
+        diag["precision.goal"] = np.full(3, goal_P)
+        self._free_energy = F
+        self._diag = diag
+        self._y = y
+
+    # ------------------------------------------------------------------ action
+    def _update_action(self) -> np.ndarray:
+        """Curvature-scaled descent of F in the wheel speeds (velocity control: dy/da = I)."""
+        y = self._y
+        m = self.mu.ravel()
+        _, e, G, p = self._velocity_terms(m, y)[0]
+        P = np.diag(p)
+        # curvature of F in the action with the belief relaxed (Schur complement)
+        H_a = P - P @ G @ np.linalg.solve(self._last_H, G.T @ P)
+        dF_da = P @ e
+        step = -np.linalg.solve(H_a + 1e-9 * np.eye(2), dF_da)
+        lim = self.description.wheel_speed_limit_rad_s
+        self.action = np.clip(y["wheel"] + float(self.options["action_gain"]) * step, -lim, lim)
+        if not self.localised:
+            # searching: no pose yet, the attractor is a turn on the spot in body terms
+            _, om = self._desired_body_velocity(m[:3])
+            self.action = self.model.wheel_speeds(0.0, om)
+        return self.action
+
+    def act(self, obs: dict[str, Any]) -> np.ndarray:
+        """Perceive, then act: returns ``(left, right)`` wheel speeds in rad/s (float32)."""
+        self.perceive(obs)
+        return self._update_action().astype(np.float32)
+
+    def predict(
+        self,
+        obs: dict[str, Any],
+        state: Any = None,
+        episode_start: Any = None,
+        deterministic: bool = True,
+    ) -> tuple[np.ndarray, Any]:
+        """stable-baselines3-style policy call; resets the belief where ``episode_start`` is true."""
+        if episode_start is not None and bool(np.any(episode_start)):
+            self.reset()
+        return self.act(obs), state
+
+    def diagnostics(self) -> dict[str, Any]:
+        """Internal state for logs: belief, belief_sd, free_energy, prediction errors, precisions."""
+        sd = np.sqrt(np.clip(np.diag(self.covariance), 0.0, None)).reshape(self.order + 1, 3)
+        out: dict[str, Any] = {
+            "belief": self.mu.copy(),
+            "belief_sd": sd,
+            "free_energy": float(self._free_energy),
+            "localised": bool(self.localised),
+            "stage": self.stage,
+            "waypoint_index": int(self.waypoint_index),
+        }
+        out.update({k: np.array(v, dtype=float) for k, v in self._diag.items()})
+        return out
+
+
+def run_base_episode(env: Any, agent: BaseAgent, seed: int | None = None) -> dict[str, Any]:
+    """Run one episode with the standard gymnasium API; summary of the outcome.
+
+    Returns
+    -------
+    dict
+        ``success``, ``time_to_success_s``, ``final_error_m``, ``final_heading_error_rad``,
+        ``contact`` (any bench contact), ``steps``.
+    """
+    obs, info = env.reset(seed=seed)
+    agent.reset()
+    contact = False
+    steps = 0
+    while True:
+        obs, _, terminated, truncated, info = env.step(agent.act(obs))
+        contact = contact or bool(info["contact"])
+        steps += 1
+        if terminated or truncated:
+            break
+    return {
+        "success": bool(info["success"]),
+        "time_to_success_s": info["time_to_success_s"],
+        "final_error_m": float(info["distance_m"]),
+        "final_heading_error_rad": float(info["heading_error_rad"]),
+        "contact": contact,
+        "steps": steps,
+    }
+
+
+__all__ += ["run_base_episode"]
