@@ -70,8 +70,10 @@ def test_goal_prior_gradient_exact_at_rest_on_target(planar_env):
     for i in range(agent.size):
         dz = np.zeros(agent.size)
         dz[i] = h
-        fd[i] = (agent.free_energy_and_gradient(obs, z + dz)[0]
-                 - agent.free_energy_and_gradient(obs, z - dz)[0]) / (2 * h)
+        fd[i] = (
+            agent.free_energy_and_gradient(obs, z + dz)[0]
+            - agent.free_energy_and_gradient(obs, z - dz)[0]
+        ) / (2 * h)
     np.testing.assert_allclose(grad, fd, rtol=1e-5, atol=1e-3)
 
 
@@ -88,8 +90,10 @@ def test_torque_action_gradient_and_newton_step():
     for i in range(4):
         d = np.zeros(4)
         d[i] = 1e-6
-        fd[i] = (torque_action_free_energy(tau + d, M, h, qdd, P)[0]
-                 - torque_action_free_energy(tau - d, M, h, qdd, P)[0]) / 2e-6
+        fd[i] = (
+            torque_action_free_energy(tau + d, M, h, qdd, P)[0]
+            - torque_action_free_energy(tau - d, M, h, qdd, P)[0]
+        ) / 2e-6
     np.testing.assert_allclose(g, fd, rtol=1e-6, atol=1e-8)
     # The Newton step the agent takes, tau = h + M qdd, zeroes the gradient.
     F, g0 = torque_action_free_energy(h + M @ qdd, M, h, qdd, P)

@@ -59,14 +59,27 @@ def _seed(text: str) -> int:
 
 
 def _add_run_options(p: argparse.ArgumentParser, episodes_default: int | None) -> None:
-    p.add_argument("--out", metavar="DIR", help="run folder (default: a new one under "
-                   "./blanket-runs/); a non-empty folder is refused unless --overwrite")
+    p.add_argument(
+        "--out",
+        metavar="DIR",
+        help="run folder (default: a new one under "
+        "./blanket-runs/); a non-empty folder is refused unless --overwrite",
+    )
     p.add_argument("--overwrite", action="store_true", help="reuse a non-empty --out folder")
-    p.add_argument("--episodes", type=_positive_int, default=episodes_default, metavar="N",
-                   help="number of episodes" + (f" (default {episodes_default})"
-                                                if episodes_default else ""))
-    p.add_argument("--seed", type=_seed, default=None, metavar="S",
-                   help="seed of the first episode; episode i uses S + i (default 0)")
+    p.add_argument(
+        "--episodes",
+        type=_positive_int,
+        default=episodes_default,
+        metavar="N",
+        help="number of episodes" + (f" (default {episodes_default})" if episodes_default else ""),
+    )
+    p.add_argument(
+        "--seed",
+        type=_seed,
+        default=None,
+        metavar="S",
+        help="seed of the first episode; episode i uses S + i (default 0)",
+    )
     p.add_argument("--no-log", action="store_true", help="do not write trajectory logs")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
 
@@ -87,18 +100,30 @@ def build_parser() -> argparse.ArgumentParser:
         "charging dock between bench rows (rover, husky) with the active-inference agent.",
         epilog=SAFETY_NOTE,
     )
-    demo.add_argument("--robot", default="iiwa", metavar="NAME",
-                      help=f"one of {', '.join(ARM_ROBOTS + BASE_ROBOTS)} (default iiwa)")
-    demo.add_argument("--control", default="velocity", metavar="MODE",
-                      help="velocity or torque (arms only; default velocity)")
+    demo.add_argument(
+        "--robot",
+        default="iiwa",
+        metavar="NAME",
+        help=f"one of {', '.join(ARM_ROBOTS + BASE_ROBOTS)} (default iiwa)",
+    )
+    demo.add_argument(
+        "--control",
+        default="velocity",
+        metavar="MODE",
+        help="velocity or torque (arms only; default velocity)",
+    )
     _add_run_options(demo, episodes_default=5)
 
-    run = sub.add_parser("run", help="run a scenario file", epilog=SAFETY_NOTE,
-                         description="Run the env and agent a scenario TOML file names.")
+    run = sub.add_parser(
+        "run",
+        help="run a scenario file",
+        epilog=SAFETY_NOTE,
+        description="Run the env and agent a scenario TOML file names.",
+    )
     run.add_argument("scenario", metavar="SCENARIO.toml")
     _add_run_options(run, episodes_default=None)
 
-    for name, (module, add_name, _run_name) in _EXTERNAL.items():
+    for module, add_name, _run_name in _EXTERNAL.values():
         try:
             mod = importlib.import_module(module)
         except ImportError:
@@ -120,8 +145,11 @@ def _demo_scenario(args: argparse.Namespace) -> Any:
             name=f"greenhouse-bench-{robot}-{args.control}",
         )
     if robot in BASE_ROBOTS:
-        return Scenario(env="blanket/base-goto-v0", env_options={"robot": robot},
-                        name=f"greenhouse-rows-{robot}")
+        return Scenario(
+            env="blanket/base-goto-v0",
+            env_options={"robot": robot},
+            name=f"greenhouse-rows-{robot}",
+        )
     raise ConfigError(
         f"--robot must be one of {', '.join(ARM_ROBOTS + BASE_ROBOTS)}, got {robot!r}"
     )
@@ -142,8 +170,13 @@ def _print_summary(summary: dict[str, Any], out_dir: Path) -> None:
         ("sim step + sensors, median", fmt(summary["sim_step_us"], " us", digits=1)),
     ]
     if "final_heading_error_rad" in summary:
-        rows.insert(3, ("final heading error, median",
-                        fmt(summary["final_heading_error_rad"], " deg", 57.29577951308232)))
+        rows.insert(
+            3,
+            (
+                "final heading error, median",
+                fmt(summary["final_heading_error_rad"], " deg", 57.29577951308232),
+            ),
+        )
     if summary.get("contact_rate"):
         rows.append(("episodes with contact", f"{summary['contact_rate'] * 100:.0f} %"))
     width = max(len(r[0]) for r in rows)
@@ -166,8 +199,14 @@ def _run(args: argparse.Namespace) -> int:
         episodes = args.episodes or scenario.episodes or 5
     seed = args.seed if args.seed is not None else (scenario.seed or 0)
     out_dir = prepare_out_dir(args.out, args.overwrite, prefix=scenario.name)
-    summary = run_scenario(scenario, episodes=episodes, seed=seed, out_dir=out_dir,
-                           progress=not args.quiet, record=not args.no_log)
+    summary = run_scenario(
+        scenario,
+        episodes=episodes,
+        seed=seed,
+        out_dir=out_dir,
+        progress=not args.quiet,
+        record=not args.no_log,
+    )
     _print_summary(summary, out_dir)
     return 0
 

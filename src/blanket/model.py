@@ -67,8 +67,6 @@ class ModelTerm(Protocol):
     name: str
     size: int
 
-    def evaluate(
-        self, obs: Mapping[str, Any], belief: np.ndarray, body: BodyState
-    ) -> Term | None:
+    def evaluate(self, obs: Mapping[str, Any], belief: np.ndarray, body: BodyState) -> Term | None:
         """Prediction error, Jacobian and precision at ``belief`` (shape (order+1, n))."""
         ...

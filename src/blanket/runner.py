@@ -125,8 +125,13 @@ def run_episode(
             success_time = float(tts) if tts is not None else (step + 1) * dt
         if writer is not None:
             external = dict(info.get("external", {}))
-            for key in ("distance_m", "success", "inside_tolerance", "contact",
-                        "heading_error_rad"):
+            for key in (
+                "distance_m",
+                "success",
+                "inside_tolerance",
+                "contact",
+                "heading_error_rad",
+            ):
                 if key in info:
                     external[key] = info[key]
             active = {"action": np.asarray(action, dtype=float)}
@@ -209,14 +214,26 @@ def run_episodes(
         from tqdm import tqdm
 
         steps = getattr(env.unwrapped, "max_steps", None)
-        bar = tqdm(total=episodes * steps if steps else None, desc=description, unit="step",
-                   unit_scale=True, leave=False, dynamic_ncols=True)
+        bar = tqdm(
+            total=episodes * steps if steps else None,
+            desc=description,
+            unit="step",
+            unit_scale=True,
+            leave=False,
+            dynamic_ncols=True,
+        )
     results = []
     try:
         for i in range(episodes):
             results.append(
-                run_episode(env, agent, seed + i, episode=i, writer=writer,
-                            on_step=bar.update if bar is not None else None)
+                run_episode(
+                    env,
+                    agent,
+                    seed + i,
+                    episode=i,
+                    writer=writer,
+                    on_step=bar.update if bar is not None else None,
+                )
             )
             if bar is not None:
                 ok = sum(r.success for r in results)
@@ -296,17 +313,31 @@ def _run_metadata(scenario: Scenario, env: Any, seed: int) -> dict[str, Any]:
 
     d = env.unwrapped.description
     meta: dict[str, Any] = {
-        "scenario": {"name": scenario.name, "env": scenario.env,
-                     "env_options": scenario.env_options, "agent": scenario.agent},
+        "scenario": {
+            "name": scenario.name,
+            "env": scenario.env,
+            "env_options": scenario.env_options,
+            "agent": scenario.agent,
+        },
         "seed": seed,
-        "versions": {"blanket": blanket.__version__, "numpy": np.__version__,
-                     "gymnasium": gymnasium.__version__,
-                     "pybullet": str(getattr(pybullet, "__version__", "unknown"))},
+        "versions": {
+            "blanket": blanket.__version__,
+            "numpy": np.__version__,
+            "gymnasium": gymnasium.__version__,
+            "pybullet": str(getattr(pybullet, "__version__", "unknown")),
+        },
         "env_id": scenario.env,
         "start_time": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
     }
-    for key in ("urdf_path", "end_effector", "control", "control_hz", "episode_s",
-                "tolerance_m", "robot"):
+    for key in (
+        "urdf_path",
+        "end_effector",
+        "control",
+        "control_hz",
+        "episode_s",
+        "tolerance_m",
+        "robot",
+    ):
         if hasattr(d, key):
             meta[key] = getattr(d, key)
     if hasattr(d, "joint_names"):
@@ -337,8 +368,9 @@ def write_figure(results: list[EpisodeResult], path: Path, title: str) -> Path:
         if np.isfinite(fe).any():
             ax2.plot(r.trace["t"], fe, color=color, lw=0.9, alpha=0.8)
     tol = getattr(results[0], "tolerance_m", None)
-    ax1.axhline(1.0 if tol is None else tol * 100, color="#c0392b", ls="--", lw=1,
-                label="tolerance")
+    ax1.axhline(
+        1.0 if tol is None else tol * 100, color="#c0392b", ls="--", lw=1, label="tolerance"
+    )
     ax1.set_yscale("log")
     ax1.set_ylabel("distance to target [cm]")
     ax1.legend(loc="upper right", frameon=False)
@@ -374,8 +406,15 @@ def run_scenario(
 
             writer = RunWriter(out_dir, _run_metadata(scenario, env, seed), overwrite=True)
         try:
-            results = run_episodes(env, agent, episodes, seed, writer=writer, progress=progress,
-                                   description=scenario.name)
+            results = run_episodes(
+                env,
+                agent,
+                episodes,
+                seed,
+                writer=writer,
+                progress=progress,
+                description=scenario.name,
+            )
         finally:
             if writer is not None:
                 writer.close()

@@ -186,8 +186,9 @@ def scenario_from_dict(
                 f"got {data[key]!r}"
             )
     if "env" not in data:
-        raise ConfigError(f"{where}: missing required key 'env' (an env id such as "
-                          "'blanket/arm-reach-v0')")
+        raise ConfigError(
+            f"{where}: missing required key 'env' (an env id such as 'blanket/arm-reach-v0')"
+        )
     for table in _TABLES:
         if table in data and not isinstance(data[table], dict):
             raise ConfigError(f"{where}: {table} must be a table ([{table}])")

@@ -61,7 +61,7 @@ from scipy.stats import chi2
 
 from blanket.description import ArmDescription
 from blanket.errors import ConfigError
-from blanket.model import BodyState, ModelTerm, Term
+from blanket.model import BodyState, ModelTerm
 
 try:  # the compiled perception kernel; the numpy path computes the same step
     from blanket.agent import _kernel
@@ -305,7 +305,9 @@ class ArmAgent:
         self._action = np.zeros(self.n)
         self._home = np.zeros(self.n)
         self.precision = {k: v.copy() for k, v in self._initial_precision.items()}
-        self._fault_stat = {k: np.zeros(self.n if k != "camera" else 1) for k in self._fault_threshold}
+        self._fault_stat = {
+            k: np.zeros(self.n if k != "camera" else 1) for k in self._fault_threshold
+        }
         self._fault = {k: np.zeros_like(v, dtype=bool) for k, v in self._fault_stat.items()}
         self._diag: dict[str, Any] = {}
         self._lazy_errors = False
@@ -443,7 +445,9 @@ class ArmAgent:
                 err = kv * (f - z[s1]) - z[s2]
             # In torque control the error is an acceleration: scale its precision by 1/kv^2 so
             # the goal weighs on the velocity belief as it does under velocity control.
-            scale = 1.0 if self.control == "velocity" else 1.0 / self.options["velocity_gain_1_s"] ** 2
+            scale = (
+                1.0 if self.control == "velocity" else 1.0 / self.options["velocity_gain_1_s"] ** 2
+            )
             terms.append(("goal", err, G, np.full(n, self.goal_precision * scale)))
         for term in self.extra_terms:
             t = term.evaluate(obs, z.reshape(self.order + 1, n), body)
@@ -615,8 +619,14 @@ class ArmAgent:
             self._cam_R, self._cam_t, self._cam_k = np.eye(3), np.zeros(3), np.ones(4)
         o = self.options
         self._attractor_params = np.array(
-            [o["attractor_gain_1_s"], o["max_tip_speed_m_s"], o["damping_m"] ** 2,
-             o["posture_gain_1_s"]], dtype=float)
+            [
+                o["attractor_gain_1_s"],
+                o["max_tip_speed_m_s"],
+                o["damping_m"] ** 2,
+                o["posture_gain_1_s"],
+            ],
+            dtype=float,
+        )
         if o["goal"] == "reference":
             self._goal_mode, self._pg = 0, 0.0
         elif self.control == "velocity":
@@ -641,17 +651,41 @@ class ArmAgent:
         pc = self._effective_precision("camera")
         err = self._err
         status, energy = _kernel.perception_step(
-            z, self._cov, self._phi_t, self._w,
+            z,
+            self._cov,
+            self._phi_t,
+            self._w,
             np.asarray(obs["joint_angle_rad"], dtype=float),
             np.asarray(obs["joint_velocity_rad_s"], dtype=float),
-            self._action, pq, pv, self._pm, tip, J, cam_on,
+            self._action,
+            pq,
+            pv,
+            self._pm,
+            tip,
+            J,
+            cam_on,
             np.asarray(obs["tip_pixel_px"], dtype=float) if cam_on else self._zero2,
-            self._cam_R, self._cam_t, self._cam_k, pc,
-            np.asarray(obs["target_position_m"], dtype=float), self._home,
-            self._attractor_params, self._goal_mode, self._pg,
+            self._cam_R,
+            self._cam_t,
+            self._cam_k,
+            pc,
+            np.asarray(obs["target_position_m"], dtype=float),
+            self._home,
+            self._attractor_params,
+            self._goal_mode,
+            self._pg,
             float(self.options["velocity_gain_1_s"]),
-            self._z_out, self._cov_out, self._cov_prior, self._f_out, self._F, self._g_cam,
-            err["joint_angle"], err["joint_velocity"], err["motor"], err["camera"], err["goal"],
+            self._z_out,
+            self._cov_out,
+            self._cov_prior,
+            self._f_out,
+            self._F,
+            self._g_cam,
+            err["joint_angle"],
+            err["joint_velocity"],
+            err["motor"],
+            err["camera"],
+            err["goal"],
             self._work,
         )
         if status != _kernel.OK:

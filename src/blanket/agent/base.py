@@ -198,6 +198,7 @@ _DEFAULTS: dict[str, Any] = {
     "yaw_acceleration_sd_rad_s2": 4.0,
     "pose_drift_sd_m": 0.002,
     "lateral_slip_sd_m_s": None,
+    "slip_sd_rad_s": None,
     "perception_iterations": 2,
     "action_gain": 0.6,
     "cruise_fraction": 0.7,
@@ -221,6 +222,8 @@ class BaseAgent:
         velocity order, (m/s)^-2), ``acceleration_sd_m_s2``, ``yaw_acceleration_sd_rad_s2``
         (random accelerations of the prediction), ``pose_drift_sd_m`` (per-step pose noise),
         ``lateral_slip_sd_m_s`` (default 0.02 for the rover, 0.1 for a skid steer),
+        ``slip_sd_rad_s`` (common, differential) unmodelled wheel slip per wheel (default (0, 0)
+        for a two-wheel base, (0.3, 1.0) for a skid steer),
         ``perception_iterations``, ``action_gain`` (0, 1], ``cruise_fraction`` (of the top speed),
         ``gains`` (k_rho, k_alpha, k_beta), ``waypoint_radius_m``, ``clearance_margin_m``,
         ``dock_approach_m`` (pre-dock waypoint distance), ``search_turn_fraction``.
@@ -247,11 +250,22 @@ class BaseAgent:
         self.dt = 1.0 / d.control_hz
         D = shift_operator(self.order, 3)
         self.transition = expm(D * self.dt)
+        skid = not (d.icr_offset_m == 0.0 and d.effective_track_m == d.track_m)
         slip = opts["lateral_slip_sd_m_s"]
         if slip is None:
-            slip = 0.02 if d.icr_offset_m == 0.0 and d.effective_track_m == d.track_m else 0.1
+            slip = 0.1 if skid else 0.02
         self.lateral_precision = 1.0 / float(slip) ** 2
-        self.odometry_precision = 1.0 / max(d.wheel_speed_noise_rad_s, 1e-3) ** 2
+        # Odometry in the (common, differential) wheel-speed basis: noise on each wheel plus the
+        # unmodelled slip of a skid steer, which hits the common mode (forward speed) and, much
+        # more, the differential mode (yaw rate).
+        slip_common, slip_diff = opts["slip_sd_rad_s"] if opts["slip_sd_rad_s"] is not None else (
+            (0.0, 0.0) if skid is False else (0.3, 1.0)
+        )
+        self.odometry_basis = np.array([[1.0, 1.0], [-1.0, 1.0]]) / np.sqrt(2.0)
+        w2 = max(d.wheel_speed_noise_rad_s, 1e-3) ** 2
+        self.odometry_precision = np.array(
+            [1.0 / (w2 + 2 * slip_common**2), 1.0 / (w2 + 2 * slip_diff**2)]
+        )
         self.gyro_precision = 1.0 / max(d.yaw_rate_noise_rad_s, 1e-4) ** 2
         self.bearing_precision = 1.0 / max(d.bearing_noise_rad, 1e-4) ** 2
         self.range_precision = (
@@ -362,7 +376,8 @@ class BaseAgent:
         g = self.model.predict_wheel_speeds(h, rate)
         G = np.zeros((2, self.n))
         G[:, idx] = self.model.predict_wheel_speeds_jacobian(h, rate)
-        terms = [("odometry", y["wheel"] - g, G, np.full(2, self.odometry_precision))]
+        R = self.odometry_basis
+        terms = [("odometry", R @ (y["wheel"] - g), R @ G, self.odometry_precision)]
         if y["gyro"] is not None:
             Jg = np.zeros((1, self.n))
             Jg[0, 5] = 1.0
@@ -549,16 +564,30 @@ class BaseAgent:
 
     # ------------------------------------------------------------------ action
     def _update_action(self) -> np.ndarray:
-        """Curvature-scaled descent of F in the wheel speeds (velocity control: dy/da = I)."""
+        """Curvature-scaled descent of F in the wheel speeds.
+
+        The sensations that action changes are the odometry (velocity control: ``dy/da = I``,
+        here in the rotated basis ``R``) and the gyro (``d omega / da = (-r/T, r/T)``). With
+        ``A`` their action Jacobians, ``G`` their belief Jacobians and the belief relaxed, the
+        curvature in the action is the Schur complement
+        ``H_a = A' P A - A' P G H^-1 G' P A`` and the step ``da = -gain H_a^-1 A' P e``.
+        """
         y = self._y
         m = self.mu.ravel()
-        _, e, G, p = self._velocity_terms(m, y)[0]
-        P = np.diag(p)
-        # curvature of F in the action with the belief relaxed (Schur complement)
-        H_a = P - P @ G @ np.linalg.solve(self._last_H, G.T @ P)
-        dF_da = P @ e
+        d = self.description
+        E, G, P, A = [], [], [], []
+        for name, e, J, p in self._velocity_terms(m, y):
+            if name == "odometry":
+                E.append(e), G.append(J), P.append(p), A.append(self.odometry_basis)
+            elif name == "gyro":
+                k = d.wheel_radius_m / d.effective_track_m
+                E.append(e), G.append(J), P.append(p), A.append(np.array([[-k, k]]))
+        e, Gm, p, Am = np.concatenate(E), np.vstack(G), np.concatenate(P), np.vstack(A)
+        PA = p[:, None] * Am
+        H_a = Am.T @ PA - PA.T @ Gm @ np.linalg.solve(self._last_H, Gm.T @ PA)
+        dF_da = PA.T @ e
         step = -np.linalg.solve(H_a + 1e-9 * np.eye(2), dF_da)
-        lim = self.description.wheel_speed_limit_rad_s
+        lim = d.wheel_speed_limit_rad_s
         self.action = np.clip(y["wheel"] + float(self.options["action_gain"]) * step, -lim, lim)
         if not self.localised:
             # searching: no pose yet, the attractor is a turn on the spot in body terms

@@ -1,0 +1,356 @@
+"""Tests of the pybullet arm world, URDF limit parsing and the sensor models."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pinocchio as pin
+import pybullet
+import pytest
+from scipy import stats
+
+from blanket.description import CameraDescription
+from blanket.errors import ConfigError
+from blanket.sensors import (
+    JointEncoders,
+    PointCamera,
+    frame_period_steps,
+    in_view,
+    look_at,
+    opengl_matrices,
+    pinhole_camera,
+)
+from blanket.sim.arm_world import ArmWorld
+from blanket.sim.robots import BUILTIN_ROBOTS, builtin_robot
+from blanket.sim.urdf_limits import read_joint_limits
+
+PLANAR_URDF = str(
+    Path(__file__).resolve().parents[1] / "envs" / "blanket_envs" / "assets" / "planar_2link.urdf"
+)
+
+
+def _world(name: str, **kwargs) -> ArmWorld:
+    spec = builtin_robot(name)
+    return ArmWorld(
+        spec.urdf_path,
+        spec.end_effector,
+        controlled_joints=spec.controlled_joints,
+        held_joint_positions=spec.held_joint_positions,
+        **kwargs,
+    )
+
+
+# ------------------------------------------------------------------- URDF limits
+def test_panda_soft_limits_match_the_makers_datasheet():
+    # Franka Emika, "Robot and interface specifications" (Franka Control Interface docs):
+    # q1,3,5,7 in [-2.8973, 2.8973], q2 in [-1.7628, 1.7628], q4 in [-3.0718, -0.0698],
+    # q6 in [-0.0175, 3.7525] rad; joint velocity limits 2.1750 (q1-4) and 2.6100 (q5-7) rad/s;
+    # torque limits 87 (q1-4) and 12 (q5-7) N m (values from memory of that table).
+    limits = read_joint_limits(builtin_robot("panda").urdf_path)
+    arm = [limits[f"panda_joint{i}"] for i in range(1, 8)]
+    lower = [lim.lower_in_force for lim in arm]
+    upper = [lim.upper_in_force for lim in arm]
+    np.testing.assert_allclose(
+        lower, [-2.8973, -1.7628, -2.8973, -3.0718, -2.8973, -0.0175, -2.8973]
+    )
+    np.testing.assert_allclose(upper, [2.8973, 1.7628, 2.8973, -0.0698, 2.8973, 3.7525, 2.8973])
+    np.testing.assert_allclose([lim.velocity for lim in arm], [2.175] * 4 + [2.61] * 3)
+    np.testing.assert_allclose([lim.effort for lim in arm], [87.0] * 4 + [12.0] * 3)
+    # The hard limits stay what the URDF's <limit> says (wider than the soft ones).
+    assert arm[0].lower == pytest.approx(-2.9671)
+
+
+def test_iiwa_hard_limits_in_force_match_the_makers_axis_ranges():
+    # KUKA LBR iiwa 7 R800 specification: axis ranges A1 +-170, A2 +-120, A3 +-170, A4 +-120,
+    # A5 +-170, A6 +-120, A7 +-175 degrees (from memory). The URDF has no soft limits.
+    limits = read_joint_limits(builtin_robot("iiwa").urdf_path)
+    upper_deg = np.rad2deg([lim.upper_in_force for lim in limits.values()])
+    np.testing.assert_allclose(upper_deg, [170, 120, 170, 120, 170, 120, 175], atol=1e-6)
+    assert all(lim.soft_lower is None for lim in limits.values())
+
+
+def test_urdf_without_velocity_limit_is_a_one_line_config_error(tmp_path):
+    urdf = tmp_path / "bad.urdf"
+    urdf.write_text(
+        '<robot name="bad"><link name="a"/><link name="b"/>'
+        '<joint name="j" type="revolute"><parent link="a"/><child link="b"/>'
+        '<axis xyz="0 0 1"/><limit lower="-1" upper="1" effort="5"/></joint></robot>'
+    )
+    with pytest.raises(ConfigError, match="velocity") as err:
+        read_joint_limits(urdf)
+    assert "\n" not in str(err.value)
+    with pytest.raises(ConfigError, match="not found"):
+        read_joint_limits(tmp_path / "missing.urdf")
+
+
+# --------------------------------------------------------- kinematics and dynamics
+@pytest.mark.parametrize("name", sorted(BUILTIN_ROBOTS))
+def test_tip_position_matches_pinocchio_forward_kinematics(name):
+    # Reference: pinocchio's forward kinematics of the same URDF (frame placement of the tip
+    # link). Agreement shows the base sits at the world origin and the tip is the link origin.
+    spec = builtin_robot(name)
+    world = _world(name)
+    model = pin.buildModelFromUrdf(spec.urdf_path)
+    data = model.createData()
+    frame = model.getFrameId(spec.end_effector)
+    rng = np.random.default_rng(3)
+    try:
+        for _ in range(5):
+            q = rng.uniform(np.maximum(world.lower_rad, -3), np.minimum(world.upper_rad, 3))
+            world.reset_joints(q)
+            q_pin = pin.neutral(model)
+            for name_j, angle in zip(world.joint_names, q, strict=True):
+                joint = model.joints[model.getJointId(name_j)]
+                q_pin[joint.idx_q] = angle
+            pin.framesForwardKinematics(model, data, q_pin)
+            np.testing.assert_allclose(world.tip_position(), data.oMf[frame].translation, atol=1e-6)
+    finally:
+        world.close()
+
+
+def test_gravity_torques_match_pinocchio():
+    # Reference: pinocchio's generalized gravity (RNEA with zero velocity and acceleration) on
+    # the same URDF; pybullet loads the URDF inertias (URDF_USE_INERTIA_FROM_FILE).
+    spec = builtin_robot("iiwa")
+    world = _world("iiwa")
+    model = pin.buildModelFromUrdf(spec.urdf_path)
+    data = model.createData()
+    try:
+        q = np.array([0.3, 0.7, -0.4, -1.2, 0.5, 0.9, 0.1])
+        tau_bullet = world.inverse_dynamics(q, np.zeros(7), np.zeros(7))
+        tau_pin = pin.computeGeneralizedGravity(model, data, q)
+        np.testing.assert_allclose(tau_bullet, tau_pin, rtol=1e-6, atol=1e-6)
+        assert np.max(np.abs(tau_pin)) > 1.0  # gravity does load this posture
+    finally:
+        world.close()
+
+
+def test_push_gives_the_rigid_body_acceleration():
+    # Reference: rigid-body dynamics M(q) qdd = J(q)^T F (no gravity load in the plane, zero
+    # velocity), with M and J from pinocchio; pybullet's semi-implicit Euler step gives
+    # qd(dt) = qdd dt after one step from rest.
+    world = ArmWorld(PLANAR_URDF, "tool_tip", control_hz=240.0)
+    model = pin.buildModelFromUrdf(PLANAR_URDF)
+    data = model.createData()
+    try:
+        q = np.array([0.3, 1.1])
+        world.reset_joints(q)
+        world.send_command("torque", np.zeros(2))
+        force = np.array([2.0, -3.0, 0.0])
+        world.apply_push(force, duration_s=1.0 / 240.0)
+        world.step()
+        _, qd = world.joint_state()
+        frame = model.getFrameId("tool_tip")
+        jacobian = pin.computeFrameJacobian(model, data, q, frame, pin.LOCAL_WORLD_ALIGNED)[:3]
+        qdd = pin.aba(model, data, q, np.zeros(2), jacobian.T @ force)
+        np.testing.assert_allclose(qd, qdd / 240.0, rtol=2e-3, atol=1e-6)
+        assert np.allclose(world.push_force_n, 0.0)  # the push is over after its duration
+    finally:
+        world.close()
+
+
+def test_payload_adds_its_mass_at_the_tip_link():
+    # Reference: pinocchio's articulated-body algorithm (Featherstone 2008, "Rigid Body
+    # Dynamics Algorithms") on the same URDF with a point mass added at the tip link's centre
+    # of mass. From rest, one semi-implicit Euler step gives qd(dt) = qdd dt.
+    spec = builtin_robot("iiwa")
+    world = _world("iiwa")
+    model = pin.buildModelFromUrdf(spec.urdf_path)
+    data = model.createData()
+    try:
+        q = np.array([0.2, 0.8, 0.1, -1.0, 0.3, 0.7, 0.0])
+        tau = pin.computeGeneralizedGravity(model, data, q)  # holds the arm without payload
+        world.set_payload(1.5)
+        world.reset_joints(q)
+        world.send_command("torque", tau)
+        world.step()
+        _, qd = world.joint_state()
+        joint = model.getJointId("lbr_iiwa_joint_7")
+        com = model.inertias[joint].lever
+        model.inertias[joint] = model.inertias[joint] + pin.Inertia(1.5, com, np.zeros((3, 3)))
+        qdd = pin.aba(model, model.createData(), q, np.zeros(7), tau)
+        assert np.linalg.norm(qdd) > 1.0  # the payload does make the arm sag
+        np.testing.assert_allclose(qd, qdd / 240.0, rtol=1e-3, atol=1e-5)
+        assert world.payload_kg == 1.5
+        with pytest.raises(ConfigError, match="mass_kg"):
+            world.set_payload(-1.0)
+    finally:
+        world.close()
+
+
+def test_every_motor_command_goes_through_send_command(monkeypatch):
+    world = ArmWorld(PLANAR_URDF, "tool_tip")
+    calls = []
+    original = world.client.setJointMotorControlArray
+
+    def spy(body, joints, mode, **kwargs):
+        calls.append((mode, kwargs))
+        return original(body, joints, mode, **kwargs)
+
+    try:
+        monkeypatch.setattr(world.client, "setJointMotorControlArray", spy)
+        world.send_command("velocity", np.array([0.1, -0.2]))
+        assert calls[-1][0] == pybullet.VELOCITY_CONTROL
+        assert calls[-1][1]["targetVelocities"] == [0.1, -0.2]
+        assert calls[-1][1]["forces"] == [20.0, 20.0]  # the URDF effort limits
+        world.send_command("torque", np.array([1.0, 2.0]))
+        # Switching to torque first releases the velocity motors (zero force), then commands.
+        assert calls[-2][0] == pybullet.VELOCITY_CONTROL and calls[-2][1]["forces"] == [0.0, 0.0]
+        assert calls[-1][0] == pybullet.TORQUE_CONTROL and calls[-1][1]["forces"] == [1.0, 2.0]
+        with pytest.raises(ValueError, match="finite"):
+            world.send_command("torque", np.array([np.nan, 0.0]))
+        with pytest.raises(ConfigError, match="control"):
+            world.send_command("position", np.zeros(2))
+    finally:
+        world.close()
+
+
+def test_world_rejects_a_link_not_in_the_urdf():
+    with pytest.raises(ConfigError, match="end_effector") as err:
+        ArmWorld(PLANAR_URDF, "gripper")
+    assert "tool_tip" in str(err.value) and "\n" not in str(err.value)
+
+
+# ------------------------------------------------------------------------ sensors
+def test_encoder_noise_std_matches_configuration():
+    # Reference: the chi-square distribution of the sample variance of Gaussian samples,
+    # (n - 1) s^2 / sigma^2 ~ chi2(n - 1) (textbook statistics); a 1e-6 two-sided band.
+    encoders = JointEncoders(angle_noise_rad=0.01, velocity_noise_rad_s=0.05)
+    rng = np.random.default_rng(7)
+    truth = np.array([0.3, -1.0, 2.0])
+    readings = [encoders.read(truth, np.zeros(3), rng) for _ in range(4000)]
+    angle = np.array([r[0] for r in readings]) - truth
+    velocity = np.array([r[1] for r in readings])
+    n = angle.size
+    low, high = stats.chi2.ppf([1e-6, 1 - 1e-6], n - 1) / (n - 1)
+    assert low < angle.var(ddof=1) / 0.01**2 < high
+    assert low < velocity.var(ddof=1) / 0.05**2 < high
+    assert abs(angle.mean()) < 6 * 0.01 / np.sqrt(n)
+    with pytest.raises(ConfigError, match="encoder_angle_noise_rad"):
+        JointEncoders(-0.1, 0.0)
+
+
+def _camera(noise_px: float = 2.0) -> CameraDescription:
+    return pinhole_camera(
+        look_at(np.array([1.6, -1.1, 1.2]), np.array([0.4, 0.0, 0.2])),
+        640,
+        480,
+        np.deg2rad(60.0),
+        30.0,
+        noise_px,
+    )
+
+
+def test_projection_matches_pybullet_view_and_projection_matrices():
+    # Reference: pybullet's computeViewMatrix / computeProjectionMatrixFOV (OpenGL pipeline):
+    # clip = P V p, ndc = clip / w, u = (ndc_x + 1) W / 2, v = (1 - ndc_y) H / 2.
+    camera = _camera()
+    pose = camera.base_from_camera
+    eye = pose[:3, 3]
+    view = (
+        np.array(
+            pybullet.computeViewMatrix(
+                eye.tolist(), (eye + pose[:3, 2]).tolist(), (-pose[:3, 1]).tolist()
+            )
+        )
+        .reshape(4, 4)
+        .T
+    )
+    fov_deg = np.rad2deg(2 * np.arctan(0.5 * camera.height_px / camera.fy_px))
+    proj = (
+        np.array(pybullet.computeProjectionMatrixFOV(fov_deg, 640 / 480, 0.02, 20.0))
+        .reshape(4, 4)
+        .T
+    )
+    ours_view, ours_proj = opengl_matrices(camera, 0.02, 20.0)
+    np.testing.assert_allclose(np.array(ours_view).reshape(4, 4).T, view, atol=1e-6)
+    np.testing.assert_allclose(np.array(ours_proj).reshape(4, 4).T, proj, atol=1e-6)
+    rng = np.random.default_rng(0)
+    for point in rng.uniform([0.0, -0.4, 0.0], [0.8, 0.4, 0.6], size=(10, 3)):
+        clip = proj @ view @ np.append(point, 1.0)
+        ndc = clip[:3] / clip[3]
+        expected = np.array([(ndc[0] + 1) * 320.0, (1 - ndc[1]) * 240.0])
+        np.testing.assert_allclose(camera.project(point), expected, atol=1e-3)
+
+
+def test_projection_matches_the_rendered_image():
+    # Reference: pybullet's tiny renderer. A small sphere's pixels in the segmentation mask are
+    # centred on the projected pixel (within a pixel).
+    world = ArmWorld(PLANAR_URDF, "tool_tip")
+    try:
+        camera = _camera()
+        point = np.array([0.5, 0.1, 0.3])
+        marker = world.add_marker("probe", 0.025, point)
+        view, proj = opengl_matrices(camera)
+        _, _, _, _, seg = world.client.getCameraImage(
+            640, 480, viewMatrix=view, projectionMatrix=proj, renderer=pybullet.ER_TINY_RENDERER
+        )
+        rows, cols = np.nonzero(np.asarray(seg).reshape(480, 640) == marker)
+        assert rows.size > 20
+        centroid = np.array([cols.mean() + 0.5, rows.mean() + 0.5])  # pixel centres at i + 0.5
+        np.testing.assert_allclose(centroid, camera.project(point), atol=1.0)
+    finally:
+        world.close()
+
+
+def test_field_of_view_and_behind_camera():
+    camera = _camera()
+    pose = camera.base_from_camera
+    ahead = pose[:3, 3] + 1.0 * pose[:3, 2]
+    pixel, inside = in_view(camera, ahead)
+    assert inside and np.allclose(pixel, [320.0, 240.0])
+    behind = pose[:3, 3] - 1.0 * pose[:3, 2]
+    assert not in_view(camera, behind)[1]
+    # 40 degrees to the side of the axis: outside a 60 x ~75 degree field of view.
+    side = pose[:3, 3] + pose[:3, 2] + np.tan(np.deg2rad(40.0)) * pose[:3, 0]
+    assert not in_view(camera, side)[1]
+
+
+def test_occlusion_by_a_box_between_camera_and_point():
+    world = ArmWorld(PLANAR_URDF, "tool_tip")
+    try:
+        camera = _camera(noise_px=0.0)
+        point = np.array([-0.3, -0.3, 0.2])  # away from the arm
+        watch = PointCamera(
+            camera, 240.0, lambda name, p: world.line_of_sight(camera.base_from_camera[:3, 3], p)
+        )
+        rng = np.random.default_rng(0)
+        frame = watch.reset({"target": point}, rng)
+        assert frame.visible["target"] and frame.fresh
+        np.testing.assert_allclose(frame.pixel_px["target"], camera.project(point))
+        midway = 0.5 * (camera.base_from_camera[:3, 3] + point)
+        world.add_box("screen", np.array([0.05, 0.05, 0.05]), midway)
+        seen = [watch.observe({"target": point + 0.01}, rng) for _ in range(8)]
+        assert [f.fresh for f in seen] == [False] * 7 + [True]
+        assert not seen[-1].visible["target"]
+        # Unseen: the pixel keeps its last value.
+        np.testing.assert_allclose(seen[-1].pixel_px["target"], camera.project(point))
+    finally:
+        world.close()
+
+
+def test_camera_pixel_noise_std_and_rate():
+    # Reference: chi-square band of the sample variance (textbook statistics), as above.
+    camera = _camera(noise_px=2.0)
+    watch = PointCamera(camera, 240.0, lambda name, p: True)
+    assert watch.period_steps == frame_period_steps(240.0, 30.0) == 8
+    rng = np.random.default_rng(11)
+    point = np.array([0.4, 0.0, 0.2])
+    watch.reset({"p": point}, rng)
+    pixels = []
+    for _ in range(8 * 2000):
+        frame = watch.observe({"p": point}, rng)
+        if frame.fresh:
+            pixels.append(frame.pixel_px["p"] - camera.project(point))
+    errors = np.array(pixels).ravel()
+    n = errors.size
+    low, high = stats.chi2.ppf([1e-6, 1 - 1e-6], n - 1) / (n - 1)
+    assert low < errors.var(ddof=1) / 4.0 < high
+
+
+def test_camera_description_validation():
+    with pytest.raises(ConfigError, match="camera_hz"):
+        pinhole_camera(np.eye(4), rate_hz=0.0)
+    with pytest.raises(ConfigError, match="camera_noise_px"):
+        pinhole_camera(np.eye(4), pixel_noise_px=-1.0)
