@@ -16,6 +16,8 @@ OK = 0
 PRIOR_NOT_PD = 1
 CURVATURE_NOT_PD = 2
 JACOBIAN_NOT_PD = 3
+NOT_FINITE = 4
+EXPLODED = 5
 
 
 @njit(cache=True)
@@ -103,13 +105,15 @@ def perception_step(  # pragma: no cover - compiled
     err_c,
     err_g,
     work,
+    velocity_limit,
 ):
     """One perception step; returns ``(status, quadratic_energy)``.
 
     ``goal_mode``: 0 no goal in the belief, 1 velocity attractor prior, 2 acceleration
     attractor prior (torque control). ``attractor_params = (k, vmax, lambda^2, k_null)``.
     ``intrinsics = (fx, fy, cx, cy)``. ``pm <= 0`` disables the efference-copy term.
-    ``work`` is an (N, 4N) scratch buffer.
+    ``work`` is an (N, 4N) scratch buffer. A belief velocity above ``velocity_limit`` returns
+    ``EXPLODED``; a non-finite belief or energy ``NOT_FINITE``.
     """
     n = yq.shape[0]
     p1 = phi_t.shape[0]
@@ -302,9 +306,18 @@ def perception_step(  # pragma: no cover - compiled
     # -- Gauss-Newton step: Sigma = inv(H); z = z- - Sigma grad
     if not _spd_inverse(H, cov_out, L, Linv):
         return CURVATURE_NOT_PD, energy
+    vmax_belief = 0.0
     for i in range(N):
         s = 0.0
         for j in range(N):
             s += cov_out[i, j] * grad[j]
         z_out[i] = zp[i] - s
+        if not np.isfinite(z_out[i]):
+            return NOT_FINITE, energy
+        if n <= i < 2 * n and abs(z_out[i]) > vmax_belief:
+            vmax_belief = abs(z_out[i])
+    if not np.isfinite(energy):
+        return NOT_FINITE, energy
+    if vmax_belief > velocity_limit:
+        return EXPLODED, energy
     return OK, energy

@@ -636,6 +636,10 @@ class ArmAgent:
             self._pg = self.goal_precision / o["velocity_gain_1_s"] ** 2
         self._pm = self.motor_precision if self.control == "velocity" else 0.0
         self._zero2 = np.zeros(2)
+        self._log_det_key: tuple[int, int] | None = None
+        self._log_det_value = 0.0
+        self._log_det_cam: float | None = None
+        self._precision_changing = bool(o["learn_precision"] or o["fault_detection"])
 
     def _step_compiled(self, obs: Mapping[str, Any]) -> np.ndarray:
         """The same step as :meth:`_step_numpy`, through the compiled kernel."""
@@ -687,25 +691,19 @@ class ArmAgent:
             err["camera"],
             err["goal"],
             self._work,
+            float(self.options["divergence_limit"]),
         )
+        if status == _kernel.NOT_FINITE:
+            return self._safe_stop("belief or free energy is not finite")
+        if status == _kernel.EXPLODED:
+            return self._safe_stop("belief velocity exploded")
         if status != _kernel.OK:
             raise np.linalg.LinAlgError(
                 ("prior covariance", "free-energy curvature", "damped Jacobian product")[status - 1]
                 + " is not positive definite"
             )
-        logdet = float(np.log(pq).sum() + np.log(pv).sum())
-        if cam_on:
-            logdet += float(np.log(pc).sum())
-        if self._pm > 0:
-            logdet += n * np.log(self._pm)
-        if self._goal_mode:
-            logdet += n * np.log(self._pg)
-        energy -= 0.5 * logdet
+        energy -= 0.5 * (self._log_det(pq, pv) + (self._log_det_camera(pc) if cam_on else 0.0))
         z_new = self._z_out
-        if not (np.isfinite(energy) and np.isfinite(z_new).all()):
-            return self._safe_stop("belief or free energy is not finite")
-        if np.abs(z_new[n : 2 * n]).max() > self.options["divergence_limit"]:
-            return self._safe_stop("belief velocity exploded")
         self._cam_on = cam_on
         if self.options["fault_detection"] or self.options["learn_precision"]:
             errors = self._error_dict()
@@ -724,6 +722,24 @@ class ArmAgent:
         self._diag = {"free_energy": energy, "safe_stop": False, "safe_stop_reason": ""}
         self._lazy_errors = True
         return action
+
+    def _log_det(self, pq: np.ndarray, pv: np.ndarray) -> float:
+        """Sum of log precisions of the encoder, motor and goal terms (cached while fixed)."""
+        key = (id(pq), id(pv))
+        if self._log_det_key != key or self._precision_changing:
+            n = self.n
+            value = float(np.log(pq).sum() + np.log(pv).sum())
+            if self._pm > 0:
+                value += n * np.log(self._pm)
+            if self._goal_mode:
+                value += n * np.log(self._pg)
+            self._log_det_key, self._log_det_value = key, value
+        return self._log_det_value
+
+    def _log_det_camera(self, pc: np.ndarray) -> float:
+        if self._precision_changing or self._log_det_cam is None:
+            self._log_det_cam = float(np.log(pc).sum())
+        return self._log_det_cam
 
     def _error_dict(self) -> dict[str, np.ndarray]:
         names = ["joint_angle", "joint_velocity"]
@@ -754,8 +770,8 @@ class ArmAgent:
         if self.control == "velocity":
             # F_a = 1/2 P (y_v(a) - v*)^2 with y_v(a) = a: Newton step a += frac (v* - a).
             wanted = v if self.options["goal"] == "prior" else f
-            a = self._action + frac * (wanted - self._action)
-            return np.clip(a, -d.velocity_limit_rad_s, d.velocity_limit_rad_s)
+            a = wanted.copy() if frac == 1.0 else self._action + frac * (wanted - self._action)
+            return np.minimum(np.maximum(a, -d.velocity_limit_rad_s), d.velocity_limit_rad_s)
         # Torque: q''(tau) = inv(M)(tau - h); the Newton step on F_a gives
         # tau = h + M q''_wanted (see torque_action_free_energy).
         if self.options["goal"] == "prior":

@@ -159,16 +159,17 @@ def attractor_velocity(
     gains: tuple[float, float, float],
     speed_m_s: float,
     turn_rad_s: float,
-    align_radius_m: float = 0.03,
+    align_radius_m: float = 0.25,
 ) -> tuple[float, float]:
     """Desired body velocity ``(v, omega)`` towards a waypoint or the final pose.
 
     Waypoints: turn on the spot while the target bearing exceeds 0.5 rad, otherwise drive with
     ``v = min(speed, k_rho rho + 0.1)`` and ``omega = k_alpha alpha``. The final pose: the polar
     law ``v = k_rho rho``, ``omega = k_alpha alpha + k_beta beta`` (Astolfi 1999; Siegwart et al.
-    2011, sec. 3.6.2.4, stable for ``k_rho > 0``, ``k_beta < 0``, ``k_alpha > k_rho``), driving
-    backwards when the goal lies behind, and inside ``align_radius_m`` a pure heading alignment
-    (the staged goal that sidesteps Brockett's condition).
+    2011, sec. 3.6.2.4, stable for ``k_rho > 0``, ``k_beta < 0``, ``k_alpha > k_rho``), after first
+    turning on the spot to face the goal when its bearing exceeds 0.6 rad, and inside
+    ``align_radius_m`` a pure heading alignment (the staged goal that sidesteps
+    Brockett's condition) that also creeps along the heading line onto the goal.
     """
     k_rho, k_alpha, k_beta = gains
     if not final:
@@ -179,14 +180,16 @@ def attractor_velocity(
         return float(v), float(np.clip(k_alpha * alpha, -turn_rad_s, turn_rad_s))
     rho, alpha, beta = polar_coordinates(pose, target)
     if rho < align_radius_m:
+        # close: align the heading on the spot while creeping along the heading line onto the
+        # goal (forwards or backwards), never turning round to face it
         err = float(wrap_angle(target[2] - pose[2]))
-        return 0.0, float(np.clip(1.5 * err, -turn_rad_s, turn_rad_s)) if abs(err) > 0.01 else 0.0
-    direction = 1.0
-    if abs(alpha) > np.pi / 2:  # goal behind: reverse (alpha, beta measured from the rear)
-        direction = -1.0
-        alpha = float(wrap_angle(alpha + np.pi))
-        beta = float(wrap_angle(beta + np.pi))
-    v = direction * min(speed_m_s, k_rho * rho)
+        along = rho * np.cos(alpha)
+        v = float(np.clip(k_rho * along, -speed_m_s, speed_m_s)) if abs(along) > 0.015 else 0.0
+        om = float(np.clip(1.5 * err, -turn_rad_s, turn_rad_s)) if abs(err) > 0.02 else 0.0
+        return v, om
+    if abs(alpha) > 0.6:  # goal far off the bow: face it first (staged, no reversing)
+        return 0.0, float(np.clip(k_alpha * alpha, -turn_rad_s, turn_rad_s))
+    v = min(speed_m_s, k_rho * rho)
     omega = k_alpha * alpha + k_beta * beta
     return float(v), float(np.clip(omega, -turn_rad_s, turn_rad_s))
 
@@ -202,6 +205,7 @@ _DEFAULTS: dict[str, Any] = {
     "perception_iterations": 2,
     "action_gain": 0.6,
     "cruise_fraction": 0.7,
+    "turn_fraction": None,
     "gains": (0.8, 2.5, -0.8),
     "waypoint_radius_m": 0.2,
     "clearance_margin_m": 0.25,
@@ -225,6 +229,8 @@ class BaseAgent:
         ``slip_sd_rad_s`` (common, differential) unmodelled wheel slip per wheel (default (0, 0)
         for a two-wheel base, (0.3, 1.0) for a skid steer),
         ``perception_iterations``, ``action_gain`` (0, 1], ``cruise_fraction`` (of the top speed),
+        ``turn_fraction`` (of the top turn rate; default 0.7, 0.35 for a skid steer, whose
+        spins in place slip and drift),
         ``gains`` (k_rho, k_alpha, k_beta), ``waypoint_radius_m``, ``clearance_margin_m``,
         ``dock_approach_m`` (pre-dock waypoint distance), ``search_turn_fraction``.
     """
@@ -283,8 +289,11 @@ class BaseAgent:
             q[6:9] = (10.0 * acc * self.dt) ** 2
         self.process_covariance = np.diag(q)
         self.speed_m_s = float(opts["cruise_fraction"]) * d.wheel_radius_m * d.wheel_speed_limit_rad_s
+        turn_fraction = opts["turn_fraction"]
+        if turn_fraction is None:
+            turn_fraction = 0.35 if skid else 0.7
         self.turn_rad_s = (
-            float(opts["cruise_fraction"]) * 2 * d.wheel_radius_m * d.wheel_speed_limit_rad_s
+            float(turn_fraction) * 2 * d.wheel_radius_m * d.wheel_speed_limit_rad_s
             / d.effective_track_m
         )
         half_gap = self._min_gap(d) / 2.0
@@ -409,7 +418,7 @@ class BaseAgent:
         final = self.waypoint_index == len(self.waypoints) - 1
         target = self.waypoints[self.waypoint_index]
         self.stage = "travel" if not final else "approach"
-        if final and np.hypot(*(target[:2] - pose[:2])) < 0.03:
+        if final and np.hypot(*(target[:2] - pose[:2])) < 0.25:
             self.stage = "align"
         v, om = attractor_velocity(
             pose,
