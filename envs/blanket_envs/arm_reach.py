@@ -40,6 +40,8 @@ __all__ = ["ArmReachEnv", "PlanarReachEnv", "PLANAR_URDF", "SUCCESS_HOLD_S"]
 
 #: The planar 2-link arm shipped with the env suite.
 PLANAR_URDF = str(Path(__file__).resolve().parent / "assets" / "planar_2link.urdf")
+#: Random targets come from joint configurations within this distance of home (rad).
+RANDOM_TARGET_SPREAD_RAD = 1.2
 #: The tip must stay inside the tolerance ball this long for success (s).
 SUCCESS_HOLD_S = 0.25
 #: Half-width of the uniform noise added to the home posture at reset (rad).
@@ -353,11 +355,18 @@ class ArmReachEnv(gym.Env):
         return self._random_reachable_point(min_height=min_height, min_radius=0.25 * self.reach_m)
 
     def _random_reachable_point(self, min_height: float, min_radius: float) -> np.ndarray:
-        """Tip position of a random joint configuration inside the limits (rejection)."""
+        """Tip position of a random joint configuration inside the limits (rejection).
+
+        Configurations are drawn within ``RANDOM_TARGET_SPREAD_RAD`` of the home posture
+        (clipped to the limits), so a target never asks for a different arm configuration
+        (an elbow or base flip), which is a planning problem rather than a reach.
+        """
         world = self.world
         assert world is not None
+        low = np.maximum(self._sample_lower, self.home_rad - RANDOM_TARGET_SPREAD_RAD)
+        high = np.minimum(self._sample_upper, self.home_rad + RANDOM_TARGET_SPREAD_RAD)
         for _ in range(1000):
-            q = self.np_random.uniform(self._sample_lower, self._sample_upper)
+            q = self.np_random.uniform(low, high)
             point = world.tip_positions_for(q[None, :])[0]
             if point[2] >= min_height and np.hypot(point[0], point[1]) >= min_radius:
                 return point

@@ -126,7 +126,9 @@ def temporal_precision(order: int, smoothness: float) -> np.ndarray:
     """Inverse of :func:`temporal_covariance`; for white noise, ``diag(1, 0, ..., 0)``.
 
     The white-noise limit: as ``s -> 0`` every derivative variance grows without bound, so the
-    precision of orders above zero goes to zero while order zero keeps unit precision.
+    precision of orders above zero goes to zero; ``s = 0`` gives order zero its marginal, unit
+    precision. (Entrywise, ``inv(S(s))_ij`` scales as ``s^(i+j)``, so for ``order >= 2`` the
+    ``(0, 0)`` entry stays at ``inv(S(1))_00 > 1``, the precision conditional on the higher orders.)
     """
     p = _check_order(order)
     s = _check_smoothness(smoothness)

@@ -90,6 +90,8 @@ def perception_step(  # pragma: no cover - compiled
     target,
     home,
     attractor_params,
+    lower,
+    upper,
     goal_mode,
     pg,
     kv,
@@ -110,7 +112,8 @@ def perception_step(  # pragma: no cover - compiled
     """One perception step; returns ``(status, quadratic_energy)``.
 
     ``goal_mode``: 0 no goal in the belief, 1 velocity attractor prior, 2 acceleration
-    attractor prior (torque control). ``attractor_params = (k, vmax, lambda^2, k_null)``.
+    attractor prior (torque control).
+    ``attractor_params = (k, vmax, lambda^2, k_null, weighting_on)``.
     ``intrinsics = (fx, fy, cx, cy)``. ``pm <= 0`` disables the efference-copy term.
     ``work`` is an (N, 4N) scratch buffer. A belief velocity above ``velocity_limit`` returns
     ``EXPLODED``; a non-finite belief or energy ``NOT_FINITE``.
@@ -172,12 +175,22 @@ def perception_step(  # pragma: no cover - compiled
     vmax = attractor_params[1]
     lam2 = attractor_params[2]
     kn = attractor_params[3]
+    winv = np.ones(n)
+    if attractor_params[4] > 0.0:
+        # weighted least norm near joint limits (see blanket.agent.arm.joint_limit_weights)
+        for j in range(n):
+            span = upper[j] - lower[j]
+            du = max(upper[j] - zp[j], 1e-3)
+            dl = max(zp[j] - lower[j], 1e-3)
+            w = 1.0 + abs(span * span * (du - dl) / (4.0 * du * du * dl * dl))
+            if np.isfinite(w):
+                winv[j] = 1.0 / w
     A3 = np.empty((3, 3))
     for r in range(3):
         for c in range(3):
             s = 0.0
             for j in range(n):
-                s += J[r, j] * J[c, j]
+                s += J[r, j] * winv[j] * J[c, j]
             A3[r, c] = s
         A3[r, r] += lam2
     L3 = np.empty((3, 3))
@@ -200,7 +213,7 @@ def perception_step(  # pragma: no cover - compiled
             s = 0.0
             for r in range(3):
                 s += J[r, j] * I3[r, c]
-            Jp[j, c] = s
+            Jp[j, c] = winv[j] * s
     dq_home = np.empty(n)
     for j in range(n):
         dq_home[j] = home[j] - zp[j]

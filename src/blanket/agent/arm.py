@@ -68,7 +68,7 @@ try:  # the compiled perception kernel; the numpy path computes the same step
 except ImportError:  # pragma: no cover - numba missing
     _kernel = None
 
-__all__ = ["ArmAgent", "AgentOptions", "torque_action_free_energy"]
+__all__ = ["ArmAgent", "AgentOptions", "joint_limit_weights", "torque_action_free_energy"]
 
 _GOALS = ("prior", "reference")
 _INTEGRATIONS = ("ozaki", "euler")
@@ -89,6 +89,7 @@ class AgentOptions:
         "max_tip_speed_m_s": 0.6,
         "damping_m": 0.02,
         "posture_gain_1_s": 0.5,
+        "joint_limit_weighting": False,
         "velocity_gain_1_s": 25.0,
         "joint_angle_precision": None,
         "joint_velocity_precision": None,
@@ -187,6 +188,25 @@ def _jerk_covariance(order: int, dt: float, intensity: float) -> np.ndarray:
     return W
 
 
+def joint_limit_weights(q: np.ndarray, lower: np.ndarray, upper: np.ndarray) -> np.ndarray:
+    """Inverse weights ``1 / w_i`` of the weighted least-norm solution near joint limits.
+
+    ``w_i = 1 + |dH/dq_i|`` with the joint-limit criterion
+    ``H = sum (u - l)^2 / (4 (u - q)(q - l))``, so
+    ``dH/dq_i = (u - l)^2 (2 q - u - l) / (4 (u - q)^2 (q - l)^2)`` (Chan & Dubey 1995, "A
+    weighted least-norm solution based scheme for avoiding joint limits for redundant joint
+    manipulators", IEEE Trans Robot Autom 11(2), eqs. 9-11; without their direction test, so
+    a joint near a limit is slowed whichever way it moves). Joints without finite limits get
+    weight 1; the distance to a limit is floored at 1 mrad.
+    """
+    span = upper - lower
+    du = np.maximum(upper - q, 1e-3)
+    dl = np.maximum(q - lower, 1e-3)
+    grad = span * span * (du - dl) / (4.0 * du * du * dl * dl)
+    w = 1.0 + np.abs(grad)
+    return np.where(np.isfinite(w), 1.0 / w, 1.0)
+
+
 def torque_action_free_energy(
     tau: np.ndarray,
     mass_matrix: np.ndarray,
@@ -269,6 +289,8 @@ class ArmAgent:
         self._eye_N = np.eye(self.size)
         self._eye_n = np.eye(n)
         self._attractor_velocity = np.zeros(n)
+        self._limit_low = np.asarray(description.lower_rad, dtype=float)
+        self._limit_high = np.asarray(description.upper_rad, dtype=float)
         self._compiled = _kernel is not None and not self.extra_terms
         self._buffers()
         # Encoder terms have constant Jacobians: precompute their curvature.
@@ -338,9 +360,10 @@ class ArmAgent:
     ) -> tuple[np.ndarray, np.ndarray]:
         """Joint velocity the goal asks for, and its Jacobian with respect to ``q``.
 
-        ``f(q) = J+ k sat(x* - x) + k_null (I - J+ J)(q_home - q)`` with the damped
-        least-squares inverse ``J+ = J' inv(J J' + lambda^2 I)`` (Wampler 1986, IEEE Trans SMC
-        16(1), eq. 7). The Jacobian ignores the derivative of ``J`` (Gauss-Newton).
+        ``f(q) = J+ k sat(x* - x) + k_null (I - J+ J)(q_home - q)`` with the weighted damped
+        least-squares inverse ``J+ = W^-1 J' inv(J W^-1 J' + lambda^2 I)`` (Wampler 1986, IEEE
+        Trans SMC 16(1), eq. 7; the weights of :func:`joint_limit_weights`, after Chan & Dubey
+        1995). The Jacobian ignores the derivatives of ``J`` and ``W`` (Gauss-Newton).
         """
         opts = self.options
         J = body.tip_jacobian
@@ -351,9 +374,13 @@ class ArmAgent:
         vmax = opts["max_tip_speed_m_s"]
         scale = vmax / speed if speed > vmax else 1.0
         lam2 = opts["damping_m"] ** 2
-        JJt = J @ J.T
+        if opts["joint_limit_weighting"]:
+            Jw = J * joint_limit_weights(q, self._limit_low, self._limit_high)
+        else:
+            Jw = J
+        JJt = Jw @ J.T
         JJt.flat[::4] += lam2
-        _, X, info = dposv(JJt, J, lower=1)  # X = inv(J J' + lambda^2 I) J
+        _, X, info = dposv(JJt, Jw, lower=1)  # X = inv(J W^-1 J' + lambda^2 I) J W^-1
         if info != 0:
             raise np.linalg.LinAlgError("damped Jacobian product is not positive definite")
         Jpinv = X.T
@@ -624,6 +651,7 @@ class ArmAgent:
                 o["max_tip_speed_m_s"],
                 o["damping_m"] ** 2,
                 o["posture_gain_1_s"],
+                1.0 if o["joint_limit_weighting"] else 0.0,
             ],
             dtype=float,
         )
@@ -676,6 +704,8 @@ class ArmAgent:
             np.asarray(obs["target_position_m"], dtype=float),
             self._home,
             self._attractor_params,
+            self._limit_low,
+            self._limit_high,
             self._goal_mode,
             self._pg,
             float(self.options["velocity_gain_1_s"]),
