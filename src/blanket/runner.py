@@ -13,7 +13,7 @@ from typing import Any
 import numpy as np
 
 from blanket.errors import ConfigError
-from blanket.scenario import Scenario, load_object, make_env
+from blanket.scenario import Scenario, env_option_names, load_object, make_env
 
 __all__ = [
     "EpisodeResult",
@@ -115,6 +115,8 @@ def run_episode(
             fe = diag.get("free_energy")
             energy.append(float(fe) if fe is not None else math.nan)
             safe_stop = safe_stop or bool(diag.get("safe_stop", False))
+        if writer is not None:
+            external = _external_group(info)
         next_obs, _reward, terminated, truncated, info = env.step(action)
         sim_us.append(float(info.get("sim_step_us", math.nan)))
         distance.append(float(info.get("distance_m", math.nan)))
@@ -124,25 +126,15 @@ def run_episode(
             tts = info.get("time_to_success_s")
             success_time = float(tts) if tts is not None else (step + 1) * dt
         if writer is not None:
-            external = dict(info.get("external", {}))
-            for key in (
-                "distance_m",
-                "success",
-                "inside_tolerance",
-                "contact",
-                "heading_error_rad",
-            ):
-                if key in info:
-                    external[key] = info[key]
-            active = {"action": np.asarray(action, dtype=float)}
-            if "action_applied" in info:
-                active["action_applied"] = np.asarray(info["action_applied"], dtype=float)
+            # One row per control step: the truth and the sensations at the time the agent
+            # acted, the command it sent (and what a safety wrapper let through), and its
+            # belief after that update.
             writer.record(
                 step,
                 step * dt,
                 external=external,
                 sensory=dict(obs),
-                active=active,
+                active=active_group(action, info),
                 internal=_loggable(diag) if diag is not None else None,
             )
         obs = next_obs
@@ -174,6 +166,27 @@ def run_episode(
     if writer is not None:
         writer.end_episode(extra=result.to_dict())
     return result
+
+
+def active_group(action: Any, info: Mapping[str, Any]) -> dict[str, Any]:
+    """The ``active.*`` log group: the command sent and, behind a safety wrapper, the command
+    it let through (``info["action_applied"]`` of the step that executed it)."""
+    group: dict[str, Any] = {"action": np.asarray(action, dtype=float)}
+    if "action_applied" in info:
+        group["action_applied"] = np.asarray(info["action_applied"], dtype=float)
+    return group
+
+
+_INFO_TRUTH_KEYS = ("distance_m", "success", "inside_tolerance", "contact", "heading_error_rad")
+
+
+def _external_group(info: Mapping[str, Any]) -> dict[str, Any]:
+    """The ``external.*`` log group from an env's ``info``: its truth plus task status."""
+    external = dict(info.get("external", {}))
+    for key in _INFO_TRUTH_KEYS:
+        if key in info:
+            external[key] = info[key]
+    return external
 
 
 def _control_hz(env: Any) -> float:
@@ -347,8 +360,14 @@ def _run_metadata(scenario: Scenario, env: Any, seed: int) -> dict[str, Any]:
         meta["action_low"] = np.asarray(space.low, float).tolist()
         meta["action_high"] = np.asarray(space.high, float).tolist()
     cam = getattr(d, "camera", None)
+    rates = {"control_hz": getattr(d, "control_hz", None)}
     if cam is not None and hasattr(cam, "rate_hz"):
-        meta["camera_hz"] = cam.rate_hz
+        rates["camera_hz"] = cam.rate_hz
+    meta["rates"] = rates
+    robot = scenario.env_options.get("robot")
+    if robot is None and scenario.env_options.get("urdf"):
+        robot = Path(str(scenario.env_options["urdf"])).stem
+    meta["robot"] = robot or env_option_names(scenario.env).get("robot")
     return meta
 
 

@@ -274,7 +274,7 @@ class ArmAgent:
             ),
         }
         self.motor_precision = float(opts["motor_precision"] or 1.0 / (0.5 * sv) ** 2)
-        self.goal_precision = float(opts["goal_precision"] or 1.0 / (2.0 * sv) ** 2)
+        self.goal_precision = float(opts["goal_precision"] or 1.0 / sv**2)
         self._initial_precision = {k: v.copy() for k, v in self.precision.items()}
 
         # Generalized motion and its noise, shared by every joint (kron with I_n).
@@ -335,6 +335,7 @@ class ArmAgent:
         self._lazy_errors = False
         self._safe_stop_reason = ""
         self._last_finite_q = np.zeros(self.n)
+        self._reset_channel_statistics()
 
     def _initialise(self, obs: Mapping[str, Any]) -> None:
         n, p = self.n, self.order
@@ -822,55 +823,127 @@ class ArmAgent:
         sel = slice(0, n) if name == "joint_angle" else slice(n, 2 * n)
         return np.diagonal(cov_prior)[sel]
 
-    def _detect_faults(self, errors, cov_prior, g_cam) -> None:
-        """Windowed innovation test per channel (per joint for the encoders).
+    def _reset_channel_statistics(self) -> None:
+        """Per-episode state of the fault tests and of precision learning."""
+        n = self.n
+        enc = ("joint_angle", "joint_velocity")
+        self._fault_high = {k: np.zeros_like(v, dtype=bool) for k, v in self._fault_stat.items()}
+        self._fault_low = {k: np.zeros(n, dtype=bool) for k in enc}
+        self._flatline_stat = {k: np.ones(n) for k in enc}
+        self._last_reading: dict[str, np.ndarray] = {}
+        # Reading increments of white noise are MA(1) (lag-1 correlation -1/2): the mean of
+        # their squares over w samples has variance 3/w, not 2/w, so it counts as 2w/3
+        # independent chi-square(1) samples (common practice, no source).
+        w_eff = max(1.0, 2.0 / self._fault_alpha - 1.0) * 2.0 / 3.0
+        self._flatline_threshold = (
+            chi2.ppf(float(self.options["fault_false_alarm"]), w_eff) / w_eff
+        )
+        self._noise_variance = {
+            k: 1.0 / v for k, v in self._initial_precision.items() if np.all(v > 0)
+        }
+        self._noise_samples = dict.fromkeys(self._noise_variance, 0)
 
-        The normalized innovation ``nu^2 / S`` (``S`` its predicted variance with the noise
-        at its nominal precision) is averaged over an exponential window of
-        ``fault_window_s``; a channel whose average exceeds the chi-square quantile of the
-        false-alarm rate is flagged (Bar-Shalom, Li & Kirubarajan 2001, *Estimation with
-        Applications to Tracking and Navigation*, sec. 5.4.2), its precision is cut to 1e-6 of
-        its value, and the flag clears once the average falls below half the threshold.
+    def _detect_faults(self, errors, cov_prior, g_cam) -> None:
+        """Two-sided tests per channel (per joint for the encoders); flags in ``self._fault``.
+
+        * Too much error: the normalized innovation ``nu^2 / S`` (``S = G Sigma- G' +
+          inv(P)``, ``P`` the channel's nominal or learned precision, never the down-weighted
+          one) is averaged over an exponential window of ``fault_window_s``; under no fault
+          the average is ~ ``chi2(w m) / (w m)`` for ``w`` effective samples of ``m``
+          components, and a channel above its ``1 - fault_false_alarm`` quantile is flagged
+          (the innovation test, Bar-Shalom, Li & Kirubarajan 2001, *Estimation with
+          Applications to Tracking and Navigation*, sec. 5.4.2). The flag clears below half
+          the threshold.
+        * Too little noise (encoders): a stuck reading stops carrying its noise. The squared
+          increment of the reading, ``(y_k - y_(k-1))^2 P / 2``, has mean >= 1 under white
+          noise of precision ``P`` (motion only adds to it), so its windowed mean below the
+          lower ``fault_false_alarm`` quantile of the chi-square region (the two-sided
+          acceptance region of the same section) flags the joint; the flag clears above twice
+          the threshold.
+
+        A flagged channel's precision is cut to 1e-6 of its value (:meth:`_effective_precision`)
+        and returns when the tests pass again.
         """
         alpha = self._fault_alpha
+        predicted = None
         for name in ("joint_angle", "joint_velocity", "camera"):
             if name not in errors:
                 continue
             e = errors[name]
-            S = self._innovation_variance(name, cov_prior, g_cam) + 1.0 / self.precision[name]
+            P = self.precision[name]
+            S = self._innovation_variance(name, cov_prior, g_cam) + 1.0 / P
             stat = e * e / S
             if name == "camera":
                 stat = np.array([stat.mean()])
             m = self._fault_stat[name]
             m += alpha * (stat - m)
             thr = self._fault_threshold[name]
-            self._fault[name] = np.where(self._fault[name], m > 0.5 * thr, m > thr)
+            high = self._fault_high[name]
+            high[:] = np.where(high, m > 0.5 * thr, m > thr)
+            if name == "camera":
+                self._fault[name] = high.copy()
+                continue
+            # The raw reading is the error plus the prediction it was measured against.
+            if predicted is None:
+                p1 = self.order + 1
+                predicted = self._phi_t[:2] @ self._belief.reshape(p1, self.n)
+            reading = e + predicted[0 if name == "joint_angle" else 1]
+            last = self._last_reading.get(name)
+            self._last_reading[name] = reading
+            low = self._fault_low[name]
+            if last is not None:
+                d = reading - last
+                f = self._flatline_stat[name]
+                f += alpha * (0.5 * d * d * P - f)
+                lo = self._flatline_threshold
+                low[:] = np.where(low, f < 2.0 * lo, f < lo)
+            self._fault[name] = high | low
 
     def _learn_precisions(self, errors, cov_prior, g_cam) -> None:
-        """Log-precision gradient step per channel, on the innovations.
+        """Covariance matching of each channel's noise variance on its innovations.
 
-        With the belief marginalised, a channel's free energy is the negative log-likelihood
-        of its innovation ``nu ~ N(0, S)``, ``S = G Sigma- G' + inv(P)``. For ``P = exp(l)``,
-        per component (diagonal ``S``), ``dF/dl_i = 1/2 (nu_i^2 / S_ii - 1) / (P_i S_ii)``. Its
-        fixed point is ``E[nu^2] = S``, the innovation-matching condition of adaptive Kalman
-        filtering (Mehra 1970, IEEE Trans Autom Control 15(2)). Steps are slow (rate
-        ``precision_learning_rate`` per second) and bounded to +-7 in ``l`` around the start.
+        Under a consistent filter the innovation ``nu = y - g(mu-)`` has variance
+        ``S = G Sigma- G' + R``, so ``R = E[nu^2] - G Sigma- G'`` per component (diagonal
+        ``R``): the innovation-based adaptive estimate of Mehra 1970 (IEEE Trans Autom
+        Control 15(2), sec. IV) in the sample form of Myers & Tapley 1976 (IEEE Trans Autom
+        Control 21(4), eq. 29). Under velocity control the velocity prediction misses every
+        change of command, so ``Sigma-`` understates its error; there the efference copy's
+        error ``e_m = a - q'-`` carries the same prediction error with independent noise, and
+        ``R_v = E[nu_v (nu_v - e_m)]`` is Grubbs' two-instrument estimator (Grubbs 1948, J Am
+        Stat Assoc 43(242), from memory), free of the prediction error whatever its size. Each
+        estimate is averaged with weights ``max(1 / k, 1 - exp(-r dt_m))``
+        (``k`` the channel's sample count, ``r = precision_learning_rate`` per second, ``dt_m``
+        the channel's sample interval; ``r = 0`` keeps the full average), and the precision
+        is ``P = 1 / R``, bounded to ``[e^-7, e^7]`` times the starting precision. Samples a
+        channel takes while flagged by the innovation test of :meth:`_detect_faults` are
+        skipped.
         """
-        rate = self.options["precision_learning_rate"] * self.dt
+        rate = float(self.options["precision_learning_rate"])
         for name in ("joint_angle", "joint_velocity", "camera"):
-            if name not in errors:
+            if name not in errors or name not in self._noise_variance:
+                continue
+            high = self._fault_high[name]
+            if high.all():
                 continue
             e = errors[name]
-            cur = self.precision[name]
-            S = self._innovation_variance(name, cov_prior, g_cam) + 1.0 / cur
-            grad = 0.5 * (e * e / S - 1.0) / (cur * S)
-            healthy = ~self._fault[name]
-            if name == "camera":
-                grad = np.full(2, grad.mean())
-                healthy = healthy.repeat(2)
-            log_p = np.log(cur) - rate * grad * healthy
+            if name == "joint_velocity" and "motor" in errors:
+                # Grubbs' estimator: the efference copy sees the same prediction error.
+                sample = e * (e - errors["motor"])
+            else:
+                sample = e * e - self._innovation_variance(name, cov_prior, g_cam)
+            k = self._noise_samples[name] + 1
+            self._noise_samples[name] = k
+            step_s = self.dt
+            if name == "camera" and self.camera is not None:
+                step_s = max(self.dt, 1.0 / self.camera.rate_hz)
+            a = max(1.0 / k, -np.expm1(-rate * step_s))
+            healthy = ~(high.repeat(2) if name == "camera" else high)
+            R = self._noise_variance[name]
+            R += (a * healthy) * (sample - R)
             p0 = self._initial_precision[name]
-            self.precision[name] = np.exp(np.clip(log_p, np.log(p0) - 7.0, np.log(p0) + 7.0))
+            self.precision[name] = np.clip(
+                1.0 / np.maximum(R, 1e-300), p0 * np.exp(-7.0), p0 * np.exp(7.0)
+            )
 
     # -- free energy at an arbitrary belief (for checks and analysis) ----------------------
     def free_energy_and_gradient(

@@ -1,0 +1,163 @@
+"""Per-episode summary of a run folder, computed from the log columns alone.
+
+For each episode:
+
+- ``steps`` rows and ``duration_s`` (last ``t`` minus first);
+- ``success``: any true value in ``external.success`` (or ``sensory.success``); without
+  such a column, whether the tool-tip distance ever came within ``tolerance_m`` of the
+  run metadata; else unknown (``<NA>``);
+- ``time_to_success_s``: time from the first row to the first success;
+- ``final_error_m``: the last logged distance to the target, from
+  ``external.distance_m`` or computed as the Euclidean norm of
+  ``external.tip_position_m - external.target_position_m`` (for a base: base position
+  against the dock, in the x-y plane);
+- ``mean_free_energy``: mean of ``internal.free_energy`` (NaN without an agent).
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from blanket.logs.reader import read_metadata, read_run
+from blanket.logs.schema import LogError
+
+__all__ = ["summarize_run", "format_summary", "inspect_text", "episode_distance"]
+
+_COMPONENTS = ("x", "y", "z")
+
+
+def episode_distance(frame: pd.DataFrame) -> np.ndarray | None:
+    """Distance to the target per row (m), or None when the columns do not allow it."""
+    if "external.distance_m" in frame.columns:
+        return pd.to_numeric(frame["external.distance_m"], errors="coerce").to_numpy(float)
+    pairs = [
+        ("external.tip_position_m", "external.target_position_m", _COMPONENTS),
+    ]
+    for key in {c.split(".")[1] for c in frame.columns if c.startswith("external.")}:
+        if "base" in key:
+            for other in {c.split(".")[1] for c in frame.columns if c.startswith("external.")}:
+                if "dock" in other or "goal" in other:
+                    pairs.append((f"external.{key}", f"external.{other}", ("x", "y")))
+    for a, b, comps in pairs:
+        cols_a = [f"{a}.{c}" for c in comps]
+        cols_b = [f"{b}.{c}" for c in comps]
+        if all(c in frame.columns for c in cols_a + cols_b):
+            diff = frame[cols_a].to_numpy(float) - frame[cols_b].to_numpy(float)
+            return np.linalg.norm(diff, axis=1)
+    return None
+
+
+def _success(frame: pd.DataFrame) -> np.ndarray | None:
+    for column in ("external.success", "sensory.success"):
+        if column in frame.columns:
+            return frame[column].fillna(False).to_numpy(dtype=bool)
+    return None
+
+
+def _summarize_episode(frame: pd.DataFrame, tolerance_m: float | None) -> dict[str, Any]:
+    t = frame["t"].to_numpy(dtype=float)
+    distance = episode_distance(frame)
+    success = _success(frame)
+    if success is None and distance is not None and tolerance_m is not None:
+        success = np.nan_to_num(distance, nan=np.inf) <= tolerance_m
+    row: dict[str, Any] = {
+        "steps": int(len(frame)),
+        "duration_s": float(t[-1] - t[0]) if len(t) else 0.0,
+        "success": pd.NA,
+        "time_to_success_s": np.nan,
+        "final_error_m": np.nan,
+        "mean_free_energy": np.nan,
+    }
+    if success is not None and len(success):
+        row["success"] = bool(success.any())
+        if success.any():
+            row["time_to_success_s"] = float(t[int(np.argmax(success))] - t[0])
+    if distance is not None:
+        finite = distance[np.isfinite(distance)]
+        if finite.size:
+            row["final_error_m"] = float(finite[-1])
+    if "internal.free_energy" in frame.columns:
+        values = pd.to_numeric(frame["internal.free_energy"], errors="coerce")
+        if values.notna().any():
+            row["mean_free_energy"] = float(values.mean())
+    return row
+
+
+def summarize_run(run_dir: str | os.PathLike[str]) -> pd.DataFrame:
+    """One row per episode (index ``episode``), see the module docstring for the columns."""
+    metadata = read_metadata(run_dir)
+    wanted = [
+        "external.distance_m",
+        "external.success",
+        "sensory.success",
+        "internal.free_energy",
+        *(f"external.tip_position_m.{c}" for c in _COMPONENTS),
+        *(f"external.target_position_m.{c}" for c in _COMPONENTS),
+    ]
+    frame = read_run(run_dir, columns=wanted)
+    if not any(c in frame.columns for c in wanted):
+        # A base run or a custom env: fall back to every column (distance heuristics).
+        frame = read_run(run_dir)
+    tolerance = metadata.get("tolerance_m")
+    tolerance = float(tolerance) if isinstance(tolerance, (int, float)) else None
+    rows = {
+        int(episode): _summarize_episode(group, tolerance)
+        for episode, group in frame.groupby("episode", sort=True)
+    }
+    table = pd.DataFrame.from_dict(rows, orient="index")
+    table.index.name = "episode"
+    table["success"] = table["success"].astype("boolean")
+    return table
+
+
+def format_summary(table: pd.DataFrame, metadata: Mapping[str, Any], run_dir: Path | str) -> str:
+    """Text rendering: a run header, the episode table and a totals line."""
+    versions = metadata.get("versions") or {}
+    scenario = metadata.get("scenario")
+    if isinstance(scenario, Mapping):  # the runner logs {"name": ..., "env": ...}
+        scenario = scenario.get("name") or scenario.get("env")
+    header = [
+        f"run        {run_dir}",
+        f"scenario   {scenario}    seed {metadata.get('seed')}    robot {metadata.get('robot')}",
+        f"rates      {metadata.get('rates')}",
+        f"started    {metadata.get('started_at', '?')}    schema {metadata.get('schema_version')}"
+        f"    blanket {versions.get('blanket')}",
+        "",
+    ]
+    shown = table.copy()
+    shown["success"] = shown["success"].map(
+        lambda v: "-" if v is pd.NA or pd.isna(v) else ("yes" if v else "no")
+    )
+    body = shown.to_string(
+        float_format=lambda v: f"{v:.4g}",
+        na_rep="-",
+    )
+    known = table["success"].dropna()
+    if len(known):
+        n_ok = int(known.sum())
+        times = table.loc[table["success"].fillna(False), "time_to_success_s"]
+        median = f"{times.median():.3g} s" if len(times) else "-"
+        totals = (
+            f"\n\n{n_ok} of {len(known)} episodes reached the target "
+            f"({100.0 * n_ok / len(known):.0f} %); median time to success {median}"
+        )
+    else:
+        totals = "\n\nsuccess unknown (no success column and no tolerance_m in the metadata)"
+    errors = table["final_error_m"].dropna()
+    if len(errors):
+        totals += f"; median final error {errors.median():.3g} m"
+    return "\n".join(header) + body + totals
+
+
+def inspect_text(run_dir: str | os.PathLike[str]) -> str:
+    """``format_summary(summarize_run(run_dir), read_metadata(run_dir), run_dir)``."""
+    table = summarize_run(run_dir)
+    if table.empty:
+        raise LogError(f"{run_dir}: the run holds no rows")
+    return format_summary(table, read_metadata(run_dir), run_dir)

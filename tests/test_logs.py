@@ -1,0 +1,687 @@
+"""Trajectory logs: writer, reader, crash safety, determinism, errors, Recorder, inspection.
+
+Outside references: the files are read back by Apache Arrow's own readers
+(``pyarrow.parquet``, ``pyarrow.dataset`` discovery), by pandas (``read_parquet``) and, when
+installed, by polars and duckdb; kinematic consistency of logged truth is checked against the
+textbook planar two-link forward kinematics x = l1 cos q1 + l2 cos(q1 + q2),
+y = l1 sin q1 + l2 sin(q1 + q2) (e.g. Spong, Hutchinson & Vidyasagar, "Robot Modeling and
+Control", 2006, sec. 3.1).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import signal
+import subprocess
+import sys
+import textwrap
+from pathlib import Path
+
+import gymnasium as gym
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.dataset as ds
+import pyarrow.parquet as pq
+import pytest
+
+from blanket.errors import ConfigError
+from blanket.logs import LogError, RunWriter, open_dataset, read_metadata, read_run
+from blanket.logs.cli import add_inspect_parser, add_plot_parser, run_inspect
+from blanket.logs.inspect import inspect_text, summarize_run
+from blanket.logs.schema import SCHEMA_VERSION, component_labels, unit_for_key
+from blanket.wrappers import Recorder
+
+JOINTS = ["shoulder", "elbow"]
+L1_M, L2_M = 0.4, 0.3
+
+
+def planar_tip(q: np.ndarray) -> np.ndarray:
+    """Textbook planar two-link forward kinematics (Spong et al. 2006, sec. 3.1), z = 0.05 m."""
+    return np.array(
+        [
+            L1_M * np.cos(q[0]) + L2_M * np.cos(q[0] + q[1]),
+            L1_M * np.sin(q[0]) + L2_M * np.sin(q[0] + q[1]),
+            0.05,
+        ]
+    )
+
+
+def write_demo_run(run_dir: Path, episodes: int = 2, steps: int = 50, seed: int = 0, **kw) -> dict:
+    """A small potting-bench run with all four groups; returns the raw data per episode."""
+    rng = np.random.default_rng(seed)
+    raw: dict = {}
+    meta = {
+        "scenario": "tray-cell-b3",
+        "seed": seed,
+        "robot": "planar_2link",
+        "joint_names": JOINTS,
+        "action_low": [-3.0, -3.0],
+        "action_high": [3.0, 3.0],
+        "tolerance_m": 0.01,
+    }
+    with RunWriter(run_dir, meta, **kw) as writer:
+        for ep in range(episodes):
+            writer.begin_episode(ep, max_steps=steps)
+            q = rng.uniform(-1, 1, 2)
+            target = planar_tip(np.array([0.6, 0.9]))
+            rows = []
+            for k in range(steps):
+                belief = np.vstack([q + 0.01 * k, np.full(2, 0.1 * k), np.zeros(2)])
+                row = dict(
+                    external={
+                        "joint_angle_rad": q.copy(),
+                        "tip_position_m": planar_tip(q),
+                        "target_position_m": target,
+                        "distance_m": float(np.linalg.norm(planar_tip(q) - target)),
+                        "success": k >= steps - 5,
+                    },
+                    sensory={
+                        "joint_angle_rad": q + rng.normal(0, 0.01, 2),
+                        "tip_pixel_px": rng.uniform(0, 320, 2),
+                        "tip_visible": np.int64(k % 2),
+                    },
+                    active={"joint_velocity_rad_s": rng.uniform(-3, 3, 2)},
+                    internal={
+                        "belief": belief,
+                        "free_energy": float(k),
+                        "prediction_error": {"camera": rng.normal(size=2)},
+                    },
+                )
+                writer.record(k, k / 240.0, **row)
+                rows.append(row)
+                q = q + 0.01
+            writer.end_episode({"seed": seed + ep})
+            raw[ep] = rows
+    return raw
+
+
+# --------------------------------------------------------------------------- naming and units
+def test_column_names_follow_the_documented_pattern(tmp_path: Path) -> None:
+    write_demo_run(tmp_path / "run", episodes=1, steps=3)
+    frame = read_run(tmp_path / "run")
+    assert list(frame.columns) == [
+        "episode",
+        "step",
+        "t",
+        "external.joint_angle_rad.shoulder",
+        "external.joint_angle_rad.elbow",
+        "external.tip_position_m.x",
+        "external.tip_position_m.y",
+        "external.tip_position_m.z",
+        "external.target_position_m.x",
+        "external.target_position_m.y",
+        "external.target_position_m.z",
+        "external.distance_m",
+        "external.success",
+        "sensory.joint_angle_rad.shoulder",
+        "sensory.joint_angle_rad.elbow",
+        "sensory.tip_pixel_px.u",
+        "sensory.tip_pixel_px.v",
+        "sensory.tip_visible",
+        "active.joint_velocity_rad_s.shoulder",
+        "active.joint_velocity_rad_s.elbow",
+        "internal.belief.order0.shoulder",
+        "internal.belief.order0.elbow",
+        "internal.belief.order1.shoulder",
+        "internal.belief.order1.elbow",
+        "internal.belief.order2.shoulder",
+        "internal.belief.order2.elbow",
+        "internal.free_energy",
+        "internal.prediction_error.camera.u",
+        "internal.prediction_error.camera.v",
+    ]
+
+
+def test_component_name_rules() -> None:
+    joints = ["a1", "a2", "a3"]
+    assert component_labels(("external", "tip_position_m"), 3, joints, None) == ["x", "y", "z"]
+    assert component_labels(("sensory", "joint_angle_rad"), 3, joints, None) == joints
+    assert component_labels(("sensory", "target_pixel_px"), 2, joints, None) == ["u", "v"]
+    assert component_labels(("internal", "prediction_error", "camera"), 4, None, None) == [
+        "u0",
+        "v0",
+        "u1",
+        "v1",
+    ]
+    assert component_labels(("internal", "camera"), 3, joints, None) == ["c0", "c1", "c2"]
+    assert component_labels(("external", "base_pose"), 3, None, None) == ["x", "y", "yaw"]
+    assert component_labels(("internal", "precision"), 4, joints, None) == ["c0", "c1", "c2", "c3"]
+    names = {"prediction_error.camera": ["tip_u", "tip_v"], "_wheel_rad_s": ["left", "right"]}
+    assert component_labels(("internal", "prediction_error", "camera"), 2, None, names) == [
+        "tip_u",
+        "tip_v",
+    ]
+    assert component_labels(("active", "drive_wheel_rad_s"), 2, None, names) == ["left", "right"]
+    with pytest.raises(ValueError, match="component_names"):
+        component_labels(("internal", "prediction_error", "camera"), 3, None, names)
+
+
+def test_component_names_option_and_units_in_schema(tmp_path: Path) -> None:
+    with RunWriter(tmp_path / "r", {}, component_names={"camera": ["u_tip", "v_tip"]}) as w:
+        w.begin_episode(0)
+        w.record(
+            0,
+            0.0,
+            external={"joint_torque_n_m": np.zeros(2), "step_time_us": 3.0},
+            sensory={"camera": np.zeros(2)},
+            active={"wheel_speed_rad_s": np.ones(2)},
+        )
+        path = w.end_episode()
+    schema = pq.read_schema(path)  # reference: Arrow's own Parquet schema reader
+    assert schema.names[3:] == [
+        "external.joint_torque_n_m.c0",
+        "external.joint_torque_n_m.c1",
+        "external.step_time_us",
+        "sensory.camera.u_tip",
+        "sensory.camera.v_tip",
+        "active.wheel_speed_rad_s.c0",
+        "active.wheel_speed_rad_s.c1",
+    ]
+    units = {f.name: (f.metadata or {}).get(b"unit", b"").decode() for f in schema}
+    assert units["t"] == "s"
+    assert units["external.joint_torque_n_m.c1"] == "N m"
+    assert units["external.step_time_us"] == "us"
+    assert units["active.wheel_speed_rad_s.c0"] == "rad/s"
+    assert units["sensory.camera.u_tip"] == ""
+    assert json.loads(schema.metadata[b"blanket.units"])["external.joint_torque_n_m.c0"] == "N m"
+    run = json.loads((tmp_path / "r" / "run.json").read_text())
+    assert run["units"]["active.wheel_speed_rad_s.c1"] == "rad/s"
+
+
+@pytest.mark.parametrize(
+    ("key", "unit"),
+    [
+        ("tip_position_m", "m"),
+        ("joint_velocity_rad_s", "rad/s"),
+        ("joint_angle_rad", "rad"),
+        ("joint_torque_n_m", "N m"),
+        ("tip_pixel_px", "px"),
+        ("time_s", "s"),
+        ("sim_step_us", "us"),
+        ("free_energy", None),
+        ("belief", None),
+    ],
+)
+def test_unit_from_key_suffix(key: str, unit: str | None) -> None:
+    assert unit_for_key(key) == unit
+
+
+# --------------------------------------------------------------------------- round trip
+def test_values_round_trip_through_independent_readers(tmp_path: Path) -> None:
+    raw = write_demo_run(tmp_path / "run", episodes=2, steps=40)
+    frame = read_run(tmp_path / "run")
+    assert len(frame) == 80
+    row = raw[1][17]
+    got = frame[(frame.episode == 1) & (frame.step == 17)].iloc[0]
+    assert got["t"] == pytest.approx(17 / 240.0)
+    np.testing.assert_array_equal(
+        got[["internal.belief.order1.shoulder", "internal.belief.order1.elbow"]].to_numpy(float),
+        row["internal"]["belief"][1],
+    )
+    np.testing.assert_array_equal(
+        got[["sensory.tip_pixel_px.u", "sensory.tip_pixel_px.v"]].to_numpy(float),
+        row["sensory"]["tip_pixel_px"],
+    )
+    assert got["sensory.tip_visible"] == 1 and got["external.success"] == np.False_
+    # The same folder through Arrow's discovery (dot files skipped) and pandas.
+    table = ds.dataset(tmp_path / "run" / "episodes", format="parquet").to_table()
+    assert table.num_rows == 80
+    pandas_frame = pd.read_parquet(tmp_path / "run" / "episodes")
+    np.testing.assert_array_equal(
+        np.sort(pandas_frame["active.joint_velocity_rad_s.elbow"].to_numpy()),
+        np.sort(frame["active.joint_velocity_rad_s.elbow"].to_numpy()),
+    )
+    assert open_dataset(tmp_path / "run").count_rows() == 80
+    one = read_run(tmp_path / "run" / "episodes" / "episode-00001.parquet")
+    assert set(one.episode) == {1} and len(one) == 40
+    assert read_metadata(tmp_path / "run" / "episodes" / "episode-00001.parquet")["episode"] == {
+        "episode": 1,
+        "rows": 40,
+        "extra": {"seed": 1},
+    }
+
+
+def test_polars_reads_the_folder(tmp_path: Path) -> None:
+    pl = pytest.importorskip("polars")
+    write_demo_run(tmp_path / "run", episodes=2, steps=10)
+    frame = pl.read_parquet(str(tmp_path / "run" / "episodes" / "*.parquet"))
+    assert frame.height == 20 and "internal.belief.order2.elbow" in frame.columns
+
+
+def test_duckdb_reads_the_folder(tmp_path: Path) -> None:
+    duckdb = pytest.importorskip("duckdb")
+    write_demo_run(tmp_path / "run", episodes=2, steps=10)
+    pattern = str(tmp_path / "run" / "episodes" / "*.parquet")
+    count = duckdb.sql(f"SELECT count(*) FROM read_parquet('{pattern}')").fetchone()[0]
+    assert count == 20
+
+
+def test_same_data_written_twice_gives_identical_files(tmp_path: Path) -> None:
+    write_demo_run(tmp_path / "a", episodes=2, steps=30, seed=4)
+    write_demo_run(tmp_path / "b", episodes=2, steps=30, seed=4)
+    for name in ("episode-00000.parquet", "episode-00001.parquet"):
+        assert (tmp_path / "a" / "episodes" / name).read_bytes() == (
+            tmp_path / "b" / "episodes" / name
+        ).read_bytes()
+    run_a = json.loads((tmp_path / "a" / "run.json").read_text())
+    run_b = json.loads((tmp_path / "b" / "run.json").read_text())
+    run_a.pop("started_at")
+    run_b.pop("started_at")
+    assert run_a == run_b
+    meta = pq.read_schema(tmp_path / "a" / "episodes" / "episode-00000.parquet").metadata
+    assert "started_at" not in json.loads(meta[b"blanket.run"])
+
+
+def test_buffers_grow_without_max_steps_and_keys_may_come_and_go(tmp_path: Path) -> None:
+    with RunWriter(tmp_path / "r", {"joint_names": JOINTS}) as w:
+        w.begin_episode(3)
+        for k in range(2500):  # beyond the initial capacity of 1024: two doublings
+            internal = {"free_energy": float(k)}
+            if k >= 2000:
+                internal["fault"] = {"camera": k % 3 == 0}
+            external = {"joint_angle_rad": np.array([k, -k], float)}
+            if k != 10:
+                external["payload_kg"] = 0.2
+            w.record(
+                k,
+                k * 0.01,
+                external=external,
+                sensory={"count": k if k < 100 else k + 0.5},
+                active={},
+                internal=internal,
+            )
+        w.end_episode()
+    frame = read_run(tmp_path / "r")
+    assert len(frame) == 2500 and set(frame.episode) == {3}
+    np.testing.assert_array_equal(frame["internal.free_energy"], np.arange(2500.0))
+    np.testing.assert_array_equal(frame["external.joint_angle_rad.elbow"], -np.arange(2500.0))
+    assert frame["external.payload_kg"].isna().sum() == 1 and np.isnan(
+        frame.loc[10, "external.payload_kg"]
+    )
+    assert frame["internal.fault.camera"].isna().sum() == 2000
+    assert frame.loc[2001, "internal.fault.camera"] == True  # noqa: E712
+    assert frame.loc[2002, "internal.fault.camera"] == False  # noqa: E712
+    # An int key that later receives a float is stored as float, early values kept.
+    assert frame["sensory.count"].dtype == np.float64
+    assert frame.loc[99, "sensory.count"] == 99.0 and frame.loc[100, "sensory.count"] == 100.5
+
+
+@pytest.mark.parametrize(
+    ("value", "message"),
+    [
+        (None, "external.x: value is None"),
+        ("near", "external.x: values of type str"),
+        (np.zeros((2, 2, 2)), "3 dimensions"),
+        (np.array(["a"]), "dtype"),
+    ],
+)
+def test_bad_values_raise_one_line(tmp_path: Path, value: object, message: str) -> None:
+    w = RunWriter(tmp_path / "r", {})
+    w.begin_episode(0)
+    with pytest.raises(ValueError, match=message) as info:
+        w.record(0, 0.0, external={"x": value}, sensory={}, active={})
+    assert "\n" not in str(info.value)
+
+
+def test_shape_change_mid_episode_raises(tmp_path: Path) -> None:
+    w = RunWriter(tmp_path / "r", {})
+    w.begin_episode(0)
+    w.record(0, 0.0, external={"q_rad": np.zeros(2)}, sensory={}, active={})
+    with pytest.raises(ValueError, match=r"external.q_rad: shape \(1,\) at row 1"):
+        w.record(1, 0.1, external={"q_rad": np.zeros(1)}, sensory={}, active={})
+    with pytest.raises(ValueError, match="shape"):
+        w.record(1, 0.1, external={"q_rad": 1.0}, sensory={}, active={})
+
+
+def test_writer_protocol_errors(tmp_path: Path) -> None:
+    w = RunWriter(tmp_path / "r", {})
+    with pytest.raises(ValueError, match="no open episode"):
+        w.record(0, 0.0, external={}, sensory={}, active={})
+    with pytest.raises(ValueError, match="no open episode"):
+        w.end_episode()
+    with pytest.raises(ValueError, match="episode"):
+        w.begin_episode(-1)
+    w.begin_episode(0)
+    with pytest.raises(ValueError, match="still open"):
+        w.begin_episode(1)
+    w.record(0, 0.0, external={"a": 1.0}, sensory={}, active={})
+    w.end_episode()
+    with pytest.raises(ValueError, match="already written"):
+        w.begin_episode(0)
+    with pytest.raises(ValueError, match="not JSON"):
+        RunWriter(tmp_path / "other", {"thing": object()})
+
+
+def test_non_empty_folder_needs_overwrite(tmp_path: Path) -> None:
+    write_demo_run(tmp_path / "run", episodes=3, steps=5)
+    with pytest.raises(ConfigError, match="not empty.*overwrite=True") as info:
+        RunWriter(tmp_path / "run", {})
+    assert "\n" not in str(info.value)
+    write_demo_run(tmp_path / "run", episodes=1, steps=5, overwrite=True)
+    assert sorted(set(read_run(tmp_path / "run").episode)) == [0]
+
+
+def test_exception_inside_context_discards_the_open_episode(tmp_path: Path) -> None:
+    with pytest.raises(RuntimeError):
+        with RunWriter(tmp_path / "r", {}) as w:
+            w.begin_episode(0)
+            w.record(0, 0.0, external={"a": 1.0}, sensory={}, active={})
+            w.end_episode()
+            w.begin_episode(1)
+            w.record(0, 0.0, external={"a": 1.0}, sensory={}, active={})
+            raise RuntimeError("sim crashed")
+    assert sorted(p.name for p in (tmp_path / "r" / "episodes").iterdir()) == [
+        "episode-00000.parquet"
+    ]
+
+
+# --------------------------------------------------------------------------- crash safety
+_CHILD = textwrap.dedent(
+    """
+    import os, sys, time
+    import numpy as np
+    from blanket.logs import RunWriter
+    import blanket.logs.writer as writer_module
+
+    mode = sys.argv[2]
+    w = RunWriter(sys.argv[1], {"scenario": "kill-test", "joint_names": ["shoulder", "elbow"]})
+    for ep in range(3):
+        w.begin_episode(ep)
+        for k in range(200):
+            w.record(k, k / 240, external={"joint_angle_rad": np.array([k, ep], float)},
+                     sensory={"tip_pixel_px": np.array([1.0, 2.0])},
+                     active={"joint_velocity_rad_s": np.zeros(2)})
+            if ep == 2 and k == 100 and mode == "recording":
+                print("READY", flush=True)
+                time.sleep(120)
+        if ep == 2 and mode == "renaming":
+            def stuck(src, dst):
+                print("READY", flush=True)
+                time.sleep(120)
+            writer_module.os.replace = stuck
+        w.end_episode()
+    """
+)
+
+
+@pytest.mark.parametrize("mode", ["recording", "renaming"])
+def test_sigkill_mid_episode_keeps_finished_episodes(tmp_path: Path, mode: str) -> None:
+    script = tmp_path / "child.py"
+    script.write_text(_CHILD)
+    run_dir = tmp_path / "run"
+    proc = subprocess.Popen(
+        [sys.executable, str(script), str(run_dir), mode],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+    )
+    try:
+        line = proc.stdout.readline()
+        assert line.strip() == "READY", proc.stderr.read()
+        os.kill(proc.pid, signal.SIGKILL)
+        proc.wait(timeout=30)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+    assert proc.returncode == -signal.SIGKILL
+    names = sorted(p.name for p in (run_dir / "episodes").iterdir())
+    visible = [n for n in names if not n.startswith(".")]
+    assert visible == ["episode-00000.parquet", "episode-00001.parquet"]
+    if mode == "renaming":  # the complete temporary of episode 2 is left, hidden
+        assert len(names) == 3 and names[0].startswith(".episode-00002.parquet.")
+    frame = read_run(run_dir)
+    assert sorted(set(frame.episode)) == [0, 1] and len(frame) == 400
+    np.testing.assert_array_equal(
+        frame["external.joint_angle_rad.elbow"], np.repeat([0.0, 1.0], 200)
+    )
+    assert ds.dataset(run_dir / "episodes", format="parquet").count_rows() == 400
+    assert open_dataset(run_dir).count_rows() == 400
+
+
+# --------------------------------------------------------------------------- errors
+def _one_line_log_error(path: Path, match: str) -> None:
+    with pytest.raises(LogError, match=match) as info:
+        read_run(path)
+    assert isinstance(info.value, ValueError)
+    assert "\n" not in str(info.value)
+
+
+def test_truncated_file_is_refused(tmp_path: Path) -> None:
+    write_demo_run(tmp_path / "run", episodes=2, steps=30)
+    path = tmp_path / "run" / "episodes" / "episode-00001.parquet"
+    data = path.read_bytes()
+    path.write_bytes(data[: len(data) // 2])
+    _one_line_log_error(tmp_path / "run", "episode-00001.parquet: not a readable Parquet file")
+    # the intact episode still reads on its own
+    assert len(read_run(tmp_path / "run" / "episodes" / "episode-00000.parquet")) == 30
+
+
+def test_corrupt_footer_is_refused(tmp_path: Path) -> None:
+    write_demo_run(tmp_path / "run", episodes=1, steps=30)
+    path = tmp_path / "run" / "episodes" / "episode-00000.parquet"
+    data = bytearray(path.read_bytes())
+    data[-40:-8] = b"\x07" * 32  # footer metadata garbled, magic bytes intact
+    path.write_bytes(bytes(data))
+    _one_line_log_error(tmp_path / "run", "episode-00000.parquet: not a readable Parquet file")
+
+
+def test_foreign_parquet_and_other_files_are_refused(tmp_path: Path) -> None:
+    folder = tmp_path / "foreign"
+    folder.mkdir()
+    pd.DataFrame({"a": [1, 2]}).to_parquet(folder / "data.parquet")
+    _one_line_log_error(folder, "not a blanket log")
+    text = tmp_path / "notes.csv"
+    text.write_text("t,q\n0,1\n")
+    _one_line_log_error(text, "not a readable Parquet file")
+
+
+def test_newer_schema_is_refused(tmp_path: Path) -> None:
+    folder = tmp_path / "future" / "episodes"
+    folder.mkdir(parents=True)
+    table = pa.table({"episode": [0], "step": [0], "t": [0.0]}).replace_schema_metadata(
+        {b"blanket.schema_version": b"2.1", b"blanket.run": b"{}"}
+    )
+    pq.write_table(table, folder / "episode-00000.parquet")
+    _one_line_log_error(
+        tmp_path / "future",
+        f"written by a newer blanket schema 2.1; this reader knows {SCHEMA_VERSION}",
+    )
+
+
+def test_empty_or_missing_folder_is_refused(tmp_path: Path) -> None:
+    (tmp_path / "empty").mkdir()
+    _one_line_log_error(tmp_path / "empty", "no episode files")
+    _one_line_log_error(tmp_path / "missing", "no such file or folder")
+    with pytest.raises(LogError):
+        open_dataset(tmp_path / "empty")
+
+
+def test_dot_files_are_never_read(tmp_path: Path) -> None:
+    write_demo_run(tmp_path / "run", episodes=1, steps=5)
+    (tmp_path / "run" / "episodes" / ".episode-00001.parquet.99.tmp").write_bytes(b"PAR1 partial")
+    (tmp_path / "run" / "episodes" / ".episode-00002.parquet").write_bytes(b"garbage")
+    assert len(read_run(tmp_path / "run")) == 5
+    assert ds.dataset(tmp_path / "run" / "episodes", format="parquet").count_rows() == 5
+    with pytest.raises(LogError, match="hidden"):
+        read_run(tmp_path / "run" / "episodes" / ".episode-00002.parquet")
+
+
+# --------------------------------------------------------------------------- Recorder
+class _CounterEnv(gym.Env):
+    """A physics-free env: the observation counts steps, truth goes in info['external']."""
+
+    observation_space = gym.spaces.Dict(
+        {"count": gym.spaces.Box(0, 100, (1,)), "seen": gym.spaces.Discrete(2)}
+    )
+    action_space = gym.spaces.Box(-1.0, 1.0, (2,))
+
+    def reset(self, *, seed=None, options=None):
+        super().reset(seed=seed)
+        self.k = 0
+        return self._obs(), self._info()
+
+    def step(self, action):
+        self.k += 1
+        applied = np.clip(np.asarray(action) * 0.5, -1, 1)
+        info = self._info()
+        info["action_applied"] = applied
+        return self._obs(), 0.0, False, self.k >= 4, info
+
+    def _obs(self):
+        return {"count": np.array([float(self.k)]), "seen": self.k % 2}
+
+    def _info(self):
+        return {
+            "time_s": self.k * 0.5,
+            "distance_m": 1.0 / (1 + self.k),
+            "success": self.k >= 3,
+            "external": {"position_m": np.array([self.k, 0.0, 0.0]), "label": "bench-3"},
+        }
+
+
+def test_recorder_aligns_sensation_action_and_truth(tmp_path: Path) -> None:
+    env = Recorder(_CounterEnv(), tmp_path / "run", metadata={"scenario": "counter"})
+    actions = {}
+    with pytest.warns(UserWarning, match="external.label"):
+        for ep in range(2):
+            env.reset(seed=ep)
+            done = False
+            k = 0
+            while not done:
+                a = np.array([k + 1.0, -(k + 1.0)]) / 10
+                actions[(ep, k)] = a
+                *_, term, trunc, _ = env.step(a)
+                done = term or trunc
+                k += 1
+    env.close()
+    frame = read_run(tmp_path / "run")
+    assert sorted(set(frame.episode)) == [0, 1]
+    ep0 = frame[frame.episode == 0].reset_index(drop=True)
+    assert len(ep0) == 5  # 4 actions + the final state
+    np.testing.assert_array_equal(ep0["sensory.count.c0"], [0, 1, 2, 3, 4])
+    np.testing.assert_array_equal(ep0["external.position_m.x"], [0, 1, 2, 3, 4])
+    np.testing.assert_allclose(ep0["t"], [0, 0.5, 1.0, 1.5, 2.0])
+    np.testing.assert_allclose(ep0["active.command.c0"][:4], [0.1, 0.2, 0.3, 0.4])
+    np.testing.assert_allclose(ep0["active.applied_command.c1"][:4], [-0.05, -0.1, -0.15, -0.2])
+    assert np.isnan(ep0["active.command.c0"][4])
+    assert list(ep0["external.success"]) == [False, False, False, True, True]
+    assert not any(c.startswith("internal.") for c in frame.columns)
+    meta = read_metadata(tmp_path / "run")
+    assert meta["scenario"] == "counter" and meta["action_high"] == [1.0, 1.0]
+    info = read_metadata(tmp_path / "run" / "episodes" / "episode-00001.parquet")["episode"]
+    assert info["extra"] == {"seed": 1, "actions": 4, "terminated": False, "truncated": True}
+    table = summarize_run(tmp_path / "run")
+    assert table.loc[0, "success"] and table.loc[0, "time_to_success_s"] == pytest.approx(1.5)
+    assert table.loc[0, "final_error_m"] == pytest.approx(0.2)
+
+
+def test_recorder_on_the_planar_env_logs_consistent_truth(tmp_path: Path) -> None:
+    pytest.importorskip("blanket_envs.arm_reach")
+    env = Recorder(gym.make("blanket/planar-2link-v0"), tmp_path / "run")
+    env.reset(seed=3)
+    for _ in range(60):
+        env.step(np.array([1.0, -0.5]))
+    env.close()
+    frame = read_run(tmp_path / "run")
+    meta = read_metadata(tmp_path / "run")
+    assert meta["joint_names"] == ["shoulder", "elbow"] and Path(meta["urdf_path"]).is_file()
+    assert len(frame) == 61
+    q = frame[["external.joint_angle_rad.shoulder", "external.joint_angle_rad.elbow"]].to_numpy()
+    tip = frame[[f"external.tip_position_m.{c}" for c in "xyz"]].to_numpy()
+    # Logged truth columns of one row agree with textbook planar forward kinematics.
+    np.testing.assert_allclose(tip, np.array([planar_tip(r) for r in q]), atol=1e-6)
+    dist = np.linalg.norm(
+        tip - frame[[f"external.target_position_m.{c}" for c in "xyz"]].to_numpy(), axis=1
+    )
+    np.testing.assert_allclose(frame["external.distance_m"], dist, atol=1e-9)
+    np.testing.assert_allclose(frame["active.joint_velocity_rad_s.shoulder"][:60], 1.0)
+    assert {"sensory.tip_pixel_px.u", "sensory.tip_visible", "sensory.camera_fresh"} <= set(
+        frame.columns
+    )
+
+
+# --------------------------------------------------------------------------- inspect and CLI
+def test_summarize_run_against_direct_computation(tmp_path: Path) -> None:
+    raw = write_demo_run(tmp_path / "run", episodes=2, steps=40)
+    table = summarize_run(tmp_path / "run")
+    assert list(table.index) == [0, 1]
+    for ep, rows in raw.items():
+        last = rows[-1]["external"]
+        expected = np.linalg.norm(last["tip_position_m"] - last["target_position_m"])
+        assert table.loc[ep, "final_error_m"] == pytest.approx(expected)
+        assert bool(table.loc[ep, "success"])
+        assert table.loc[ep, "time_to_success_s"] == pytest.approx(35 / 240.0)
+        assert table.loc[ep, "mean_free_energy"] == pytest.approx(np.mean(np.arange(40.0)))
+    text = inspect_text(tmp_path / "run")
+    assert "tray-cell-b3" in text and "2 of 2 episodes reached the target" in text
+
+
+def test_summary_without_distance_or_success_columns_uses_positions_and_tolerance(
+    tmp_path: Path,
+) -> None:
+    with RunWriter(tmp_path / "r", {"tolerance_m": 0.05}) as w:
+        w.begin_episode(0)
+        for k in range(10):
+            w.record(
+                k,
+                0.1 * k,
+                external={
+                    "tip_position_m": np.array([0.0, 0.3 - 0.03 * k, 0.0]),
+                    "target_position_m": np.zeros(3),
+                },
+                sensory={},
+                active={},
+            )
+        w.end_episode()
+    table = summarize_run(tmp_path / "r")
+    assert table.loc[0, "final_error_m"] == pytest.approx(0.03)
+    # first row within 0.05 m: 0.3 - 0.03 k <= 0.05 -> k = 9 (floating point: 0.03 at k = 9)
+    assert bool(table.loc[0, "success"]) and table.loc[0, "time_to_success_s"] == pytest.approx(0.9)
+    assert np.isnan(table.loc[0, "mean_free_energy"])
+
+
+def test_cli_inspect_prints_and_refuses_bad_folders(tmp_path: Path, capsys) -> None:
+    write_demo_run(tmp_path / "run", episodes=2, steps=10)
+    parser = argparse.ArgumentParser(prog="blanket")
+    sub = parser.add_subparsers(dest="command", required=True)
+    add_plot_parser(sub)
+    add_inspect_parser(sub)
+    args = parser.parse_args(["inspect", str(tmp_path / "run"), "--csv", str(tmp_path / "s.csv")])
+    assert args.handler(args) == 0
+    out = capsys.readouterr().out
+    assert "episode" in out and "final_error_m" in out
+    assert pd.read_csv(tmp_path / "s.csv")["steps"].tolist() == [10, 10]
+    (tmp_path / "empty").mkdir()
+    with pytest.raises(ValueError, match="no episode files"):
+        run_inspect(parser.parse_args(["inspect", str(tmp_path / "empty")]))
+    with pytest.raises(SystemExit):
+        parser.parse_args(["plot", str(tmp_path / "run"), "--episode", "-2"])
+
+
+def test_wall_clock_metadata_stays_out_of_episode_files(tmp_path: Path) -> None:
+    paths = []
+    for name, stamp in (("a", "2031-04-01T08:00:00"), ("b", "2031-04-02T09:30:00")):
+        meta = {"scenario": "tray-a1", "start_time": stamp, "versions": {"pybullet": "unknown"}}
+        with RunWriter(tmp_path / name, meta) as w:
+            w.begin_episode(0)
+            w.record(0, 0.0, external={"distance_m": 0.2}, sensory={}, active={})
+            paths.append(w.end_episode())
+        run = json.loads((tmp_path / name / "run.json").read_text())
+        assert run["start_time"] == stamp
+        assert run["versions"]["pybullet"] not in (None, "unknown")  # the installed version
+    assert paths[0].read_bytes() == paths[1].read_bytes()
+
+
+def test_arrays_are_copied_so_callers_may_reuse_them(tmp_path: Path) -> None:
+    belief = np.zeros((2, 2))  # an agent that updates its belief in place
+    with RunWriter(tmp_path / "r", {"joint_names": JOINTS}) as w:
+        w.begin_episode(0)
+        for k in range(5):
+            belief += 1.0
+            w.record(k, k * 0.1, external={}, sensory={}, active={}, internal={"belief": belief})
+        w.end_episode()
+    frame = read_run(tmp_path / "r")
+    np.testing.assert_array_equal(frame["internal.belief.order1.elbow"], [1, 2, 3, 4, 5])
