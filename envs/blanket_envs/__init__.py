@@ -7,8 +7,7 @@ gymnasium's public ``register`` -- the same route a user's own package would tak
 
 from __future__ import annotations
 
-from gymnasium import register
-from gymnasium import registry
+from gymnasium import register, registry
 
 _ENVS = {
     "blanket/arm-reach-v0": "blanket_envs.arm_reach:ArmReachEnv",

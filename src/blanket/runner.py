@@ -371,7 +371,17 @@ def _run_metadata(scenario: Scenario, env: Any, seed: int) -> dict[str, Any]:
     return meta
 
 
-def write_figure(results: list[EpisodeResult], path: Path, title: str) -> Path:
+def _tolerance_m(env: Any) -> float | None:
+    d = getattr(env.unwrapped, "description", None)
+    for key in ("tolerance_m", "success_distance_m"):
+        if hasattr(d, key):
+            return float(getattr(d, key))
+    return None
+
+
+def write_figure(
+    results: list[EpisodeResult], path: Path, title: str, tolerance_m: float | None = None
+) -> Path:
     """Tip distance and free energy over time, one thin line per episode."""
     import matplotlib
 
@@ -386,12 +396,15 @@ def write_figure(results: list[EpisodeResult], path: Path, title: str) -> Path:
         fe = r.trace["free_energy"]
         if np.isfinite(fe).any():
             ax2.plot(r.trace["t"], fe, color=color, lw=0.9, alpha=0.8)
-    tol = getattr(results[0], "tolerance_m", None)
     ax1.axhline(
-        1.0 if tol is None else tol * 100, color="#c0392b", ls="--", lw=1, label="tolerance"
+        1.0 if tolerance_m is None else tolerance_m * 100,
+        color="#c0392b",
+        ls="--",
+        lw=1,
+        label="tolerance",
     )
     ax1.set_yscale("log")
-    ax1.set_ylabel("distance to target [cm]")
+    ax1.set_ylabel("tip (or base) distance to goal [cm]")
     ax1.legend(loc="upper right", frameon=False)
     ax1.grid(True, which="both", alpha=0.25)
     ax2.set_ylabel("free energy [nats]")
@@ -440,7 +453,12 @@ def run_scenario(
         summary = summarize(results)
         if out_dir is not None:
             (out_dir / "summary.json").write_text(json.dumps(summary, indent=2) + "\n")
-            write_figure(results, out_dir / "reach.png", f"{scenario.name}: {scenario.env}")
+            write_figure(
+                results,
+                out_dir / "reach.png",
+                f"{scenario.name}: {scenario.env}",
+                tolerance_m=_tolerance_m(env),
+            )
         return summary
     finally:
         env.close()

@@ -68,7 +68,7 @@ __all__ = ["BaseAgent", "plan_waypoints", "segment_hits_box", "attractor_velocit
 
 
 def segment_hits_box(p: np.ndarray, q: np.ndarray, box: np.ndarray) -> bool:
-    """Whether the segment ``p -> q`` passes through the open box ``(x0, y0, x1, y1)`` (slab test)."""
+    """Whether the segment ``p -> q`` passes through the open box ``(x0, y0, x1, y1)`` (slabs)."""
     t0, t1 = 0.0, 1.0
     d = np.asarray(q, dtype=float) - np.asarray(p, dtype=float)
     for axis in range(2):
@@ -105,7 +105,12 @@ def plan_waypoints(
     nodes = [np.asarray(start_xy, float), np.asarray(goal_xy, float)]
     for c in corners:
         c = np.array(c)
-        inside = np.any((grown[:, 0] < c[0]) & (c[0] < grown[:, 2]) & (grown[:, 1] < c[1]) & (c[1] < grown[:, 3]))
+        inside = np.any(
+            (grown[:, 0] < c[0])
+            & (c[0] < grown[:, 2])
+            & (grown[:, 1] < c[1])
+            & (c[1] < grown[:, 3])
+        )
         if not inside:
             nodes.append(c)
 
@@ -264,8 +269,10 @@ class BaseAgent:
         # Odometry in the (common, differential) wheel-speed basis: noise on each wheel plus the
         # unmodelled slip of a skid steer, which hits the common mode (forward speed) and, much
         # more, the differential mode (yaw rate).
-        slip_common, slip_diff = opts["slip_sd_rad_s"] if opts["slip_sd_rad_s"] is not None else (
-            (0.0, 0.0) if skid is False else (0.3, 1.0)
+        slip_common, slip_diff = (
+            opts["slip_sd_rad_s"]
+            if opts["slip_sd_rad_s"] is not None
+            else ((0.0, 0.0) if skid is False else (0.3, 1.0))
         )
         self.odometry_basis = np.array([[1.0, 1.0], [-1.0, 1.0]]) / np.sqrt(2.0)
         w2 = max(d.wheel_speed_noise_rad_s, 1e-3) ** 2
@@ -288,12 +295,17 @@ class BaseAgent:
             q[3:6] = (0.1 * acc * self.dt) ** 2
             q[6:9] = (10.0 * acc * self.dt) ** 2
         self.process_covariance = np.diag(q)
-        self.speed_m_s = float(opts["cruise_fraction"]) * d.wheel_radius_m * d.wheel_speed_limit_rad_s
+        self.speed_m_s = (
+            float(opts["cruise_fraction"]) * d.wheel_radius_m * d.wheel_speed_limit_rad_s
+        )
         turn_fraction = opts["turn_fraction"]
         if turn_fraction is None:
             turn_fraction = 0.35 if skid else 0.7
         self.turn_rad_s = (
-            float(turn_fraction) * 2 * d.wheel_radius_m * d.wheel_speed_limit_rad_s
+            float(turn_fraction)
+            * 2
+            * d.wheel_radius_m
+            * d.wheel_speed_limit_rad_s
             / d.effective_track_m
         )
         half_gap = self._min_gap(d) / 2.0
@@ -332,6 +344,7 @@ class BaseAgent:
         self.waypoints: list[np.ndarray] = []
         self.waypoint_index = 0
         self.stage = "localise"
+        self.goal_pose: np.ndarray | None = None
         self._diag: dict[str, Any] = {}
         self._free_energy = 0.0
 
@@ -342,7 +355,9 @@ class BaseAgent:
             "wheel": np.asarray(obs["wheel_speed_rad_s"], dtype=float).reshape(2),
             "fresh": bool(int(np.asarray(obs.get("camera_fresh", 0)))),
             "visible": np.asarray(obs.get("landmark_visible", np.zeros(L)), dtype=bool).reshape(L),
-            "bearing": np.asarray(obs.get("landmark_bearing_rad", np.zeros(L)), dtype=float).reshape(L),
+            "bearing": np.asarray(
+                obs.get("landmark_bearing_rad", np.zeros(L)), dtype=float
+            ).reshape(L),
             "range": None,
             "gyro": None,
         }
@@ -372,7 +387,9 @@ class BaseAgent:
             )
         ]
         if y["range"] is not None:
-            terms.append(("landmark_range", y["range"][vis] - r, jr, np.full(len(lm), self.range_precision)))
+            terms.append(
+                ("landmark_range", y["range"][vis] - r, jr, np.full(len(lm), self.range_precision))
+            )
         return terms
 
     def _velocity_terms(
@@ -390,11 +407,18 @@ class BaseAgent:
         if y["gyro"] is not None:
             Jg = np.zeros((1, self.n))
             Jg[0, 5] = 1.0
-            terms.append(("gyro", np.array([y["gyro"] - rate[2]]), Jg, np.array([self.gyro_precision])))
+            terms.append(
+                ("gyro", np.array([y["gyro"] - rate[2]]), Jg, np.array([self.gyro_precision]))
+            )
         Jl = np.zeros((1, self.n))
         Jl[0, idx] = self.model.lateral_residual_jacobian(h, rate)
         terms.append(
-            ("lateral_slip", np.array([-self.model.lateral_residual(h, rate)]), Jl, np.array([self.lateral_precision]))
+            (
+                "lateral_slip",
+                np.array([-self.model.lateral_residual(h, rate)]),
+                Jl,
+                np.array([self.lateral_precision]),
+            )
         )
         return terms
 
@@ -455,7 +479,9 @@ class BaseAgent:
         cost = self.bearing_precision * np.sum(wrap_angle(headings - hbar[:, None]) ** 2, axis=1)
         if y["range"] is not None:
             rr = np.hypot(delta[..., 0], delta[..., 1])
-            cost = cost + self.range_precision * np.sum((rr - y["range"][vis][None, :]) ** 2, axis=1)
+            cost = cost + self.range_precision * np.sum(
+                (rr - y["range"][vis][None, :]) ** 2, axis=1
+            )
         best = None
         for k in np.argsort(cost)[:5]:
             pose = np.array(
@@ -490,16 +516,34 @@ class BaseAgent:
         cov[:3, :3] = np.linalg.inv(H + 1e-6 * np.eye(3))
         self.covariance = cov
         self.localised = True
-        dock = d.dock_pose
-        approach = dock[:2] - float(self.options["dock_approach_m"]) * np.array(
-            [np.cos(dock[2]), np.sin(dock[2])]
+        self._plan(d.dock_pose if self.goal_pose is None else self.goal_pose)
+        return True
+
+    def _plan(self, goal_pose: np.ndarray) -> None:
+        """Waypoints from the believed position to a pre-goal point, then the goal pose."""
+        d = self.description
+        goal = np.asarray(goal_pose, dtype=float)
+        approach = goal[:2] - float(self.options["dock_approach_m"]) * np.array(
+            [np.cos(goal[2]), np.sin(goal[2])]
         )
         post_boxes = np.c_[d.landmarks_m - 0.05, d.landmarks_m + 0.05]
         boxes = np.vstack([d.bench_boxes_m, post_boxes])
-        path = plan_waypoints(pose[:2], approach, boxes, self.inflation_m)
-        self.waypoints = [np.r_[p, 0.0] for p in path] + [dock.copy()]
+        path = plan_waypoints(self.mu[0, :2], approach, boxes, self.inflation_m)
+        self.waypoints = [np.r_[p, 0.0] for p in path] + [goal.copy()]
         self.waypoint_index = 0
-        return True
+
+    def set_goal(self, goal_pose: np.ndarray) -> None:
+        """Replace the goal pose ``(x_m, y_m, heading_rad)`` (default: the dock) and replan.
+
+        Planning uses the current belief; before the base has localised the goal is stored
+        and planned for at localisation.
+        """
+        goal = np.asarray(goal_pose, dtype=float).reshape(-1)
+        if goal.shape != (3,) or not np.all(np.isfinite(goal)):
+            raise ConfigError(f"goal_pose must be (x_m, y_m, heading_rad), got {goal_pose!r}")
+        self.goal_pose = goal
+        if self.localised:
+            self._plan(goal)
 
     def perceive(self, obs: dict[str, Any]) -> None:
         """One perception update from an observation (prediction, then curvature-scaled descent)."""
@@ -616,13 +660,13 @@ class BaseAgent:
         episode_start: Any = None,
         deterministic: bool = True,
     ) -> tuple[np.ndarray, Any]:
-        """stable-baselines3-style policy call; resets the belief where ``episode_start`` is true."""
+        """Policy call in stable-baselines3 style; resets the belief where ``episode_start``."""
         if episode_start is not None and bool(np.any(episode_start)):
             self.reset()
         return self.act(obs), state
 
     def diagnostics(self) -> dict[str, Any]:
-        """Internal state for logs: belief, belief_sd, free_energy, prediction errors, precisions."""
+        """Internal state for logs: belief, belief_sd, free_energy, errors and precisions."""
         sd = np.sqrt(np.clip(np.diag(self.covariance), 0.0, None)).reshape(self.order + 1, 3)
         out: dict[str, Any] = {
             "belief": self.mu.copy(),
