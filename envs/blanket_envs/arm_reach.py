@@ -13,6 +13,7 @@ import dataclasses
 import os
 import sys
 import time
+import weakref
 from pathlib import Path
 from typing import Any
 
@@ -65,10 +66,36 @@ def _positive(name: str, value: float) -> float:
     return float(value)
 
 
+def _in_range(name: str, value: float, low: float, high: float, unit: str) -> float:
+    if not (
+        isinstance(value, int | float | np.number)
+        and not isinstance(value, bool)
+        and np.isfinite(value)
+        and low <= value <= high
+    ):
+        raise ConfigError(f"{name}: must be a number in [{low:g}, {high:g}] {unit}, got {value!r}")
+    return float(value)
+
+
 def _non_negative(name: str, value: float) -> float:
     if not (isinstance(value, int | float | np.number) and np.isfinite(value) and value >= 0):
         raise ConfigError(f"{name}: must be a finite number >= 0, got {value!r}")
     return float(value)
+
+
+def _weak_method(method: Any) -> Any:
+    """A callable that holds its object weakly, so an env is freed (and its pybullet client
+    disconnected) as soon as the last outside reference goes, without waiting for the cyclic
+    garbage collector."""
+    ref = weakref.WeakMethod(method)
+
+    def call(*args: Any, **kwargs: Any) -> Any:
+        bound = ref()
+        if bound is None:
+            raise ReferenceError("the env behind this camera is gone")
+        return bound(*args, **kwargs)
+
+    return call
 
 
 class ArmReachEnv(gym.Env):
@@ -197,9 +224,10 @@ class ArmReachEnv(gym.Env):
         ):
             raise ConfigError("render_mode: 'human' needs a display (DISPLAY is not set)")
         self.control = control
-        self.episode_s = _positive("episode_s", episode_s)
+        # Bounds keep a run finite and the physics step meaningful (common practice, no source).
+        self.episode_s = _in_range("episode_s", episode_s, 0.01, 3600.0, "s")
         self.tolerance_m = _positive("tolerance_m", tolerance_m)
-        self.control_hz = _positive("control_hz", control_hz)
+        self.control_hz = _in_range("control_hz", control_hz, 10.0, 2000.0, "Hz")
         camera_hz = _positive("camera_hz", camera_hz)
         if camera_hz > self.control_hz:
             raise ConfigError(
@@ -242,7 +270,7 @@ class ArmReachEnv(gym.Env):
         )
         self._build_scenery()
         self.camera: CameraDescription = self._default_camera(camera_hz, camera_noise_px)
-        self._camera = PointCamera(self.camera, self.control_hz, self._line_of_sight)
+        self._camera = PointCamera(self.camera, self.control_hz, _weak_method(self._line_of_sight))
         self._target_marker = world.add_marker("target", 0.012, self._reach_samples[0])
 
         self.description = ArmDescription(

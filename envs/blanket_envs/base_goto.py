@@ -319,6 +319,10 @@ class BaseGotoEnv(gym.Env):
         if use_gyro is None:
             use_gyro = spec.has_gyro
         control_hz = _check_positive("control_hz", control_hz, "Hz")
+        if control_hz < 1.0:
+            raise ConfigError(
+                f"control_hz must divide {PHYSICS_HZ} Hz and be >= 1, got {control_hz}"
+            )
         substeps = PHYSICS_HZ / control_hz
         if abs(substeps - round(substeps)) > 1e-9:
             raise ConfigError(
@@ -327,6 +331,8 @@ class BaseGotoEnv(gym.Env):
         self.substeps = int(round(substeps))
         self.control_hz = control_hz
         self.episode_s = _check_positive("episode_s", episode_s, "s")
+        if self.episode_s > 3600.0:
+            raise ConfigError(f"episode_s must be in (0, 3600] s, got {episode_s}")
         camera_hz = _check_positive("camera_hz", camera_hz, "Hz")
         if camera_hz > control_hz:
             raise ConfigError(f"camera_hz must be in (0, control_hz={control_hz}], got {camera_hz}")

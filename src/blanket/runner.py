@@ -121,6 +121,7 @@ def run_episode(
         sim_us.append(float(info.get("sim_step_us", math.nan)))
         distance.append(float(info.get("distance_m", math.nan)))
         contact = contact or bool(info.get("contact", False))
+        safe_stop = safe_stop or bool(info.get("safety", {}).get("safe_stop", False))
         if info.get("success") and not ever_success:
             ever_success = True
             tts = info.get("time_to_success_s")
@@ -220,8 +221,8 @@ def run_episodes(
     description: str = "episodes",
 ) -> list[EpisodeResult]:
     """Run ``episodes`` episodes with seeds ``seed, seed + 1, ...``, with a progress bar."""
-    if episodes < 1:
-        raise ConfigError(f"episodes must be >= 1, got {episodes}")
+    if not 1 <= episodes <= 100_000:
+        raise ConfigError(f"episodes must be in 1..100000, got {episodes}")
     bar = None
     if progress:
         from tqdm import tqdm

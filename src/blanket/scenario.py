@@ -32,6 +32,7 @@ from pathlib import Path
 from typing import Any
 
 import gymnasium
+import numpy as np
 
 from blanket.errors import ConfigError
 
@@ -40,6 +41,9 @@ __all__ = ["Scenario", "load_scenario", "load_object", "env_option_names", "make
 _TOP_KEYS = {"name": str, "env": str, "episodes": int, "seed": int}
 _TABLES = ("env_options", "agent", "conditions")
 _PATH_OPTIONS = ("urdf",)
+#: Options whose default is None but whose value, when given, must be a string.
+_STRING_OPTIONS = ("urdf", "end_effector", "targets", "render_mode")
+MAX_EPISODES = 100_000
 
 
 @dataclass
@@ -137,6 +141,12 @@ def _check_env_options(env_id: str, options: Mapping[str, Any], where: str) -> N
                 f"{where}: unknown env option {key!r} for {env_id}; {_suggest(key, list(valid))}"
             )
         default = valid[key]
+        if key in _STRING_OPTIONS and value is not None and not isinstance(value, str):
+            raise ConfigError(
+                f"{where}: env option {key} must be a string, got {type(value).__name__} {value!r}"
+            )
+        if isinstance(value, float) and not np.isfinite(value):
+            raise ConfigError(f"{where}: env option {key} must be finite, got {value!r}")
         if default is None:
             continue
         if isinstance(default, bool):
@@ -201,8 +211,8 @@ def scenario_from_dict(
                 p = (base_dir / p).resolve()
             env_options[key] = str(p)
     _check_env_options(env_id, env_options, where)
-    if "episodes" in data and data["episodes"] < 1:
-        raise ConfigError(f"{where}: episodes must be >= 1, got {data['episodes']}")
+    if "episodes" in data and not 1 <= data["episodes"] <= MAX_EPISODES:
+        raise ConfigError(f"{where}: episodes must be in 1..{MAX_EPISODES}, got {data['episodes']}")
     return Scenario(
         env=env_id,
         env_options=env_options,

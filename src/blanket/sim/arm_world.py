@@ -171,6 +171,7 @@ class ArmWorld:
         self.torque_limit_n_m = np.array([lim.effort for lim in self.joint_limits])
 
         self._mode = "velocity"
+        self._velocity_motor_force = self.torque_limit_n_m.tolist()
         self._payload_kg = 0.0
         self._push_force_n = np.zeros(3)
         self._push_steps_left = 0
@@ -214,6 +215,16 @@ class ArmWorld:
             )
         self._mode = mode
 
+    def set_velocity_motor_force(self, force_n_m: np.ndarray) -> None:
+        """Cap the force velocity motors may use (default: the URDF effort limits)."""
+        force = np.asarray(force_n_m, dtype=float)
+        if force.shape != self.torque_limit_n_m.shape or not np.all(force > 0):
+            raise ConfigError(
+                f"velocity motor force: expected {self.torque_limit_n_m.size} values > 0, "
+                f"got {force!r}"
+            )
+        self._velocity_motor_force = np.minimum(force, self.torque_limit_n_m).tolist()
+
     def send_command(self, mode: str, values: np.ndarray) -> None:
         """Send one motor command to the controlled joints: the only path to the motors.
 
@@ -241,7 +252,7 @@ class ArmWorld:
                 list(self.joint_indices),
                 pybullet.VELOCITY_CONTROL,
                 targetVelocities=values.tolist(),
-                forces=self.torque_limit_n_m.tolist(),
+                forces=self._velocity_motor_force,
             )
         else:
             self.client.setJointMotorControlArray(
