@@ -410,7 +410,15 @@ def write_figure(
     ax1.grid(True, which="both", alpha=0.25)
     ax2.set_ylabel("free energy [nats]")
     ax2.set_xlabel("time [s]")
-    ax2.set_yscale("symlog")
+    # The first steps (belief meets its first sensations) dwarf the rest: frame the bulk.
+    tail = np.concatenate(
+        [r.trace["free_energy"][len(r.trace["free_energy"]) // 20 :] for r in results]
+    )
+    tail = tail[np.isfinite(tail)]
+    if tail.size:
+        lo, hi = np.percentile(tail, [0.5, 99.5])
+        pad = 0.15 * max(hi - lo, 1e-6)
+        ax2.set_ylim(lo - pad, hi + pad)
     ax2.grid(True, alpha=0.25)
     fig.suptitle(title)
     fig.savefig(path, dpi=110)

@@ -1,0 +1,223 @@
+"""``blanket bench`` and ``blanket train-rl``: wired into the main command by blanket.cli."""
+
+from __future__ import annotations
+
+import argparse
+import json
+from pathlib import Path
+from typing import Any
+
+from blanket.errors import ConfigError
+
+__all__ = ["add_bench_parser", "run_bench", "add_train_parser", "run_train"]
+
+
+def _positive_int(text: str) -> int:
+    try:
+        v = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be a whole number >= 1, got {text!r}") from None
+    if v < 1:
+        raise argparse.ArgumentTypeError(f"must be a whole number >= 1, got {text!r}")
+    return v
+
+
+def _seed(text: str) -> int:
+    try:
+        v = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be a whole number >= 0, got {text!r}") from None
+    if v < 0:
+        raise argparse.ArgumentTypeError(f"must be a whole number >= 0, got {text!r}")
+    return v
+
+
+def _positive_float(text: str) -> float:
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be a number > 0, got {text!r}") from None
+    if not v > 0:
+        raise argparse.ArgumentTypeError(f"must be a number > 0, got {text!r}")
+    return v
+
+
+def _names(text: str | None) -> list[str] | None:
+    if text is None:
+        return None
+    names = [t.strip() for t in text.split(",") if t.strip()]
+    return names or None
+
+
+def add_bench_parser(sub: Any) -> argparse.ArgumentParser:
+    """The ``bench`` sub-command."""
+    p = sub.add_parser(
+        "bench",
+        help="benchmark policies (active inference, classical, RL) over perturbed conditions",
+        description="Run every policy over every condition of the reaching task with the same "
+        "seeds (episode i uses seed S + i, so targets and perturbations match across "
+        "policies); write results.json, report.md and charts.",
+    )
+    p.add_argument(
+        "--quick",
+        action="store_true",
+        help="small suite that runs in minutes (2 episodes of 3 s; a tiny RL smoke "
+        "model is trained when stable-baselines3 is installed and --rl-models has none)",
+    )
+    p.add_argument(
+        "--policies",
+        metavar="A,B",
+        help="policies: built-in names (see --list) or import paths 'package.module:Name'",
+    )
+    p.add_argument("--conditions", metavar="C,D", help="conditions (see --list)")
+    p.add_argument(
+        "--episodes",
+        type=_positive_int,
+        metavar="N",
+        help="episodes per policy and condition (default 20, quick 2)",
+    )
+    p.add_argument("--seed", type=_seed, default=0, metavar="S", help="first seed (default 0)")
+    p.add_argument(
+        "--robot",
+        default="iiwa",
+        metavar="NAME",
+        help="iiwa, panda, xarm6 or planar (default iiwa)",
+    )
+    p.add_argument(
+        "--episode-s",
+        type=_positive_float,
+        metavar="T",
+        help="episode length in seconds (default 4, quick 3)",
+    )
+    p.add_argument(
+        "--rl-models", metavar="DIR", help="folder with sac.zip / ppo.zip from 'blanket train-rl'"
+    )
+    p.add_argument(
+        "--out",
+        metavar="DIR",
+        help="output folder (default: a new one under "
+        "./blanket-runs/); a non-empty folder is refused unless --overwrite",
+    )
+    p.add_argument("--overwrite", action="store_true", help="reuse a non-empty --out folder")
+    p.add_argument("--list", action="store_true", help="print built-in policies and conditions")
+    p.add_argument("--quiet", action="store_true", help="no progress lines")
+    return p
+
+
+def run_bench(args: argparse.Namespace) -> int:
+    from blanket.bench.conditions import CONDITIONS
+    from blanket.bench.policies import POLICIES
+    from blanket.bench.suite import BenchSettings, run_benchmark
+
+    if args.list:
+        print("policies:")
+        for name, spec in POLICIES.items():
+            print(f"  {name:<28} {spec.summary}")
+        print("conditions:")
+        for name, cond in CONDITIONS.items():
+            print(f"  {name:<28} {cond.summary}")
+        return 0
+    from blanket.runner import prepare_out_dir
+
+    settings = BenchSettings.from_cli(
+        quick=args.quick,
+        policies=_names(args.policies),
+        conditions=_names(args.conditions),
+        episodes=args.episodes,
+        seed=args.seed,
+        robot=args.robot,
+        episode_s=args.episode_s,
+        rl_models=args.rl_models,
+    )
+    out = prepare_out_dir(args.out, args.overwrite, prefix="bench")
+    summary = run_benchmark(settings, out, progress=not args.quiet)
+    print(f"\n  {len(summary['records'])} records in {summary['wall_s']:.0f} s")
+    print(f"  results: {out / 'results.json'}")
+    print(f"  report:  {out / 'report.md'}")
+    return 0
+
+
+def add_train_parser(sub: Any) -> argparse.ArgumentParser:
+    """The ``train-rl`` sub-command."""
+    p = sub.add_parser(
+        "train-rl",
+        help="train an RL baseline (SAC or PPO, stable-baselines3) on the reaching env",
+        description="Train SAC or PPO on the benchmark's reaching env (same observation, flat "
+        "and normalised); save DIR/<algo>.zip and DIR/<algo>.json (settings, steps, wall time, "
+        "learning curve). Needs the rl extra: pip install torch==2.13.0, then "
+        "stable-baselines3.",
+    )
+    p.add_argument("--algo", required=True, metavar="NAME", help="sac or ppo")
+    p.add_argument(
+        "--steps",
+        type=_positive_int,
+        required=True,
+        metavar="N",
+        help="policy decisions to train (control steps = N x --action-repeat)",
+    )
+    p.add_argument("--out", required=True, metavar="DIR", help="output folder")
+    p.add_argument("--seed", type=_seed, default=0, metavar="S")
+    p.add_argument(
+        "--robot",
+        default="iiwa",
+        metavar="NAME",
+        help="iiwa, panda, xarm6 or planar (default iiwa)",
+    )
+    p.add_argument("--episode-s", type=_positive_float, default=4.0, metavar="T")
+    p.add_argument(
+        "--action-repeat",
+        type=_positive_int,
+        default=8,
+        metavar="K",
+        help="hold each decision for K control steps (default 8: 30 Hz at 240 Hz)",
+    )
+    p.add_argument(
+        "--eval-every",
+        type=_positive_int,
+        default=10_000,
+        metavar="N",
+        help="policy steps between learning-curve evaluations (default 10000)",
+    )
+    p.add_argument("--eval-episodes", type=_positive_int, default=10, metavar="N")
+    p.add_argument("--distance-scale-m", type=_positive_float, default=0.1, metavar="M")
+    p.add_argument("--tolerance-bonus", type=float, default=1.0, metavar="R")
+    p.add_argument("--effort-weight", type=float, default=0.01, metavar="W")
+    p.add_argument(
+        "--hyper",
+        metavar="JSON",
+        default="{}",
+        help="extra SB3 keyword arguments as JSON, e.g. '{\"learning_rate\": 1e-3}'",
+    )
+    p.add_argument("--quiet", action="store_true")
+    return p
+
+
+def run_train(args: argparse.Namespace) -> int:
+    from blanket.bench.rl import TrainSettings, train
+
+    try:
+        hyper = json.loads(args.hyper)
+    except json.JSONDecodeError:
+        raise ConfigError(f"--hyper must be a JSON object, got {args.hyper!r}") from None
+    if not isinstance(hyper, dict):
+        raise ConfigError(f"--hyper must be a JSON object, got {args.hyper!r}")
+    settings = TrainSettings(
+        algo=args.algo,
+        steps=args.steps,
+        seed=args.seed,
+        robot=args.robot,
+        episode_s=args.episode_s,
+        action_repeat=args.action_repeat,
+        eval_every=args.eval_every,
+        eval_episodes=args.eval_episodes,
+        distance_scale_m=args.distance_scale_m,
+        tolerance_bonus=args.tolerance_bonus,
+        effort_weight=args.effort_weight,
+        hyperparameters=hyper,
+    )
+    meta = train(settings, Path(args.out), progress=not args.quiet)
+    print(
+        f"  trained {meta['policy_steps']} policy steps ({meta['control_steps']} control "
+        f"steps) in {meta['wall_time_s']:.0f} s; model {Path(args.out) / meta['model']}"
+    )
+    return 0

@@ -1,0 +1,186 @@
+"""Benchmark metrics: pure functions on an episode's arrays, and their aggregation.
+
+Every per-episode metric takes plain arrays (time along axis 0) so it can be checked by hand;
+:func:`episode_metrics` applies them to an :class:`~blanket.bench.evaluate.EpisodeTrace`.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+import numpy as np
+
+from blanket.errors import ConfigError
+
+__all__ = [
+    "HOLD_S",
+    "SUCCESS_TOLERANCES_M",
+    "time_to_success",
+    "path_length_ratio",
+    "joint_jerk_rms",
+    "control_effort",
+    "belief_rmse",
+    "bootstrap_interval",
+    "episode_metrics",
+    "aggregate",
+]
+
+#: Success needs the tip inside the tolerance ball for this long (s), as the env's own test.
+HOLD_S = 0.25
+#: Success radii reported by the benchmark (m).
+SUCCESS_TOLERANCES_M = (0.01, 0.05)
+
+
+def time_to_success(
+    distance_m: np.ndarray, dt: float, tolerance_m: float, hold_s: float = HOLD_S
+) -> float | None:
+    """Time the tip entered the tolerance ball for the first stay of at least ``hold_s``.
+
+    ``distance_m[k]`` is the distance after control step ``k + 1`` (time ``(k + 1) dt``). A stay
+    counts once the tip has been inside for ``round(hold_s / dt)`` further steps (the env's rule:
+    entered at step ``s``, held at step ``s + hold``). Returns None when never reached.
+    """
+    d = np.asarray(distance_m, dtype=float)
+    if dt <= 0 or tolerance_m <= 0:
+        raise ConfigError(f"dt and tolerance_m must be > 0, got {dt}, {tolerance_m}")
+    hold = max(1, int(round(hold_s / dt)))
+    inside = d <= tolerance_m
+    run = 0
+    for k, ok in enumerate(inside):
+        run = run + 1 if ok else 0
+        if run == hold + 1:
+            return (k - hold + 1) * dt
+    return None
+
+
+def path_length_ratio(tip_m: np.ndarray, target_m: np.ndarray) -> float:
+    """Length of the tip's path over the straight-line distance from its start to the target.
+
+    ``tip_m`` is (T, 3) tip positions starting at the initial tip; ``target_m`` the (3,) target
+    at the start. 1 for a straight reach that stops on the target; larger for detours, overshoot
+    and jitter. NaN when the tip starts on the target.
+    """
+    tip = np.asarray(tip_m, dtype=float)
+    if tip.ndim != 2 or tip.shape[0] < 2:
+        raise ConfigError(f"tip_m: expected (T >= 2, 3) positions, got shape {tip.shape}")
+    length = float(np.sum(np.linalg.norm(np.diff(tip, axis=0), axis=1)))
+    straight = float(np.linalg.norm(np.asarray(target_m, dtype=float) - tip[0]))
+    return length / straight if straight > 1e-9 else math.nan
+
+
+def joint_jerk_rms(q: np.ndarray, dt: float) -> float:
+    """RMS joint jerk: the third difference of the joint angles over ``dt^3``, over all joints.
+
+    The third backward difference ``q[k] - 3 q[k-1] + 3 q[k-2] - q[k-3]`` approximates
+    ``dt^3 q'''`` (exact for cubics; Abramowitz & Stegun 1964, eq. 25.1.2 with n = 3).
+    """
+    q = np.asarray(q, dtype=float)
+    if q.ndim == 1:
+        q = q[:, None]
+    if q.shape[0] < 4:
+        return math.nan
+    jerk = np.diff(q, n=3, axis=0) / dt**3
+    return float(np.sqrt(np.mean(jerk**2)))
+
+
+def control_effort(actions: np.ndarray) -> float:
+    """Mean squared command over steps and joints (rad^2/s^2 or N^2 m^2)."""
+    a = np.asarray(actions, dtype=float)
+    return float(np.mean(a**2)) if a.size else math.nan
+
+
+def belief_rmse(belief_q: np.ndarray, true_q: np.ndarray) -> float:
+    """Root-mean-square error of believed joint angles against the true ones (rad)."""
+    b = np.asarray(belief_q, dtype=float)
+    t = np.asarray(true_q, dtype=float)
+    if b.shape != t.shape:
+        raise ConfigError(f"belief and truth shapes differ: {b.shape} vs {t.shape}")
+    ok = np.all(np.isfinite(b), axis=tuple(range(1, b.ndim))) if b.ndim > 1 else np.isfinite(b)
+    if not np.any(ok):
+        return math.nan
+    return float(np.sqrt(np.mean((b[ok] - t[ok]) ** 2)))
+
+
+def bootstrap_interval(
+    values: Sequence[float] | np.ndarray,
+    level: float = 0.95,
+    resamples: int = 4000,
+    seed: int = 0,
+) -> tuple[float, float]:
+    """Percentile bootstrap interval of the mean (Efron & Tibshirani 1993, *An Introduction to
+    the Bootstrap*, ch. 13, eq. 13.5): the ``(1-level)/2`` and ``(1+level)/2`` quantiles of the
+    means of ``resamples`` resamples drawn with replacement, from a generator seeded ``seed``.
+    """
+    x = np.asarray(values, dtype=float)
+    x = x[np.isfinite(x)]
+    if not 0.0 < level < 1.0:
+        raise ConfigError(f"level must be in (0, 1), got {level}")
+    if resamples < 1:
+        raise ConfigError(f"resamples must be >= 1, got {resamples}")
+    if x.size == 0:
+        return (math.nan, math.nan)
+    rng = np.random.default_rng(seed)
+    idx = rng.integers(0, x.size, size=(resamples, x.size))
+    means = x[idx].mean(axis=1)
+    alpha = 1.0 - level
+    lo, hi = np.quantile(means, [alpha / 2.0, 1.0 - alpha / 2.0])
+    return float(lo), float(hi)
+
+
+def episode_metrics(trace: Any) -> dict[str, Any]:
+    """Every per-episode metric of an :class:`~blanket.bench.evaluate.EpisodeTrace`."""
+    dt = trace.dt
+    out: dict[str, Any] = {"seed": trace.seed}
+    for tol in SUCCESS_TOLERANCES_M:
+        tag = f"{round(tol * 100)}cm"
+        t = time_to_success(trace.distance_m, dt, tol)
+        out[f"success_{tag}"] = t is not None
+        out[f"time_to_success_{tag}_s"] = t
+    out["final_error_m"] = float(trace.distance_m[-1])
+    tip = np.vstack([trace.tip_start_m[None, :], trace.tip_m])
+    out["path_length_ratio"] = path_length_ratio(tip, trace.target_start_m)
+    q = np.vstack([trace.q_start_rad[None, :], trace.q_rad])
+    out["joint_jerk_rad_s3"] = joint_jerk_rms(q, dt)
+    out["control_effort"] = control_effort(trace.action)
+    out["belief_rmse_rad"] = (
+        belief_rmse(trace.belief_q_rad, trace.q_seen_rad)
+        if trace.belief_q_rad is not None
+        else None
+    )
+    out["policy_step_us"] = float(np.median(trace.policy_us)) if len(trace.policy_us) else None
+    out["target_start_m"] = [float(v) for v in trace.target_start_m]
+    out["perturbation_digest"] = trace.perturbation_digest
+    out["contact"] = bool(trace.contact)
+    return out
+
+
+def _median(values: list[Any]) -> float | None:
+    v = [float(x) for x in values if x is not None and np.isfinite(x)]
+    return float(np.median(v)) if v else None
+
+
+def aggregate(rows: Sequence[Mapping[str, Any]], seed: int = 0) -> dict[str, Any]:
+    """Rates with 95 % percentile-bootstrap intervals, medians of the rest, over episodes."""
+    out: dict[str, Any] = {"episodes": len(rows)}
+    for tol in SUCCESS_TOLERANCES_M:
+        tag = f"{round(tol * 100)}cm"
+        hits = [float(r[f"success_{tag}"]) for r in rows]
+        out[f"success_{tag}"] = float(np.mean(hits)) if hits else math.nan
+        out[f"success_{tag}_ci95"] = list(bootstrap_interval(hits, seed=seed))
+        out[f"time_to_success_{tag}_s"] = _median(
+            [r[f"time_to_success_{tag}_s"] for r in rows if r[f"success_{tag}"]]
+        )
+    for key in (
+        "final_error_m",
+        "path_length_ratio",
+        "joint_jerk_rad_s3",
+        "belief_rmse_rad",
+        "policy_step_us",
+    ):
+        out[key] = _median([r[key] for r in rows])
+    out["final_error_m_mean"] = float(np.mean([r["final_error_m"] for r in rows]))
+    out["control_effort"] = float(np.mean([r["control_effort"] for r in rows]))
+    out["contact_rate"] = float(np.mean([r["contact"] for r in rows]))
+    return out

@@ -1,0 +1,321 @@
+"""Benchmark report: Markdown tables and PNG charts from the records of a run."""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+__all__ = [
+    "write_report",
+    "markdown_report",
+    "plot_success",
+    "plot_final_error",
+    "plot_learning_curves",
+]
+
+_INK = "#2b2b2b"
+_GRID = "#d9d9d9"
+# Our own palette: muted greens and earth tones of the potting bench.
+_COLOURS = ["#3f7f5f", "#b5651d", "#4f6d8f", "#8f4f6d", "#7f7f3f", "#5f9f9f", "#a0522d", "#6b8e23"]
+
+
+def _order(records: Sequence[Mapping[str, Any]], key: str) -> list[str]:
+    seen: list[str] = []
+    for r in records:
+        if r[key] not in seen:
+            seen.append(r[key])
+    return seen
+
+
+def _pct(v: Any) -> str:
+    return "-" if v is None or not np.isfinite(v) else f"{100 * v:.0f}"
+
+
+def _rate(r: Mapping[str, Any], tag: str) -> str:
+    lo, hi = r[f"success_{tag}_ci95"]
+    return f"{_pct(r[f'success_{tag}'])} [{_pct(lo)}, {_pct(hi)}]"
+
+
+def _num(v: Any, scale: float = 1.0, digits: int = 2) -> str:
+    if v is None or (isinstance(v, float) and not np.isfinite(v)):
+        return "-"
+    return f"{v * scale:.{digits}f}"
+
+
+def _grid(records, value) -> list[str]:
+    policies = _order(records, "policy")
+    conditions = _order(records, "condition")
+    index = {(r["policy"], r["condition"]): r for r in records}
+    lines = [
+        "| policy | " + " | ".join(conditions) + " |",
+        "| --- | " + " | ".join("---" for _ in conditions) + " |",
+    ]
+    for p in policies:
+        cells = [value(index[(p, c)]) if (p, c) in index else "" for c in conditions]
+        lines.append(f"| {p} | " + " | ".join(cells) + " |")
+    return lines
+
+
+def markdown_report(
+    records: Sequence[Mapping[str, Any]],
+    settings: Mapping[str, Any] | None = None,
+    rl_meta: Mapping[str, Any] | None = None,
+    wall_s: float | None = None,
+) -> str:
+    """The text of ``report.md``."""
+    s = dict(settings or {})
+    lines = ["# Reaching benchmark", ""]
+    if s:
+        lines.append(
+            f"Robot **{s.get('robot')}**, {s.get('episodes')} episodes of {s.get('episode_s')} s "
+            f"per policy and condition, seeds {s.get('seed')}.."
+            f"{s.get('seed', 0) + s.get('episodes', 1) - 1}"
+            " (every policy meets the same targets and perturbations)."
+            + (f" Wall time {wall_s:.0f} s." if wall_s is not None else "")
+        )
+        lines.append("")
+    lines += [
+        "Success: the tool tip entered the ball and stayed 0.25 s. Intervals: 95 % percentile "
+        "bootstrap of the rate (Efron & Tibshirani 1993, An Introduction to the Bootstrap).",
+        "",
+        "## Reached within 1 cm, % [95 % interval]",
+        "",
+        *_grid(records, lambda r: _rate(r, "1cm")),
+        "",
+        "## Reached within 5 cm, % [95 % interval]",
+        "",
+        *_grid(records, lambda r: _rate(r, "5cm")),
+        "",
+        "## Final distance to target, median, cm",
+        "",
+        *_grid(records, lambda r: _num(r["final_error_m"], 100.0)),
+        "",
+        "## All measures",
+        "",
+        "| policy | condition | control | time to 1 cm, s | time to 5 cm, s | path ratio | "
+        "joint jerk, rad/s^3 | effort | belief RMSE, mrad | step, us | note |",
+        "| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |",
+    ]
+    for r in records:
+        unit = "rad²/s²" if r["control"] == "velocity" else "N²m²"
+        lines.append(
+            f"| {r['policy']} | {r['condition']} | {r['control']} | "
+            f"{_num(r['time_to_success_1cm_s'])} | {_num(r['time_to_success_5cm_s'])} | "
+            f"{_num(r['path_length_ratio'])} | {_num(r['joint_jerk_rad_s3'], digits=0)} | "
+            f"{_num(r['control_effort'], digits=3)} {unit} | "
+            f"{_num(r['belief_rmse_rad'], 1000.0, 2)} | {_num(r['policy_step_us'], digits=0)} | "
+            f"{r.get('note', '')} |"
+        )
+    lines += [
+        "",
+        "Medians over episodes except effort (mean squared command) and rates. Path ratio: tip "
+        "path length over the straight line from the start to the target. Belief RMSE: the "
+        "policy's believed joint angles against the true ones (policies that report a belief).",
+    ]
+    if rl_meta:
+        lines += [
+            "",
+            "## RL training",
+            "",
+            "| algo | policy steps | control steps | wall time, s | finished | settings |",
+            "| --- | --- | --- | --- | --- | --- |",
+        ]
+        for algo, meta in rl_meta.items():
+            st = meta.get("settings", {})
+            shown = {
+                k: st.get(k)
+                for k in (
+                    "action_repeat",
+                    "distance_scale_m",
+                    "tolerance_bonus",
+                    "effort_weight",
+                    "seed",
+                )
+            }
+            shown.update(meta.get("sb3_hyperparameters", {}))
+            lines.append(
+                f"| {algo} | {meta.get('policy_steps')} | {meta.get('control_steps')} | "
+                f"{_num(meta.get('wall_time_s'), digits=0)} | {meta.get('finished')} | "
+                f"{', '.join(f'{k}={v}' for k, v in shown.items())} |"
+            )
+        lines += [
+            "",
+            "Learning curves (eval seeds disjoint from the benchmark's):",
+            "",
+            "| algo | policy steps | reached 1 cm, % | reached 5 cm, % | final error, cm |",
+            "| --- | --- | --- | --- | --- |",
+        ]
+        for algo, meta in rl_meta.items():
+            for row in meta.get("learning_curve", []):
+                lines.append(
+                    f"| {algo} | {row['policy_steps']} | {_pct(row['success_1cm'])} | "
+                    f"{_pct(row['success_5cm'])} | {_num(row['final_error_m'], 100)} |"
+                )
+    return "\n".join(lines) + "\n"
+
+
+def _style(ax) -> None:
+    for side in ("top", "right"):
+        ax.spines[side].set_visible(False)
+    for side in ("left", "bottom"):
+        ax.spines[side].set_color(_INK)
+    ax.tick_params(colors=_INK, labelsize=8)
+    ax.grid(True, axis="x", color=_GRID, lw=0.6)
+    ax.set_axisbelow(True)
+
+
+def plot_success(records: Sequence[Mapping[str, Any]], path: Path, tag: str = "5cm") -> Path:
+    """Horizontal bars of the success rate per condition and policy, with 95 % intervals."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    policies = _order(records, "policy")
+    conditions = _order(records, "condition")
+    index = {(r["policy"], r["condition"]): r for r in records}
+    height = 0.8 / max(1, len(policies))
+    fig, ax = plt.subplots(
+        figsize=(7.5, 0.5 + 0.42 * len(conditions) * max(1, len(policies)) ** 0.5),
+        constrained_layout=True,
+    )
+    for j, p in enumerate(policies):
+        ys, xs, lo, hi = [], [], [], []
+        for i, c in enumerate(conditions):
+            r = index.get((p, c))
+            if r is None:
+                continue
+            ys.append(i + (j - (len(policies) - 1) / 2) * height)
+            xs.append(100 * r[f"success_{tag}"])
+            ci = r[f"success_{tag}_ci95"]
+            lo.append(100 * (r[f"success_{tag}"] - ci[0]))
+            hi.append(100 * (ci[1] - r[f"success_{tag}"]))
+        ax.barh(
+            ys,
+            xs,
+            height=height * 0.9,
+            color=_COLOURS[j % len(_COLOURS)],
+            label=p,
+            xerr=[lo, hi],
+            error_kw={"ecolor": _INK, "elinewidth": 0.7, "capsize": 1.5},
+        )
+    ax.set_yticks(range(len(conditions)), conditions)
+    ax.invert_yaxis()
+    ax.set_xlim(0, 105)
+    ax.set_xlabel(f"reached within {tag[:-2]} cm and held 0.25 s  [% of episodes]", color=_INK)
+    _style(ax)
+    ax.legend(frameon=False, fontsize=7, loc="lower left", bbox_to_anchor=(1.0, 0.0))
+    fig.savefig(path, dpi=120)
+    plt.close(fig)
+    return path
+
+
+def plot_final_error(records: Sequence[Mapping[str, Any]], path: Path) -> Path:
+    """Per-episode final distances (dots) and medians (ticks), per condition and policy."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    policies = _order(records, "policy")
+    conditions = _order(records, "condition")
+    index = {(r["policy"], r["condition"]): r for r in records}
+    fig, ax = plt.subplots(figsize=(7.5, 0.6 + 0.45 * len(conditions)), constrained_layout=True)
+    step = 0.8 / max(1, len(policies))
+    for j, p in enumerate(policies):
+        colour = _COLOURS[j % len(_COLOURS)]
+        for i, c in enumerate(conditions):
+            r = index.get((p, c))
+            if r is None:
+                continue
+            y = i + (j - (len(policies) - 1) / 2) * step
+            errs = np.array([e["final_error_m"] for e in r["per_episode"]]) * 100
+            errs = np.maximum(errs, 1e-3)
+            ax.plot(
+                errs,
+                np.full(errs.size, y),
+                "o",
+                ms=2.5,
+                color=colour,
+                alpha=0.6,
+                label=p if i == 0 else None,
+            )
+            ax.plot([np.median(errs)] * 2, [y - step * 0.45, y + step * 0.45], color=colour, lw=2)
+    ax.axvline(1.0, color=_INK, lw=0.7, ls=":")
+    ax.axvline(5.0, color=_INK, lw=0.7, ls=":")
+    ax.set_xscale("log")
+    ax.set_yticks(range(len(conditions)), conditions)
+    ax.invert_yaxis()
+    ax.set_xlabel("final distance to target [cm]  (dotted: 1 and 5 cm)", color=_INK)
+    _style(ax)
+    ax.legend(frameon=False, fontsize=7, loc="lower left", bbox_to_anchor=(1.0, 0.0))
+    fig.savefig(path, dpi=120)
+    plt.close(fig)
+    return path
+
+
+def plot_learning_curves(rl_meta: Mapping[str, Any], path: Path) -> Path | None:
+    """Eval success vs training steps of each RL baseline."""
+    curves = {a: m.get("learning_curve", []) for a, m in rl_meta.items()}
+    if not any(curves.values()):
+        return None
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    fig, ax = plt.subplots(figsize=(6.5, 3.2), constrained_layout=True)
+    for j, (algo, rows) in enumerate(curves.items()):
+        if not rows:
+            continue
+        steps = np.array([r["control_steps"] for r in rows])
+        colour = _COLOURS[j % len(_COLOURS)]
+        ax.plot(
+            steps,
+            [100 * r["success_5cm"] for r in rows],
+            "-o",
+            ms=3,
+            color=colour,
+            label=f"{algo}, 5 cm",
+        )
+        ax.plot(
+            steps,
+            [100 * r["success_1cm"] for r in rows],
+            "--s",
+            ms=3,
+            color=colour,
+            label=f"{algo}, 1 cm",
+        )
+    ax.set_xlabel("training control steps", color=_INK)
+    ax.set_ylabel("eval episodes reached [%]", color=_INK)
+    ax.set_ylim(-3, 103)
+    _style(ax)
+    ax.grid(True, axis="y", color=_GRID, lw=0.6)
+    ax.legend(frameon=False, fontsize=7)
+    fig.savefig(path, dpi=120)
+    plt.close(fig)
+    return path
+
+
+def write_report(
+    records: Sequence[Mapping[str, Any]],
+    out_dir: Path,
+    settings: Mapping[str, Any] | None = None,
+    rl_meta: Mapping[str, Any] | None = None,
+    wall_s: float | None = None,
+) -> list[Path]:
+    """Write ``report.md`` and the charts; return the paths written."""
+    out = Path(out_dir)
+    paths = [out / "report.md"]
+    paths[0].write_text(markdown_report(records, settings, rl_meta, wall_s))
+    paths.append(plot_success(records, out / "success_5cm.png", "5cm"))
+    paths.append(plot_success(records, out / "success_1cm.png", "1cm"))
+    paths.append(plot_final_error(records, out / "final_error.png"))
+    if rl_meta:
+        p = plot_learning_curves(rl_meta, out / "rl_learning_curves.png")
+        if p is not None:
+            paths.append(p)
+    return paths
