@@ -88,6 +88,7 @@ def perception_step(  # pragma: no cover - compiled
     intrinsics,
     pc,
     target,
+    target_velocity,
     home,
     attractor_params,
     lower,
@@ -201,7 +202,7 @@ def perception_step(  # pragma: no cover - compiled
     vel = np.empty(3)
     speed2 = 0.0
     for r in range(3):
-        vel[r] = k * (target[r] - tip[r])
+        vel[r] = k * (target[r] - tip[r]) + target_velocity[r]
         speed2 += vel[r] * vel[r]
     scale = 1.0
     speed = np.sqrt(speed2)

@@ -61,6 +61,7 @@ from scipy.stats import chi2
 
 from blanket.description import ArmDescription
 from blanket.errors import ConfigError
+from blanket.gcoords import embedding_matrix
 from blanket.model import BodyState, ModelTerm
 
 try:  # the compiled perception kernel; the numpy path computes the same step
@@ -71,6 +72,8 @@ except ImportError:  # pragma: no cover - numba missing
 __all__ = ["ArmAgent", "AgentOptions", "joint_limit_weights", "torque_action_free_energy"]
 
 _GOALS = ("prior", "reference")
+#: Samples a channel averages before its learned precision is applied.
+_LEARNING_BURN_IN = 20
 _INTEGRATIONS = ("ozaki", "euler")
 
 
@@ -90,6 +93,9 @@ class AgentOptions:
         "damping_m": 0.02,
         "posture_gain_1_s": 0.5,
         "joint_limit_weighting": False,
+        "track_target_motion": True,
+        "disturbance_time_constant_s": 0.1,
+        "target_window_s": 0.05,
         "velocity_gain_1_s": 25.0,
         "joint_angle_precision": None,
         "joint_velocity_precision": None,
@@ -99,7 +105,7 @@ class AgentOptions:
         "jerk_intensity": 50.0,
         "action_fraction": 1.0,
         "learn_precision": False,
-        "precision_learning_rate": 0.5,
+        "precision_learning_rate": 0.2,
         "fault_detection": False,
         "fault_window_s": 0.1,
         "fault_false_alarm": 1e-7,
@@ -136,12 +142,19 @@ class AgentOptions:
             "length_scale",
             "mass_scale",
             "fault_window_s",
+            "target_window_s",
             "divergence_limit",
         ):
             v = out[key]
             if not isinstance(v, int | float) or not np.isfinite(v) or v <= 0:
                 raise ConfigError(f"agent option {key} must be a number > 0, got {v!r}")
-        for key in ("damping_m", "posture_gain_1_s", "payload_kg", "precision_learning_rate"):
+        for key in (
+            "damping_m",
+            "posture_gain_1_s",
+            "payload_kg",
+            "precision_learning_rate",
+            "disturbance_time_constant_s",
+        ):
             v = out[key]
             if not isinstance(v, int | float) or not np.isfinite(v) or v < 0:
                 raise ConfigError(f"agent option {key} must be a number >= 0, got {v!r}")
@@ -335,6 +348,12 @@ class ArmAgent:
         self._lazy_errors = False
         self._safe_stop_reason = ""
         self._last_finite_q = np.zeros(self.n)
+        self._disturbance = np.zeros(self.n)
+        self._last_velocity_belief: np.ndarray | None = None
+        self._target_history: list[np.ndarray] = []
+        self._target_velocity = np.zeros(3)
+        self._target_embed: np.ndarray | None = None
+        self._target_window = max(2, int(round(self.options["target_window_s"] / self.dt)))
         self._reset_channel_statistics()
 
     def _initialise(self, obs: Mapping[str, Any]) -> None:
@@ -361,16 +380,17 @@ class ArmAgent:
     ) -> tuple[np.ndarray, np.ndarray]:
         """Joint velocity the goal asks for, and its Jacobian with respect to ``q``.
 
-        ``f(q) = J+ k sat(x* - x) + k_null (I - J+ J)(q_home - q)`` with the weighted damped
+        ``f(q) = J+ sat(k (x* - x) + x*') + k_null (I - J+ J)(q_home - q)`` with the weighted damped
         least-squares inverse ``J+ = W^-1 J' inv(J W^-1 J' + lambda^2 I)`` (Wampler 1986, IEEE
         Trans SMC 16(1), eq. 7; the weights of :func:`joint_limit_weights`, after Chan & Dubey
-        1995). The Jacobian ignores the derivatives of ``J`` and ``W`` (Gauss-Newton).
+        1995). ``x*'`` is the believed target velocity (:meth:`_track_target`). The Jacobian
+        ignores the derivatives of ``J`` and ``W`` (Gauss-Newton).
         """
         opts = self.options
         J = body.tip_jacobian
         err = target - body.tip_position_m
         k = opts["attractor_gain_1_s"]
-        vel = k * err
+        vel = k * err + self._target_velocity
         speed = float(np.sqrt(vel @ vel))
         vmax = opts["max_tip_speed_m_s"]
         scale = vmax / speed if speed > vmax else 1.0
@@ -397,11 +417,38 @@ class ArmAgent:
         """Update the belief from ``obs`` and return the next command."""
         if self._belief is None:
             self._initialise(obs)
+        self._track_target(obs["target_position_m"])
         try:
             action = self._step_compiled(obs) if self._compiled else self._step_numpy(obs)
         except (np.linalg.LinAlgError, FloatingPointError, ValueError) as exc:
             return self._safe_stop(f"numerical failure: {exc}")
         return action
+
+    def _track_target(self, position: Any) -> None:
+        """Believed target velocity: generalized coordinates (order 1) of its recent track.
+
+        The last ``target_window_s`` of target positions are fitted by the Taylor embedding of
+        :func:`blanket.gcoords.embedding_matrix` (least squares, causal); a jump of more than
+        5 cm in one step (a new target) restarts the track. A target carried on a conveyor is
+        then followed without the steady lag ``speed / attractor_gain`` of a pure position
+        attractor.
+        """
+        if not self.options["track_target_motion"]:
+            return
+        x = np.asarray(position, dtype=float)
+        hist = self._target_history
+        if hist and float(np.abs(x - hist[-1]).max()) > 0.05:
+            hist.clear()
+        hist.append(x.copy())
+        if len(hist) > self._target_window:
+            del hist[0]
+        m = len(hist)
+        if m < 2:
+            self._target_velocity = np.zeros(3)
+            return
+        if self._target_embed is None or self._target_embed.shape[1] != m:
+            self._target_embed = embedding_matrix(1, m, self.dt)
+        self._target_velocity = self._target_embed[1] @ np.asarray(hist)
 
     def predict(
         self,
@@ -703,6 +750,7 @@ class ArmAgent:
             self._cam_k,
             pc,
             np.asarray(obs["target_position_m"], dtype=float),
+            self._target_velocity,
             self._home,
             self._attractor_params,
             self._limit_low,
@@ -786,6 +834,19 @@ class ArmAgent:
         """A channel's precision, down-weighted where it is flagged faulty."""
         P = self.precision[name]
         if self.options["fault_detection"]:
+            if name == "joint_angle" and self._pending_inflation is not None:
+                # Covariance inflation when an angle is flagged: the belief followed the bad
+                # reading for the detection delay (about 3 windows) at the believed speed, so
+                # its variance grows by that drift squared and the other channels can correct
+                # it (common practice, no source). Only with goal="reference": under a goal
+                # prior the freed variance lets the goal, not the camera, take the joint.
+                j = self._pending_inflation
+                self._pending_inflation = None
+                n = self.n
+                v = self._belief[n : 2 * n] if self._belief is not None else np.zeros(n)
+                drift = np.abs(v[j]) * 3.0 * float(self.options["fault_window_s"])
+                drift = drift + 1.0 / np.sqrt(P[j])
+                self._cov[j, j] += drift * drift
             flags = self._fault[name]
             if flags.any():
                 return np.where(flags if name != "camera" else flags.repeat(2), P * 1e-6, P)
@@ -809,7 +870,23 @@ class ArmAgent:
             qdd = z[2 * n : 3 * n]
         else:
             qdd = self.options["velocity_gain_1_s"] * (f - v)
-        tau = self.body.nonlinear_effects(q, v) + self.body.mass_matrix(q) @ qdd
+        h = self.body.nonlinear_effects(q, v)
+        M = self.body.mass_matrix(q)
+        tau = h + M @ qdd
+        td = self.options["disturbance_time_constant_s"]
+        if td > 0:
+            # Hidden cause: an unmodelled joint torque d (payload, contact, friction), believed
+            # slowly varying. Its prediction error is the gap between the acceleration the
+            # velocity belief went through and the forward model's under the last torque,
+            # M q'' - (tau_prev - h) (a disturbance observer, Ohnishi, Shibata & Murakami
+            # 1996, IEEE/ASME Trans Mech 1(1)).
+            if self._last_velocity_belief is not None:
+                beta = min(1.0, self.dt / td)
+                qdd_seen = (v - self._last_velocity_belief) / self.dt
+                seen = M @ qdd_seen - (self._action - h)
+                self._disturbance += beta * (seen - self._disturbance)
+            self._last_velocity_belief = v.copy()
+            tau = tau - self._disturbance
         a = self._action + frac * (tau - self._action)
         return np.clip(a, -d.torque_limit_n_m, d.torque_limit_n_m)
 
@@ -835,69 +912,97 @@ class ArmAgent:
         # their squares over w samples has variance 3/w, not 2/w, so it counts as 2w/3
         # independent chi-square(1) samples (common practice, no source).
         w_eff = max(1.0, 2.0 / self._fault_alpha - 1.0) * 2.0 / 3.0
-        self._flatline_threshold = (
-            chi2.ppf(float(self.options["fault_false_alarm"]), w_eff) / w_eff
-        )
+        pfa = float(self.options["fault_false_alarm"])
+        self._flatline_threshold = chi2.ppf(pfa, w_eff) / w_eff
+        self._increment_threshold = chi2.ppf(1.0 - pfa, w_eff) / w_eff
         self._noise_variance = {
             k: 1.0 / v for k, v in self._initial_precision.items() if np.all(v > 0)
         }
         self._noise_samples = dict.fromkeys(self._noise_variance, 0)
+        self._last_angle_reading: np.ndarray | None = None
+        self._pending_inflation: np.ndarray | None = None
 
     def _detect_faults(self, errors, cov_prior, g_cam) -> None:
         """Two-sided tests per channel (per joint for the encoders); flags in ``self._fault``.
 
-        * Too much error: the normalized innovation ``nu^2 / S`` (``S = G Sigma- G' +
-          inv(P)``, ``P`` the channel's nominal or learned precision, never the down-weighted
-          one) is averaged over an exponential window of ``fault_window_s``; under no fault
-          the average is ~ ``chi2(w m) / (w m)`` for ``w`` effective samples of ``m``
-          components, and a channel above its ``1 - fault_false_alarm`` quantile is flagged
-          (the innovation test, Bar-Shalom, Li & Kirubarajan 2001, *Estimation with
-          Applications to Tracking and Navigation*, sec. 5.4.2). The flag clears below half
-          the threshold.
-        * Too little noise (encoders): a stuck reading stops carrying its noise. The squared
-          increment of the reading, ``(y_k - y_(k-1))^2 P / 2``, has mean >= 1 under white
-          noise of precision ``P`` (motion only adds to it), so its windowed mean below the
-          lower ``fault_false_alarm`` quantile of the chi-square region (the two-sided
-          acceptance region of the same section) flags the joint; the flag clears above twice
-          the threshold.
+        Each test averages a normalized squared residual ``x`` over an exponential window of
+        ``fault_window_s`` (``w`` effective samples); under no fault the average is close to
+        ``chi2(w m) / (w m)`` for ``m`` components, and the two-sided acceptance region of
+        the innovation test at ``fault_false_alarm`` (Bar-Shalom, Li & Kirubarajan 2001,
+        *Estimation with Applications to Tracking and Navigation*, sec. 5.4.2) bounds it.
+        Each sample is capped at 16 (4 standard deviations) so that one outlier, such as a
+        motor that lags a jump of command for a step, cannot raise a flag alone.
 
+        * Too much error. Under velocity control the encoders are tested against the
+          efference copy ``a``, which the motors track far closer than the encoder noise, so
+          the test does not depend on the belief (a goal prior biases the belief by design,
+          and a down-weighted channel would otherwise never look healthy again): angles on
+          ``r = y_k - y_(k-1) - dt a`` (variance ``2 / P``; MA(1), so ``w`` shrinks by 2/3),
+          velocities on ``r = y - a`` (variance ``1 / P``). Otherwise, and for the camera,
+          on the innovation, ``x = nu^2 / S``, ``S = G Sigma- G' + inv(P)``. The flag clears
+          below half the threshold. The camera is not flagged while an encoder angle is (the
+          belief it is tested against is then the suspect).
+        * Too little noise (encoders): a stuck reading stops carrying its noise. The squared
+          increment ``(y_k - y_(k-1))^2 P / 2`` has mean >= 1 under white noise of
+          precision ``P`` (motion only adds to it); below the lower quantile the joint is
+          flagged, and the flag clears above twice that quantile.
+
+        ``P`` is the channel's nominal (or learned) precision, never the down-weighted one.
         A flagged channel's precision is cut to 1e-6 of its value (:meth:`_effective_precision`)
         and returns when the tests pass again.
         """
         alpha = self._fault_alpha
-        predicted = None
+        motor = errors.get("motor")
+        p1 = self.order + 1
+        predicted = self._phi_t[:2] @ self._belief.reshape(p1, self.n)
+        command = None if motor is None else motor + predicted[1]
         for name in ("joint_angle", "joint_velocity", "camera"):
             if name not in errors:
                 continue
             e = errors[name]
             P = self.precision[name]
-            S = self._innovation_variance(name, cov_prior, g_cam) + 1.0 / P
-            stat = e * e / S
-            if name == "camera":
-                stat = np.array([stat.mean()])
-            m = self._fault_stat[name]
-            m += alpha * (stat - m)
             thr = self._fault_threshold[name]
-            high = self._fault_high[name]
-            high[:] = np.where(high, m > 0.5 * thr, m > thr)
+            low = None
             if name == "camera":
-                self._fault[name] = high.copy()
-                continue
-            # The raw reading is the error plus the prediction it was measured against.
-            if predicted is None:
-                p1 = self.order + 1
-                predicted = self._phi_t[:2] @ self._belief.reshape(p1, self.n)
-            reading = e + predicted[0 if name == "joint_angle" else 1]
-            last = self._last_reading.get(name)
-            self._last_reading[name] = reading
-            low = self._fault_low[name]
-            if last is not None:
+                S = self._innovation_variance(name, cov_prior, g_cam) + 1.0 / P
+                stat = np.array([np.minimum(e * e / S, 16.0).mean()])
+            else:
+                # The raw reading is the error plus the prediction it was measured against.
+                reading = e + predicted[0 if name == "joint_angle" else 1]
+                last = self._last_reading.get(name)
+                self._last_reading[name] = reading
+                if last is None:
+                    continue
                 d = reading - last
+                if command is None:
+                    S = self._innovation_variance(name, cov_prior, g_cam) + 1.0 / P
+                    stat = e * e / S
+                elif name == "joint_angle":
+                    r = d - self.dt * command
+                    stat = 0.5 * r * r * P
+                    thr = self._increment_threshold
+                else:
+                    r = reading - command
+                    stat = r * r * P
+                stat = np.minimum(stat, 16.0)
                 f = self._flatline_stat[name]
                 f += alpha * (0.5 * d * d * P - f)
                 lo = self._flatline_threshold
+                low = self._fault_low[name]
                 low[:] = np.where(low, f < 2.0 * lo, f < lo)
-            self._fault[name] = high | low
+            m = self._fault_stat[name]
+            m += alpha * (stat - m)
+            high = self._fault_high[name]
+            high[:] = np.where(high, m > 0.5 * thr, m > thr)
+            if name == "camera":
+                # The camera is tested against the belief, which leans on the encoder angles:
+                # while one of those is flagged, the camera is the arbiter and stays in use.
+                high &= not self._fault["joint_angle"].any()
+            new = high.copy() if low is None else high | low
+            rising = new & ~self._fault[name]
+            if name == "joint_angle" and rising.any() and self.options["goal"] == "reference":
+                self._pending_inflation = np.flatnonzero(rising)
+            self._fault[name] = new
 
     def _learn_precisions(self, errors, cov_prior, g_cam) -> None:
         """Covariance matching of each channel's noise variance on its innovations.
@@ -906,15 +1011,25 @@ class ArmAgent:
         ``S = G Sigma- G' + R``, so ``R = E[nu^2] - G Sigma- G'`` per component (diagonal
         ``R``): the innovation-based adaptive estimate of Mehra 1970 (IEEE Trans Autom
         Control 15(2), sec. IV) in the sample form of Myers & Tapley 1976 (IEEE Trans Autom
-        Control 21(4), eq. 29). Under velocity control the velocity prediction misses every
+        Control 21(4), eq. 29). Under velocity control two channels use the efference copy
+        ``a`` (the motors track it far closer than the encoder noise) instead of ``Sigma-``,
+        which a goal prior or an unmodelled change of command makes wrong. Encoder angles:
+        the reading's increment less the commanded motion, ``d = y_k - y_(k-1) - dt a``, is
+        ``n_k - n_(k-1)``, so ``R_q = E[d^2] / 2`` (the difference variance estimator, von
+        Neumann et al. 1941, Ann Math Stat 12(2), from memory). The velocity prediction misses every
         change of command, so ``Sigma-`` understates its error; there the efference copy's
         error ``e_m = a - q'-`` carries the same prediction error with independent noise, and
         ``R_v = E[nu_v (nu_v - e_m)]`` is Grubbs' two-instrument estimator (Grubbs 1948, J Am
-        Stat Assoc 43(242), from memory), free of the prediction error whatever its size. Each
-        estimate is averaged with weights ``max(1 / k, 1 - exp(-r dt_m))``
+        Stat Assoc 43(242), from memory), free of the prediction error whatever its size. The
+        camera's pixel error is likewise predicted by the encoder angles' error through the
+        camera Jacobian ``G``: ``R_px = E[nu_px (nu_px - G nu_q)]`` (while no encoder angle is
+        flagged), which keeps the camera from absorbing an error of ``Sigma-``. Each estimate
+        is averaged with weights ``max(1 / k, 1 - exp(-r dt_m))``
         (``k`` the channel's sample count, ``r = precision_learning_rate`` per second, ``dt_m``
         the channel's sample interval; ``r = 0`` keeps the full average), and the precision
-        is ``P = 1 / R``, bounded to ``[e^-7, e^7]`` times the starting precision. Samples a
+        is ``P = 1 / R``, bounded to ``[e^-7, e^7]`` times the starting precision, applied from
+        the ``_LEARNING_BURN_IN``-th sample on; each sample is clipped to ``[-3, 20]`` predicted
+        innovation variances (an outlier guard, common practice, no source). Samples a
         channel takes while flagged by the innovation test of :meth:`_detect_faults` are
         skipped.
         """
@@ -923,14 +1038,37 @@ class ArmAgent:
             if name not in errors or name not in self._noise_variance:
                 continue
             high = self._fault_high[name]
+            if name != "camera":
+                high = high | self._fault_low[name]
             if high.all():
                 continue
             e = errors[name]
-            if name == "joint_velocity" and "motor" in errors:
+            s = self._innovation_variance(name, cov_prior, g_cam)
+            if name == "joint_angle" and "motor" in errors:
+                # The reading's increment less the commanded motion is n_k - n_(k-1).
+                p1 = self.order + 1
+                v_prior = self._phi_t[1] @ self._belief.reshape(p1, self.n)
+                q_prior = self._phi_t[0] @ self._belief.reshape(p1, self.n)
+                reading = e + q_prior
+                last = self._last_angle_reading
+                self._last_angle_reading = reading
+                if last is None:
+                    continue
+                d = reading - last - self.dt * (errors["motor"] + v_prior)
+                sample = 0.5 * d * d
+                s = 0.0
+            elif name == "joint_velocity" and "motor" in errors:
                 # Grubbs' estimator: the efference copy sees the same prediction error.
                 sample = e * (e - errors["motor"])
+            elif name == "camera" and not self._fault["joint_angle"].any():
+                # ... and the encoder angles see the camera's, through its Jacobian.
+                sample = e * (e - g_cam @ errors["joint_angle"])
             else:
-                sample = e * e - self._innovation_variance(name, cov_prior, g_cam)
+                sample = e * e - s
+            # Robustness: one sample moves the estimate by at most 20 (up) or 3 (down)
+            # predicted innovation variances (a chi-square(1) draw exceeds 20 with p < 1e-5).
+            S = s + 1.0 / self.precision[name]
+            sample = np.clip(sample, -3.0 * S, 20.0 * S)
             k = self._noise_samples[name] + 1
             self._noise_samples[name] = k
             step_s = self.dt
@@ -940,6 +1078,8 @@ class ArmAgent:
             healthy = ~(high.repeat(2) if name == "camera" else high)
             R = self._noise_variance[name]
             R += (a * healthy) * (sample - R)
+            if k < _LEARNING_BURN_IN:
+                continue
             p0 = self._initial_precision[name]
             self.precision[name] = np.clip(
                 1.0 / np.maximum(R, 1e-300), p0 * np.exp(-7.0), p0 * np.exp(7.0)

@@ -441,9 +441,12 @@ class Payload(_PerturbationWrapper):
             raise ConfigError("Payload: env has no set_payload hook")
 
     def reset(self, *, seed: int | None = None, options: dict[str, Any] | None = None):
-        # The payload goes on before the episode's first observation is taken.
+        # Before the env's reset (so the first observation is taken with it) and again after
+        # (should the env's reset ever clear it).
         self.env.unwrapped.set_payload(self.mass_kg)
-        return super().reset(seed=seed, options=options)
+        out = super().reset(seed=seed, options=options)
+        self.env.unwrapped.set_payload(self.mass_kg)
+        return out
 
     def _on_step(self, obs: dict[str, Any], info: dict[str, Any]) -> None:
         info["external"]["disturbance_payload_kg"] = self.mass_kg
