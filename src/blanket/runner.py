@@ -23,6 +23,7 @@ __all__ = [
     "build_agent",
     "run_scenario",
     "prepare_out_dir",
+    "with_safety",
     "SUMMARY_KEYS",
 ]
 
@@ -439,7 +440,7 @@ def run_scenario(
     env = make_env(scenario.env, scenario.env_options)
     try:
         if safety:
-            env = _with_safety(env)
+            env = with_safety(env)
         agent = build_agent(env, scenario.agent)
         writer = None
         if record and out_dir is not None:
@@ -473,9 +474,8 @@ def run_scenario(
         env.close()
 
 
-def _with_safety(env: Any) -> Any:
-    try:
-        from blanket.wrappers import SafetyLimits
-    except ImportError:
-        return env
+def with_safety(env: Any) -> Any:
+    """Wrap ``env`` in :class:`blanket.wrappers.SafetyLimits` (what demo, run and bench use)."""
+    from blanket.wrappers import SafetyLimits
+
     return SafetyLimits(env)

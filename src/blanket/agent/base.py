@@ -199,7 +199,7 @@ def attractor_velocity(
     return float(v), float(np.clip(omega, -turn_rad_s, turn_rad_s))
 
 
-_DEFAULTS: dict[str, Any] = {
+OPTION_DEFAULTS: dict[str, Any] = {
     "embedding_order": 1,
     "goal_precision": 400.0,
     "acceleration_sd_m_s2": 2.0,
@@ -241,10 +241,12 @@ class BaseAgent:
     """
 
     def __init__(self, description: BaseDescription, **options: Any) -> None:
-        unknown = sorted(set(options) - set(_DEFAULTS))
+        unknown = sorted(set(options) - set(OPTION_DEFAULTS))
         if unknown:
-            raise ConfigError(f"unknown BaseAgent option(s) {unknown}; valid: {sorted(_DEFAULTS)}")
-        opts = {**_DEFAULTS, **options}
+            raise ConfigError(
+                f"unknown BaseAgent option(s) {unknown}; valid: {sorted(OPTION_DEFAULTS)}"
+            )
+        opts = {**OPTION_DEFAULTS, **options}
         order = opts["embedding_order"]
         if order not in (1, 2):
             raise ConfigError(f"embedding_order must be 1 or 2, got {order!r}")

@@ -1,0 +1,446 @@
+"""Where trials run: this process, a local process pool, or Ray.
+
+Every engine runs the same pure function, :func:`evaluate_trial`, on the same plain-dict
+payloads, so a trial gives the same numbers whatever the engine: the env is reset with each
+seed (``env.reset(seed=s)``) and the agent is built fresh for each trial.
+
+The process pool uses the ``forkserver`` start method (``spawn`` where there is none): forking
+a process that holds a pybullet connection is unsafe, while the fork server imports the heavy
+modules once and never connects. Each worker runs with one BLAS/OpenMP thread, so ``K`` workers use
+``K`` cores and not ``K`` times the machine's thread count.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import socket
+import time
+from collections.abc import Callable, Iterable, Iterator, Mapping
+from pathlib import Path
+from typing import Any
+
+from blanket.errors import ConfigError
+
+__all__ = [
+    "ENGINES",
+    "SINGLE_THREAD_ENV",
+    "evaluate_trial",
+    "condition_parts",
+    "condition_names",
+    "InProcessEngine",
+    "LocalEngine",
+    "RayEngine",
+    "make_engine",
+]
+
+ENGINES = ("local", "ray")
+SINGLE_THREAD_ENV = {
+    "OMP_NUM_THREADS": "1",
+    "OPENBLAS_NUM_THREADS": "1",
+    "MKL_NUM_THREADS": "1",
+    "NUMBA_NUM_THREADS": "1",
+}
+RAY_CONNECT_TIMEOUT_S = 3.0
+# imported once by the fork server of the process pool (no pybullet connection is made)
+_PRELOAD = (
+    "numpy",
+    "scipy.linalg",
+    "pandas",
+    "gymnasium",
+    "pybullet",
+    "blanket.runner",
+    "blanket.agent",
+    "blanket.agent.arm",
+    "blanket.wrappers",
+    "blanket_envs.arm_reach",
+    "blanket.tune.engines",
+)
+
+
+# -- perturbation conditions ---------------------------------------------------------------
+
+
+def _registry() -> Mapping[str, Any]:
+    try:
+        from blanket.bench.conditions import CONDITIONS
+    except ImportError:
+        return {}
+    return CONDITIONS
+
+
+def condition_names() -> list[str]:
+    """Names ``--condition`` accepts: ``nominal`` plus those of ``blanket.bench.conditions``."""
+    return ["nominal"] + [n for n in _registry() if n != "nominal"]
+
+
+def condition_parts(
+    name: str | None,
+) -> tuple[dict[str, Any], Callable[[Any], Any], dict[str, Any]]:
+    """The one hook between sweeps and the benchmark's perturbation conditions.
+
+    Returns the condition's extra env options, its wrapper chain (``env -> env``; wrappers
+    draw from generators seeded at ``reset(seed)``) and its body-model options for the agent.
+    ``None`` and ``"nominal"`` change nothing.
+
+    Raises
+    ------
+    ConfigError
+        An unknown name (the message lists the valid ones).
+    """
+    if name is None or name == "nominal":
+        return {}, lambda env: env, {}
+    cond = _registry().get(name)
+    if cond is None:
+        import difflib
+
+        valid = condition_names()
+        close = difflib.get_close_matches(name, valid, n=1)
+        hint = f"did you mean {close[0]}? " if close else ""
+        raise ConfigError(f"--condition {name!r} is unknown; {hint}valid: {', '.join(valid)}")
+    return dict(cond.env_options), cond.wrap, dict(cond.model_options)
+
+
+# -- one trial -----------------------------------------------------------------------------
+
+_ENV_CACHE: dict[str, Any] = {}
+
+
+def _cached_env(env_id: str, env_options: Mapping[str, Any]) -> Any:
+    """One env per worker, rebuilt only when the env id or options change."""
+    from blanket.scenario import make_env
+
+    key = json.dumps([env_id, dict(env_options)], sort_keys=True, default=str)
+    env = _ENV_CACHE.get(key)
+    if env is None:
+        for old in _ENV_CACHE.values():
+            old.close()
+        _ENV_CACHE.clear()
+        env = make_env(env_id, env_options)
+        _ENV_CACHE[key] = env
+    return env
+
+
+def _with_safety(env: Any) -> Any:
+    # the same wrapping as `blanket run`, so best.toml reproduces the sweep's numbers
+    from blanket import runner
+
+    return runner.with_safety(env)
+
+
+def _median(values: list[Any]) -> float | None:
+    vals = [float(v) for v in values if v is not None and math.isfinite(float(v))]
+    if not vals:
+        return None
+    vals.sort()
+    n = len(vals)
+    return vals[n // 2] if n % 2 else 0.5 * (vals[n // 2 - 1] + vals[n // 2])
+
+
+def evaluate_trial(payload: Mapping[str, Any]) -> dict[str, Any]:
+    """Run one trial: the scenario with its overrides, one episode per seed.
+
+    Parameters
+    ----------
+    payload : mapping
+        ``index``, ``key``, ``scenario`` (``env``, ``env_options``, ``agent``, ``name``),
+        ``overrides`` (dotted keys), ``seeds`` (list of int), ``condition`` (str or None).
+
+    Returns
+    -------
+    dict
+        ``index``, ``key``, ``overrides``, ``metrics`` (``blanket.runner.summarize`` minus its
+        timings, plus ``mean_free_energy``), ``per_seed`` (lists over seeds), ``timing``
+        (wall time and step medians, not reproducible) and ``error`` (a message or None).
+    """
+    from blanket.runner import build_agent, run_episodes, summarize
+    from blanket.scenario import Scenario
+    from blanket.tune.space import apply_overrides
+
+    t0, c0 = time.perf_counter(), time.process_time()
+    out: dict[str, Any] = {
+        "index": payload["index"],
+        "key": payload["key"],
+        "overrides": dict(payload["overrides"]),
+        "error": None,
+    }
+    try:
+        sc = payload["scenario"]
+        scenario = apply_overrides(
+            Scenario(
+                env=sc["env"],
+                env_options=dict(sc["env_options"]),
+                agent=dict(sc["agent"]),
+                name=sc.get("name", "scenario"),
+            ),
+            payload["overrides"],
+        )
+        extra_env, wrap, model_options = condition_parts(payload.get("condition"))
+        raw = _cached_env(scenario.env, {**scenario.env_options, **extra_env})
+        env = _with_safety(wrap(raw))
+        agent_options = dict(scenario.agent)
+        from blanket.description import ArmDescription
+
+        arm = isinstance(getattr(raw.unwrapped, "description", None), ArmDescription)
+        if model_options and arm and "class" not in agent_options:
+            # a body-model perturbation (e.g. miscalibrated link lengths) of the built-in agent
+            agent_options.update(model_options)
+        agent = build_agent(env, agent_options)
+        results = []
+        for seed in payload["seeds"]:
+            results.extend(run_episodes(env, agent, episodes=1, seed=int(seed), progress=False))
+    except ValueError as exc:  # ConfigError included: a bad value for this trial
+        out["error"] = str(exc).strip().splitlines()[0] if str(exc).strip() else repr(exc)
+        return out
+    summary = summarize(results)
+    metrics = {
+        k: summary.get(k)
+        for k in (
+            "success_rate",
+            "final_error_m",
+            "time_to_success_s",
+            "contact_rate",
+            "safe_stops",
+            "final_heading_error_rad",
+        )
+    }
+    metrics["mean_free_energy"] = _median([r.mean_free_energy for r in results])
+    out["metrics"] = metrics
+    out["per_seed"] = {
+        "seed": [r.seed for r in results],
+        "success": [bool(r.success) for r in results],
+        "time_to_success_s": [r.time_to_success_s for r in results],
+        "final_error_m": [r.final_error_m for r in results],
+    }
+    out["timing"] = {
+        "wall_s": time.perf_counter() - t0,
+        "cpu_s": time.process_time() - c0,
+        "agent_step_us": summary.get("agent_step_us"),
+        "sim_step_us": summary.get("sim_step_us"),
+        "pid": os.getpid(),
+    }
+    return out
+
+
+# -- engines -------------------------------------------------------------------------------
+
+
+class InProcessEngine:
+    """Trials one after another in this process (``--workers 1``)."""
+
+    workers = 1
+    name = "local"
+
+    def imap(self, payloads: Iterable[Mapping[str, Any]]) -> Iterator[dict[str, Any]]:
+        for p in payloads:
+            yield evaluate_trial(p)
+
+    def close(self) -> None:
+        _ENV_CACHE.clear()
+
+    def __enter__(self) -> InProcessEngine:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+
+def _init_worker() -> None:
+    """Worker initializer: one BLAS thread (the env variables are set before spawning too)."""
+    os.environ.update(SINGLE_THREAD_ENV)
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:
+        return
+    threadpool_limits(1)
+
+
+class LocalEngine:
+    """A pool of ``workers`` spawned processes on this machine (default: all cores).
+
+    Parameters
+    ----------
+    workers : int or None
+        Number of processes; None uses ``os.cpu_count()``.
+    """
+
+    name = "local"
+
+    def __init__(self, workers: int | None = None) -> None:
+        import multiprocessing
+        from concurrent.futures import ProcessPoolExecutor
+
+        self.workers = int(workers or os.cpu_count() or 1)
+        if self.workers < 1:
+            raise ConfigError(f"--workers must be >= 1, got {workers}")
+        # spawned children read these at interpreter start, before anything imports numpy
+        self._saved = {k: os.environ.get(k) for k in SINGLE_THREAD_ENV}
+        os.environ.update(SINGLE_THREAD_ENV)
+        if "forkserver" in multiprocessing.get_all_start_methods():
+            # children fork from a server that has imported the heavy modules but never
+            # connected to pybullet, so a worker starts in milliseconds and safely
+            ctx = multiprocessing.get_context("forkserver")
+            ctx.set_forkserver_preload(list(_PRELOAD))
+        else:
+            ctx = multiprocessing.get_context("spawn")
+        self._pool = ProcessPoolExecutor(
+            max_workers=self.workers, mp_context=ctx, initializer=_init_worker
+        )
+
+    def imap(self, payloads: Iterable[Mapping[str, Any]]) -> Iterator[dict[str, Any]]:
+        """Results in the order trials finish."""
+        from concurrent.futures import FIRST_COMPLETED, wait
+        from concurrent.futures.process import BrokenProcessPool
+
+        pending = {self._pool.submit(evaluate_trial, dict(p)) for p in payloads}
+        try:
+            while pending:
+                done, pending = wait(pending, return_when=FIRST_COMPLETED)
+                for fut in done:
+                    try:
+                        yield fut.result()
+                    except BrokenProcessPool:
+                        raise RuntimeError(
+                            "a sweep worker process died; a script that calls run_sweep must "
+                            "guard its top level with `if __name__ == '__main__':`"
+                        ) from None
+        finally:
+            for fut in pending:
+                fut.cancel()
+
+    def close(self) -> None:
+        self._pool.shutdown(wait=True, cancel_futures=True)
+        for k, v in self._saved.items():
+            if v is None:
+                os.environ.pop(k, None)
+            else:
+                os.environ[k] = v
+
+    def __enter__(self) -> LocalEngine:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+
+def _ray_address(address: str) -> str:
+    """Resolve ``auto`` and check the head's port answers within a short timeout."""
+    addr = address.strip()
+    if addr == "auto":
+        addr = os.environ.get("RAY_ADDRESS", "")
+        if not addr:
+            current = Path(os.environ.get("RAY_TMPDIR", "/tmp")) / "ray" / "ray_current_cluster"
+            addr = current.read_text().strip() if current.is_file() else ""
+        if not addr:
+            raise ConfigError(
+                "--address auto: no running Ray cluster found on this machine; "
+                "start one with `ray start --head` or give --address HOST:PORT"
+            )
+    hostport = addr.removeprefix("ray://")
+    host, sep, port = hostport.rpartition(":")
+    if not sep or not host or not port.isdigit():
+        raise ConfigError(f"--address must be auto, HOST:PORT or ray://HOST:PORT, got {address!r}")
+    try:
+        with socket.create_connection((host, int(port)), timeout=RAY_CONNECT_TIMEOUT_S):
+            pass
+    except OSError as exc:
+        reason = exc.strerror or type(exc).__name__
+        raise ConfigError(
+            f"--address {address}: no Ray cluster answers at {host}:{port} "
+            f"({reason}; waited {RAY_CONNECT_TIMEOUT_S:g} s)"
+        ) from None
+    return addr
+
+
+class RayEngine:
+    """Trials as Ray tasks (one CPU each): on a cluster (``address``) or a local instance.
+
+    Parameters
+    ----------
+    address : str or None
+        ``auto``, ``HOST:PORT`` or ``ray://HOST:PORT`` of a running cluster (every node needs
+        blanket installed); None starts a local Ray instance with ``workers`` CPUs.
+    workers : int or None
+        Most trials in flight at once (None: as many as the cluster takes).
+    """
+
+    name = "ray"
+
+    def __init__(self, address: str | None = None, workers: int | None = None) -> None:
+        try:
+            import ray
+        except ImportError:
+            raise ConfigError(
+                "--engine ray needs ray (pip install 'blanket[cluster]'); use --engine local"
+            ) from None
+        import logging
+
+        self._ray = ray
+        self.workers = workers
+        self._started = False
+        if not ray.is_initialized():
+            runtime_env = {"env_vars": dict(SINGLE_THREAD_ENV)}
+            if address is None:
+                ray.init(
+                    num_cpus=int(workers or os.cpu_count() or 1),
+                    include_dashboard=False,
+                    log_to_driver=False,
+                    logging_level=logging.WARNING,
+                    runtime_env=runtime_env,
+                )
+            else:
+                resolved = _ray_address(address)
+                try:
+                    ray.init(
+                        address=resolved,
+                        log_to_driver=False,
+                        logging_level=logging.WARNING,
+                        runtime_env=runtime_env,
+                    )
+                except ConnectionError as exc:
+                    raise ConfigError(f"--address {address}: {str(exc).splitlines()[0]}") from None
+            self._started = True
+        self._remote = ray.remote(num_cpus=1)(evaluate_trial)
+
+    def imap(self, payloads: Iterable[Mapping[str, Any]]) -> Iterator[dict[str, Any]]:
+        """Results in the order trials finish."""
+        ray = self._ray
+        queue = [dict(p) for p in payloads]
+        limit = self.workers or len(queue) or 1
+        in_flight: list[Any] = []
+        try:
+            while queue or in_flight:
+                while queue and len(in_flight) < limit:
+                    in_flight.append(self._remote.remote(queue.pop(0)))
+                done, in_flight = ray.wait(in_flight, num_returns=1)
+                for ref in done:
+                    yield ray.get(ref)
+        finally:
+            for ref in in_flight:
+                ray.cancel(ref, force=True)
+
+    def close(self) -> None:
+        if self._started:
+            self._ray.shutdown()
+            self._started = False
+
+    def __enter__(self) -> RayEngine:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+
+def make_engine(engine: str, workers: int | None = None, address: str | None = None) -> Any:
+    """The engine named by ``--engine`` (``local`` with one worker runs in this process)."""
+    if engine not in ENGINES:
+        raise ConfigError(f"--engine must be one of {', '.join(ENGINES)}, got {engine!r}")
+    if workers is not None and workers < 1:
+        raise ConfigError(f"--workers must be >= 1, got {workers}")
+    if engine == "ray":
+        return RayEngine(address, workers)
+    if address is not None:
+        raise ConfigError("--address applies to --engine ray only")
+    n = int(workers or os.cpu_count() or 1)
+    return InProcessEngine() if n == 1 else LocalEngine(n)
