@@ -448,7 +448,7 @@ def test_ray_local_instance_equals_local_engine(tmp_path):
 def test_condition_runs_the_benchmarks_perturbation(tmp_path):
     """A sweep under a condition gives the numbers of the condition's own wrapper chain."""
     conditions = pytest.importorskip("blanket.bench.conditions")
-    from blanket.runner import _with_safety, build_agent, run_episodes
+    from blanket.runner import build_agent, run_episodes, with_safety
     from blanket.scenario import make_env
 
     cond = conditions.CONDITIONS["sensor-noise-x3"]
@@ -463,7 +463,7 @@ def test_condition_runs_the_benchmarks_perturbation(tmp_path):
         plots=False,
     )
     # the wrapping `blanket run` uses (safety limits outermost) around the condition's chain
-    env = _with_safety(cond.wrap(make_env(PLANAR, {"episode_s": 0.5, **cond.env_options})))
+    env = with_safety(cond.wrap(make_env(PLANAR, {"episode_s": 0.5, **cond.env_options})))
     try:
         ref = run_episodes(env, build_agent(env, {"goal_precision": 30}), 1, 3, progress=False)
     finally:

@@ -122,7 +122,7 @@ def _cached_env(env_id: str, env_options: Mapping[str, Any]) -> Any:
     return env
 
 
-def _with_safety(env: Any) -> Any:
+def with_safety(env: Any) -> Any:
     # the same wrapping as `blanket run`, so best.toml reproduces the sweep's numbers
     from blanket import runner
 
@@ -178,7 +178,7 @@ def evaluate_trial(payload: Mapping[str, Any]) -> dict[str, Any]:
         )
         extra_env, wrap, model_options = condition_parts(payload.get("condition"))
         raw = _cached_env(scenario.env, {**scenario.env_options, **extra_env})
-        env = _with_safety(wrap(raw))
+        env = with_safety(wrap(raw))
         agent_options = dict(scenario.agent)
         from blanket.description import ArmDescription
 
