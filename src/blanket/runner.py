@@ -370,6 +370,9 @@ def _run_metadata(scenario: Scenario, env: Any, seed: int) -> dict[str, Any]:
     if robot is None and scenario.env_options.get("urdf"):
         robot = Path(str(scenario.env_options["urdf"])).stem
     meta["robot"] = robot or env_option_names(scenario.env).get("robot")
+    for key, name in (("bench_boxes_m", "bench_boxes_m"), ("landmarks_m", "landmarks_m")):
+        if hasattr(d, key):
+            meta[name] = np.asarray(getattr(d, key), dtype=float).tolist()
     return meta
 
 

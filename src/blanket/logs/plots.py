@@ -252,6 +252,29 @@ def _tip_path_figure(frame: pd.DataFrame, meta: Mapping[str, Any], episode: int)
         return None
     dock = _find_planar(frame, ("dock", "goal", "target"))
     fig, ax = plt.subplots(figsize=(5.6, 5.0), layout="constrained")
+    for k, box in enumerate(meta.get("bench_boxes_m") or []):
+        x0, y0, x1, y1 = (float(v) for v in box)
+        ax.add_patch(
+            plt.Rectangle(
+                (x0, y0),
+                x1 - x0,
+                y1 - y0,
+                facecolor="#c9b79c",
+                edgecolor="#8a7356",
+                lw=0.8,
+                label="bench" if k == 0 else None,
+            )
+        )
+    landmarks = np.asarray(meta.get("landmarks_m") or [], dtype=float)
+    if landmarks.size:
+        ax.plot(
+            landmarks[:, 0],
+            landmarks[:, 1],
+            "^",
+            color="#6b6b6b",
+            markersize=5,
+            label="row-end post",
+        )
     x, y = _values(frame, base[0]), _values(frame, base[1])
     ax.plot(x, y, color=PALETTE[2], label="base")
     ax.plot(x[:1], y[:1], "o", color=PALETTE[2], markersize=5, label="start")
