@@ -534,7 +534,7 @@ class BaseGotoEnv(gym.Env):
                 "base_pose": pose,
                 "base_velocity": self._base.planar_velocity(),
                 "wheel_speed_rad_s": self._odometry.true_wheel_speeds(),
-                "dock_pose": np.asarray(dock, dtype=float),
+                "dock_pose": np.array(dock, dtype=float),
             },
         }
 
