@@ -292,7 +292,10 @@ class ArmAgent:
                 or (1.0 / max(self.camera.pixel_noise_px, 1e-3) ** 2 if self.camera else 0.0),
             ),
         }
-        self.motor_precision = float(opts["motor_precision"] or 1.0 / MOTOR_TRACKING_SD_RAD_S**2)
+        # In goal="prior" mode a tight efference copy would leave the goal only the position
+        # belief to pull on (measured: 27x the EKF's error), so the copy is looser there.
+        motor_sd = MOTOR_TRACKING_SD_RAD_S if opts["goal"] == "reference" else 0.5 * sv
+        self.motor_precision = float(opts["motor_precision"] or 1.0 / motor_sd**2)
         self.goal_precision = float(opts["goal_precision"] or 1.0 / sv**2)
         self._initial_precision = {k: v.copy() for k, v in self.precision.items()}
 
