@@ -64,7 +64,6 @@ from scipy.stats import chi2
 
 from blanket.description import ArmDescription
 from blanket.errors import ConfigError
-from blanket.gcoords import embedding_matrix
 from blanket.model import BodyState, ModelTerm
 
 try:  # the compiled perception kernel; the numpy path computes the same step
@@ -359,10 +358,11 @@ class ArmAgent:
         self._last_finite_q = np.zeros(self.n)
         self._disturbance = np.zeros(self.n)
         self._last_velocity_belief: np.ndarray | None = None
-        self._target_history: list[np.ndarray] = []
+        self._target_last: np.ndarray | None = None
         self._target_velocity = np.zeros(3)
-        self._target_embed: np.ndarray | None = None
-        self._target_window = max(2, int(round(self.options["target_window_s"] / self.dt)))
+        self._target_window = max(1, int(round(self.options["target_window_s"] / self.dt)))
+        self._target_steps = np.zeros((self._target_window, 3))
+        self._target_count = 0
         self._reset_channel_statistics()
 
     def _initialise(self, obs: Mapping[str, Any]) -> None:
@@ -434,30 +434,33 @@ class ArmAgent:
         return action
 
     def _track_target(self, position: Any) -> None:
-        """Believed target velocity: generalized coordinates (order 1) of its recent track.
+        """Believed target velocity: the order-1 generalized coordinate of its recent track.
 
-        The last ``target_window_s`` of target positions are fitted by the Taylor embedding of
-        :func:`blanket.gcoords.embedding_matrix` (least squares, causal); a jump of more than
-        5 cm in one step (a new target) restarts the track. A target carried on a conveyor is
-        then followed without the steady lag ``speed / attractor_gain`` of a pure position
-        attractor.
+        The backward difference over the last ``target_window_s`` (exact for a target moving at
+        constant velocity; target positions are given, not sensed with noise); a jump of more
+        than 5 cm in one step (a new target) restarts the track. A target carried on a
+        conveyor is then followed without the steady lag ``speed / attractor_gain`` of a pure
+        position attractor.
         """
         if not self.options["track_target_motion"]:
             return
         x = np.asarray(position, dtype=float)
-        hist = self._target_history
-        if hist and float(np.abs(x - hist[-1]).max()) > 0.05:
-            hist.clear()
-        hist.append(x.copy())
-        if len(hist) > self._target_window:
-            del hist[0]
-        m = len(hist)
-        if m < 2:
+        last = self._target_last
+        self._target_last = x.copy()
+        if last is None:
+            return
+        step = x - last
+        if np.abs(step).max() > 0.05:
+            self._target_steps[:] = 0.0
+            self._target_count = 0
             self._target_velocity = np.zeros(3)
             return
-        if self._target_embed is None or self._target_embed.shape[1] != m:
-            self._target_embed = embedding_matrix(1, m, self.dt)
-        self._target_velocity = self._target_embed[1] @ np.asarray(hist)
+        w = self._target_window
+        self._target_steps[self._target_count % w] = step
+        self._target_count += 1
+        self._target_velocity = self._target_steps.sum(axis=0) / (
+            min(self._target_count, w) * self.dt
+        )
 
     def predict(
         self,
@@ -872,7 +875,8 @@ class ArmAgent:
             # F_a = 1/2 P (y_v(a) - v*)^2 with y_v(a) = a: Newton step a += frac (v* - a).
             wanted = v if self.options["goal"] == "prior" else f
             a = wanted.copy() if frac == 1.0 else self._action + frac * (wanted - self._action)
-            return np.minimum(np.maximum(a, -d.velocity_limit_rad_s), d.velocity_limit_rad_s)
+            lim = d.velocity_limit_rad_s
+            return np.minimum(np.maximum(a, -lim, out=a), lim, out=a)
         # Torque: q''(tau) = inv(M)(tau - h); the Newton step on F_a gives
         # tau = h + M q''_wanted (see torque_action_free_energy).
         if self.options["goal"] == "prior":
