@@ -88,11 +88,62 @@ def run_loop(env: gym.Env, steps: int, writer: RunWriter | None, seed: int) -> t
     return time.perf_counter() - start, writing
 
 
+def runner_loop(rounds: int, episodes: int) -> None:
+    """The loop ``blanket demo`` runs (iiwa, ArmAgent, safety wrapper), with and without
+    recording all four groups; rounds alternate and the fastest of each is kept."""
+    from blanket.runner import _run_metadata, run_episodes, with_safety
+    from blanket.scenario import Scenario, make_env
+
+    scenario = Scenario(
+        env="blanket/arm-reach-v0", env_options={"robot": "iiwa"}, name="bench-logging-runner"
+    )
+    env = with_safety(make_env(scenario.env, scenario.env_options))
+    from blanket.agent import ArmAgent
+
+    agent = ArmAgent.from_env(env)
+    meta = _run_metadata(scenario, env, 0)
+    plain, logged = [], []
+    with tempfile.TemporaryDirectory() as tmp:
+        with RunWriter(Path(tmp) / "warm-up", meta) as writer:
+            run_episodes(env, agent, 1, 0, writer=writer, progress=False)
+        for r in range(rounds):
+            t0 = time.perf_counter()
+            run_episodes(env, agent, episodes, r, progress=False)
+            plain.append(time.perf_counter() - t0)
+            with RunWriter(Path(tmp) / f"run-{r}", meta) as writer:
+                t0 = time.perf_counter()
+                run_episodes(env, agent, episodes, r, writer=writer, progress=False)
+                logged.append(time.perf_counter() - t0)
+        columns = read_run(Path(tmp) / "run-0").shape[1]
+    env.close()
+    t_plain, t_logged = min(plain), min(logged)
+    steps = episodes * 960
+    print(f"runner loop (iiwa, agent, safety): {steps} steps per round, {rounds} rounds")
+    print(f"loop without logging      {t_plain:.3f} s  ({t_plain / steps * 1e6:.1f} us/step)")
+    print(f"loop with logging         {t_logged:.3f} s  ({t_logged / steps * 1e6:.1f} us/step)")
+    print(f"columns logged            {columns}")
+    overhead = t_logged / t_plain - 1.0
+    print(f"overhead ratio            {overhead * 100:.1f} %  (acceptance: <= 10 %)")
+    print("PASS" if overhead <= 0.10 else "FAIL")
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--steps", type=int, default=4800)
     parser.add_argument("--rounds", type=int, default=5)
+    parser.add_argument(
+        "--loop",
+        choices=("planar", "runner", "both"),
+        default="both",
+        help="planar: a bare env loop; runner: the loop blanket demo runs",
+    )
+    parser.add_argument("--episodes", type=int, default=3, help="episodes per runner round")
     args = parser.parse_args()
+    if args.loop in ("runner", "both"):
+        runner_loop(args.rounds, args.episodes)
+        if args.loop == "runner":
+            return
+        print()
     env = gym.make("blanket/planar-2link-v0")
     metadata = {
         "scenario": "bench-logging",

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import functools
+import inspect
 import json
 import math
 import time
@@ -94,6 +96,16 @@ def run_episode(
         agent.reset()
     act = _act(agent)
     diagnostics = getattr(agent, "diagnostics", None)
+    # Without a log, only the free energy and the safe-stop flag are needed, and agents that
+    # expose them as properties (ArmAgent) skip building the full diagnostics.
+    light = writer is None and hasattr(agent, "free_energy") and hasattr(agent, "safe_stop")
+    if writer is not None and diagnostics is not None:
+        # The writer copies every value, so an agent that can hand out views saves a copy.
+        try:
+            if "copy" in inspect.signature(diagnostics).parameters:
+                diagnostics = functools.partial(diagnostics, copy=False)
+        except (TypeError, ValueError):
+            pass
     dt = 1.0 / float(env.unwrapped.metadata.get("control_hz", 0) or _control_hz(env))
     max_steps = getattr(env.unwrapped, "max_steps", None)
     if writer is not None:
@@ -111,7 +123,10 @@ def run_episode(
         t0 = time.perf_counter_ns()
         action = act(obs)
         agent_us.append((time.perf_counter_ns() - t0) / 1e3)
-        diag = diagnostics() if diagnostics is not None else None
+        if light:
+            diag = {"free_energy": agent.free_energy, "safe_stop": agent.safe_stop}
+        else:
+            diag = diagnostics() if diagnostics is not None else None
         if diag is not None:
             fe = diag.get("free_energy")
             energy.append(float(fe) if fe is not None else math.nan)
@@ -201,15 +216,7 @@ def _control_hz(env: Any) -> float:
 
 def _loggable(diag: Mapping[str, Any]) -> dict[str, Any]:
     """The numeric part of an agent's diagnostics (strings stay out of the data columns)."""
-    out: dict[str, Any] = {}
-    for key, value in diag.items():
-        if isinstance(value, Mapping):
-            sub = _loggable(value)
-            if sub:
-                out[key] = sub
-        elif isinstance(value, bool | int | float | np.ndarray | np.bool_ | np.number):
-            out[key] = value
-    return out
+    return {k: v for k, v in diag.items() if not isinstance(v, str)}
 
 
 def run_episodes(

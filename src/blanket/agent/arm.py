@@ -724,6 +724,7 @@ class ArmAgent:
             self._pg = self.goal_precision / o["velocity_gain_1_s"] ** 2
         self._pm = self.motor_precision if self.control == "velocity" else 0.0
         self._zero2 = np.zeros(2)
+        self._nan2 = np.full(2, np.nan)
         self._log_det_key: tuple[int, int] | None = None
         self._log_det_value = 0.0
         self._log_det_cam: float | None = None
@@ -833,14 +834,17 @@ class ArmAgent:
         return self._log_det_cam
 
     def _error_dict(self) -> dict[str, np.ndarray]:
+        """Prediction errors of the last step; the same keys every step (a stable log
+        schema): the camera's is NaN on steps without a fresh, visible frame."""
         names = ["joint_angle", "joint_velocity"]
-        if self._cam_on:
-            names.append("camera")
         if self._pm > 0:
             names.append("motor")
         if self._goal_mode:
             names.append("goal")
-        return {k: self._err[k].copy() for k in names}
+        out = {k: self._err[k].copy() for k in names}
+        if self.camera is not None:
+            out["camera"] = self._err["camera"].copy() if self._cam_on else np.full(2, np.nan)
+        return out
 
     def _effective_precision(self, name: str) -> np.ndarray:
         """A channel's precision, down-weighted where it is flagged faulty."""
@@ -1129,13 +1133,27 @@ class ArmAgent:
         return energy, grad
 
     # -- reporting ----------------------------------------------------------------------
-    def diagnostics(self) -> dict[str, Any]:
+    @property
+    def free_energy(self) -> float | None:
+        """Free energy of the last step (None before the first)."""
+        return self._diag.get("free_energy")
+
+    @property
+    def safe_stop(self) -> bool:
+        """Whether the last step ended in the agent's own safe stop."""
+        return bool(self._diag.get("safe_stop", False)) or bool(self._safe_stop_reason)
+
+    def diagnostics(self, copy: bool = True) -> dict[str, Any]:
         """The ``internal.*`` log group for the last step.
 
         Keys: ``belief`` (order+1, n), ``belief_sd`` (order+1, n), ``free_energy``,
         ``prediction_error`` (per channel), ``precision`` (per channel), ``fault`` (per
-        channel), ``safe_stop`` and ``safe_stop_reason``.
+        channel), ``safe_stop`` and ``safe_stop_reason``. With ``copy=False`` the arrays are
+        views of the agent's buffers, valid until the next :meth:`act` (what a log writer
+        that copies them anyway wants).
         """
+        if not copy:
+            return self._diagnostics_view()
         p1, n = self.order + 1, self.n
         out: dict[str, Any] = dict(self._diag)
         if getattr(self, "_lazy_errors", False) and "prediction_error" not in out:
@@ -1147,6 +1165,26 @@ class ArmAgent:
         out["fault"] = {k: v.copy() for k, v in self._fault.items()}
         out.setdefault("safe_stop", bool(self._safe_stop_reason))
         out.setdefault("safe_stop_reason", self._safe_stop_reason)
+        return out
+
+    def _diagnostics_view(self) -> dict[str, Any]:
+        p1, n = self.order + 1, self.n
+        out: dict[str, Any] = dict(self._diag)
+        if self._lazy_errors and "prediction_error" not in out:
+            errors = {k: self._err[k] for k in ("joint_angle", "joint_velocity")}
+            if self._pm > 0:
+                errors["motor"] = self._err["motor"]
+            if self._goal_mode:
+                errors["goal"] = self._err["goal"]
+            if self.camera is not None:
+                errors["camera"] = self._err["camera"] if self._cam_on else self._nan2
+            out["prediction_error"] = errors
+        if self._belief is not None:
+            out["belief"] = self._belief.reshape(p1, n)
+            out["belief_sd"] = np.sqrt(np.diagonal(self._cov)).reshape(p1, n)
+        out["precision"] = self.precision
+        out["fault"] = self._fault
+        out.setdefault("safe_stop", bool(self._safe_stop_reason))
         return out
 
     @property
