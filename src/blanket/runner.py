@@ -456,7 +456,10 @@ def run_scenario(
         if record and out_dir is not None:
             from blanket.logs import RunWriter
 
-            writer = RunWriter(out_dir, _run_metadata(scenario, env, seed), overwrite=True)
+            meta = _run_metadata(scenario, env, seed)
+            if hasattr(agent, "precision_summary"):
+                meta["agent_precision"] = agent.precision_summary()
+            writer = RunWriter(out_dir, meta, overwrite=True)
         try:
             results = run_episodes(
                 env,

@@ -1182,9 +1182,18 @@ class ArmAgent:
         if self._belief is not None:
             out["belief"] = self._belief.reshape(p1, n)
             out["belief_sd"] = np.sqrt(np.diagonal(self._cov)).reshape(p1, n)
-        out["precision"] = self.precision
-        out["fault"] = self._fault
+        if self._precision_changing:
+            # Constant precisions are run metadata (see precision_summary), not per-step data.
+            out["precision"] = self.precision
+            out["fault"] = self._fault
         out.setdefault("safe_stop", bool(self._safe_stop_reason))
+        return out
+
+    def precision_summary(self) -> dict[str, list[float]]:
+        """The channels' precisions at the start of an episode (for run metadata)."""
+        out = {k: np.asarray(v, dtype=float).tolist() for k, v in self._initial_precision.items()}
+        out["motor"] = [self.motor_precision]
+        out["goal"] = [self.goal_precision]
         return out
 
     @property
