@@ -413,7 +413,16 @@ def _free_energy_figure(
     for ax, (channel, comps) in zip(axes[i:], channels.items(), strict=True):
         if len(comps) <= 6:
             for n, (comp, column) in enumerate(comps.items()):
-                ax.plot(t, _values(frame, column), color=PALETTE[n % len(PALETTE)], label=comp)
+                y = _values(frame, column)
+                # A channel sampled on some steps only (camera frames) shows as points.
+                sparse = np.isfinite(y).mean() < 0.5 if len(y) else False
+                ax.plot(
+                    t,
+                    y,
+                    color=PALETTE[n % len(PALETTE)],
+                    label=comp,
+                    **({"marker": ".", "linestyle": "none", "markersize": 3} if sparse else {}),
+                )
             ax.legend(loc="upper right", ncol=min(len(comps), 6))
         else:
             stack = np.column_stack([_values(frame, c) for c in comps.values()])
