@@ -15,6 +15,8 @@ from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
+from blanket.cli_types import positive_int as _positive_int
+from blanket.cli_types import seed as _seed
 from blanket.errors import ConfigError
 
 __all__ = ["main", "SAFETY_NOTE"]
@@ -36,26 +38,6 @@ _EXTERNAL = {
     "train-rl": ("blanket.bench.cli", "add_train_parser", "run_train"),
     "tune": ("blanket.tune.cli", "add_tune_parser", "run_tune"),
 }
-
-
-def _positive_int(text: str) -> int:
-    try:
-        v = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"must be a whole number >= 1, got {text!r}") from None
-    if v < 1:
-        raise argparse.ArgumentTypeError(f"must be a whole number >= 1, got {text!r}")
-    return v
-
-
-def _seed(text: str) -> int:
-    try:
-        v = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"must be a whole number >= 0, got {text!r}") from None
-    if v < 0:
-        raise argparse.ArgumentTypeError(f"must be a whole number >= 0, got {text!r}")
-    return v
 
 
 def _add_run_options(p: argparse.ArgumentParser, episodes_default: int | None) -> None:

@@ -7,29 +7,11 @@ import json
 from pathlib import Path
 from typing import Any
 
+from blanket.cli_types import positive_int as _positive_int
+from blanket.cli_types import seed as _seed
 from blanket.errors import ConfigError
 
 __all__ = ["add_bench_parser", "run_bench", "add_train_parser", "run_train"]
-
-
-def _positive_int(text: str) -> int:
-    try:
-        v = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"must be a whole number >= 1, got {text!r}") from None
-    if v < 1:
-        raise argparse.ArgumentTypeError(f"must be a whole number >= 1, got {text!r}")
-    return v
-
-
-def _seed(text: str) -> int:
-    try:
-        v = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"must be a whole number >= 0, got {text!r}") from None
-    if v < 0:
-        raise argparse.ArgumentTypeError(f"must be a whole number >= 0, got {text!r}")
-    return v
 
 
 def _positive_float(text: str) -> float:

@@ -6,6 +6,8 @@ import argparse
 import math
 from typing import Any
 
+from blanket.cli_types import positive_int as _positive_int
+from blanket.cli_types import seed as _seed
 from blanket.errors import ConfigError
 
 __all__ = ["add_tune_parser", "run_tune"]
@@ -38,26 +40,6 @@ examples:
   blanket tune bench.toml --vary agent.motor_precision=log:0.1..100:5 \\
       --engine ray --address auto        # a running Ray cluster (pip install 'blanket[cluster]')
 """
-
-
-def _positive_int(text: str) -> int:
-    try:
-        v = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"must be a whole number >= 1, got {text!r}") from None
-    if v < 1:
-        raise argparse.ArgumentTypeError(f"must be a whole number >= 1, got {text!r}")
-    return v
-
-
-def _seed(text: str) -> int:
-    try:
-        v = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"must be a whole number >= 0, got {text!r}") from None
-    if v < 0:
-        raise argparse.ArgumentTypeError(f"must be a whole number >= 0, got {text!r}")
-    return v
 
 
 def _conditions() -> list[str]:
