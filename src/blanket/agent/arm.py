@@ -798,7 +798,7 @@ class ArmAgent:
         z_new = self._z_out
         self._cam_on = cam_on
         if self.options["fault_detection"] or self.options["learn_precision"]:
-            errors = self._error_dict()
+            errors = self._error_dict(stable=False)
             g_cam = self._g_cam if cam_on else None
             if self.options["fault_detection"]:
                 self._detect_faults(errors, self._cov_prior, g_cam)
@@ -833,17 +833,20 @@ class ArmAgent:
             self._log_det_cam = float(np.log(pc).sum())
         return self._log_det_cam
 
-    def _error_dict(self) -> dict[str, np.ndarray]:
-        """Prediction errors of the last step; the same keys every step (a stable log
-        schema): the camera's is NaN on steps without a fresh, visible frame."""
+    def _error_dict(self, stable: bool = True) -> dict[str, np.ndarray]:
+        """Prediction errors of the last step. ``stable``: the same keys every step (a stable
+        log schema), the camera's NaN on steps without a fresh, visible frame; otherwise only
+        the terms that were active."""
         names = ["joint_angle", "joint_velocity"]
         if self._pm > 0:
             names.append("motor")
         if self._goal_mode:
             names.append("goal")
         out = {k: self._err[k].copy() for k in names}
-        if self.camera is not None:
-            out["camera"] = self._err["camera"].copy() if self._cam_on else np.full(2, np.nan)
+        if self._cam_on:
+            out["camera"] = self._err["camera"].copy()
+        elif stable and self.camera is not None:
+            out["camera"] = np.full(2, np.nan)
         return out
 
     def _effective_precision(self, name: str) -> np.ndarray:
