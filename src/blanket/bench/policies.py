@@ -276,7 +276,7 @@ POLICIES: dict[str, PolicySpec] = {
     for s in (
         PolicySpec(
             "active-inference",
-            "ArmAgent, velocity control, goal as prior dynamics",
+            "ArmAgent (defaults), velocity control, goal as a reference seen only by action",
             "velocity",
             _agent("velocity"),
         ),
@@ -284,10 +284,10 @@ POLICIES: dict[str, PolicySpec] = {
             "active-inference-torque", "ArmAgent, torque control", "torque", _agent("torque")
         ),
         PolicySpec(
-            "active-inference-reference",
-            "ArmAgent, velocity control, goal as a reference seen only by action",
+            "active-inference-prior",
+            "ArmAgent, velocity control, goal as prior dynamics (biases the belief)",
             "velocity",
-            _agent("velocity", goal="reference"),
+            _agent("velocity", goal="prior"),
         ),
         PolicySpec(
             "classical",
