@@ -62,6 +62,7 @@ from scipy.linalg import expm
 from scipy.linalg.lapack import dposv, dpotrf, dpotrs
 from scipy.stats import chi2
 
+from blanket.agent._policy import PredictMixin
 from blanket.description import ArmDescription
 from blanket.errors import ConfigError
 from blanket.model import BodyState, ModelTerm
@@ -246,7 +247,7 @@ def torque_action_free_energy(
     return 0.5 * float(e @ P @ e), -Minv.T @ P @ e
 
 
-class ArmAgent:
+class ArmAgent(PredictMixin):
     """Active-inference reaching agent; see the module docstring for the model.
 
     Build it with :meth:`from_env`. It reads only the env's static
@@ -316,7 +317,6 @@ class ArmAgent:
         self._buffers()
         # Encoder terms have constant Jacobians: precompute their curvature.
         self._sel = [slice(k * n, (k + 1) * n) for k in range(p + 1)]
-        self._channel_names = ["joint_angle", "joint_velocity", "camera", "motor", "goal"]
         self._fault_threshold = {}
         self._fault_alpha = 1.0 - np.exp(-self.dt / float(opts["fault_window_s"]))
         w_eff = max(1.0, 2.0 / self._fault_alpha - 1.0)  # effective samples of the EWMA
@@ -461,18 +461,6 @@ class ArmAgent:
         self._target_velocity = self._target_steps.sum(axis=0) / (
             min(self._target_count, w) * self.dt
         )
-
-    def predict(
-        self,
-        observation: Mapping[str, Any],
-        state: Any = None,
-        episode_start: Any = None,
-        deterministic: bool = True,
-    ) -> tuple[np.ndarray, Any]:
-        """Stable-baselines3 style: ``(action, state)``; resets where ``episode_start``."""
-        if episode_start is not None and bool(np.any(episode_start)):
-            self.reset()
-        return self.act(observation), state
 
     def _safe_stop(self, reason: str) -> np.ndarray:
         self._safe_stop_reason = reason

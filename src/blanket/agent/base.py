@@ -58,6 +58,7 @@ from typing import Any
 import numpy as np
 from scipy.linalg import expm
 
+from blanket.agent._policy import PredictMixin
 from blanket.base_description import BaseDescription
 from blanket.body.diff_drive import DiffDriveModel, polar_coordinates, pose_rate, wrap_angle
 from blanket.errors import ConfigError
@@ -219,7 +220,7 @@ OPTION_DEFAULTS: dict[str, Any] = {
 }
 
 
-class BaseAgent:
+class BaseAgent(PredictMixin):
     """Active-inference controller for ``blanket/base-goto-v0`` (see the module docstring).
 
     Parameters
@@ -654,18 +655,6 @@ class BaseAgent:
         """Perceive, then act: returns ``(left, right)`` wheel speeds in rad/s (float32)."""
         self.perceive(obs)
         return self._update_action().astype(np.float32)
-
-    def predict(
-        self,
-        obs: dict[str, Any],
-        state: Any = None,
-        episode_start: Any = None,
-        deterministic: bool = True,
-    ) -> tuple[np.ndarray, Any]:
-        """Policy call in stable-baselines3 style; resets the belief where ``episode_start``."""
-        if episode_start is not None and bool(np.any(episode_start)):
-            self.reset()
-        return self.act(obs), state
 
     def diagnostics(self) -> dict[str, Any]:
         """Internal state for logs: belief, belief_sd, free_energy, errors and precisions."""
