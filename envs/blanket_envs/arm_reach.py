@@ -26,7 +26,7 @@ from blanket.errors import ConfigError
 from blanket.sensors.camera import PointCamera, look_at, opengl_matrices, pinhole_camera
 from blanket.sensors.encoders import JointEncoders
 from blanket.sim.arm_world import CONTROL_MODES, ArmWorld
-from blanket.sim.robots import BUILTIN_ROBOTS, builtin_robot, default_home
+from blanket.sim.robots import builtin_robot, default_home
 from blanket.sim.urdf_limits import read_joint_limits
 from blanket_envs.greenhouse import (
     TARGET_ABOVE_CELL_M,
@@ -692,7 +692,3 @@ class PlanarReachEnv(ArmReachEnv):
 
     def _sample_target(self) -> np.ndarray:
         return self._random_reachable_point(min_height=-np.inf, min_radius=self.MIN_TARGET_RADIUS_M)
-
-
-# Names a user may want from this module without reaching into blanket.sim.
-BUILTIN_ROBOT_NAMES = tuple(BUILTIN_ROBOTS)

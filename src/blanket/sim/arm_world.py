@@ -294,24 +294,6 @@ class ArmWorld:
         state = self.client.getLinkState(self.robot, self.tip_link, computeForwardKinematics=True)
         return np.array(state[4], dtype=float)
 
-    def link_position(self, link_name: str) -> np.ndarray:
-        """World position of a link's URDF frame origin, m."""
-        index = {v: k for k, v in self._link_names.items()}[link_name]
-        if index == -1:
-            return np.array(self.client.getBasePositionAndOrientation(self.robot)[0])
-        state = self.client.getLinkState(self.robot, index, computeForwardKinematics=True)
-        return np.array(state[4], dtype=float)
-
-    def all_joint_angles(self) -> list[float]:
-        """Angles of every movable pybullet joint (controlled and held), pybullet order."""
-        c = self.client
-        movable = [
-            j
-            for j in range(c.getNumJoints(self.robot))
-            if c.getJointInfo(self.robot, j)[2] != pybullet.JOINT_FIXED
-        ]
-        return [c.getJointState(self.robot, j)[0] for j in movable]
-
     def tip_positions_for(self, angles_rad: np.ndarray) -> np.ndarray:
         """Tool-tip positions for many joint configurations, shape (m, 3).
 

@@ -77,11 +77,6 @@ class ParameterSpec:
     text: str = ""
 
     @property
-    def is_range(self) -> bool:
-        """True for ``lin:``/``log:`` specs."""
-        return self.scale in ("lin", "log")
-
-    @property
     def numeric(self) -> bool:
         """True when every value is a number (so plots can use a numeric axis)."""
         return all(isinstance(v, int | float) and not isinstance(v, bool) for v in self.values)
