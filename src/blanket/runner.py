@@ -99,11 +99,14 @@ def run_episode(
     # Without a log, only the free energy and the safe-stop flag are needed, and agents that
     # expose them as properties (ArmAgent) skip building the full diagnostics.
     light = writer is None and hasattr(agent, "free_energy") and hasattr(agent, "safe_stop")
+    numbers_only = False
     if writer is not None and diagnostics is not None:
-        # The writer copies every value, so an agent that can hand out views saves a copy.
+        # The writer copies every value, so an agent that can hand out views saves a copy;
+        # such views hold numbers only, so they skip the filtering of strings too.
         try:
             if "copy" in inspect.signature(diagnostics).parameters:
                 diagnostics = functools.partial(diagnostics, copy=False)
+                numbers_only = True
         except (TypeError, ValueError):
             pass
     dt = 1.0 / float(env.unwrapped.metadata.get("control_hz", 0) or _control_hz(env))
@@ -150,9 +153,9 @@ def run_episode(
                 step,
                 step * dt,
                 external=external,
-                sensory=dict(obs),
+                sensory=obs if type(obs) is dict else _sensory_group(obs),
                 active=active_group(action, info),
-                internal=_loggable(diag) if diag is not None else None,
+                internal=None if diag is None else diag if numbers_only else _loggable(diag),
             )
         obs = next_obs
         step += 1
@@ -204,6 +207,13 @@ def _external_group(info: Mapping[str, Any]) -> dict[str, Any]:
         if key in info:
             external[key] = info[key]
     return external
+
+
+def _sensory_group(obs: Any) -> dict[str, Any]:
+    """The ``sensory.*`` group of an observation that is not a plain dict."""
+    if isinstance(obs, Mapping):
+        return dict(obs)
+    return {"observation": np.asarray(obs)}
 
 
 def _control_hz(env: Any) -> float:

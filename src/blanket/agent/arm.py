@@ -53,6 +53,7 @@ Newton step turns ``inv(M)`` into ``M``: ``tau = M(q) q''_wanted + h(q, q')``.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping, Sequence
 from math import factorial
 from typing import Any
@@ -353,6 +354,8 @@ class ArmAgent(PredictMixin):
         }
         self._fault = {k: np.zeros_like(v, dtype=bool) for k, v in self._fault_stat.items()}
         self._diag: dict[str, Any] = {}
+        self._error_view: dict[str, np.ndarray] = {}
+        self._error_view_layout: tuple[int, bool, bool, bool] | None = None
         self._lazy_errors = False
         self._safe_stop_reason = ""
         self._last_finite_q = np.zeros(self.n)
@@ -1140,8 +1143,8 @@ class ArmAgent(PredictMixin):
         Keys: ``belief`` (order+1, n), ``belief_sd`` (order+1, n), ``free_energy``,
         ``prediction_error`` (per channel), ``precision`` (per channel), ``fault`` (per
         channel), ``safe_stop`` and ``safe_stop_reason``. With ``copy=False`` the arrays are
-        views of the agent's buffers, valid until the next :meth:`act` (what a log writer
-        that copies them anyway wants).
+        views of the agent's buffers, valid until the next :meth:`act`, and only numbers are
+        given (no ``safe_stop_reason``): what a log writer that copies them anyway wants.
         """
         if not copy:
             return self._diagnostics_view()
@@ -1159,17 +1162,30 @@ class ArmAgent(PredictMixin):
         return out
 
     def _diagnostics_view(self) -> dict[str, Any]:
+        # Numbers only (the safe-stop reason, a string, is left out): a log writer takes it
+        # as it is.
         p1, n = self.order + 1, self.n
-        out: dict[str, Any] = dict(self._diag)
-        if self._lazy_errors and "prediction_error" not in out:
-            errors = {k: self._err[k] for k in ("joint_angle", "joint_velocity")}
-            if self._pm > 0:
-                errors["motor"] = self._err["motor"]
-            if self._goal_mode:
-                errors["goal"] = self._err["goal"]
-            if self.camera is not None:
-                errors["camera"] = self._err["camera"] if self._cam_on else self._nan2
-            out["prediction_error"] = errors
+        diag = self._diag
+        out: dict[str, Any] = {
+            "free_energy": diag.get("free_energy", math.nan),
+            "safe_stop": bool(diag.get("safe_stop")) or bool(self._safe_stop_reason),
+        }
+        if self._lazy_errors:
+            # views of the error buffers the kernel updates in place: built once per layout
+            layout = (id(self._err), self._cam_on, self._pm > 0, bool(self._goal_mode))
+            if self._error_view_layout != layout:
+                err = self._err
+                errors = {k: err[k] for k in ("joint_angle", "joint_velocity")}
+                if self._pm > 0:
+                    errors["motor"] = err["motor"]
+                if self._goal_mode:
+                    errors["goal"] = err["goal"]
+                if self.camera is not None:
+                    errors["camera"] = err["camera"] if self._cam_on else self._nan2
+                self._error_view, self._error_view_layout = errors, layout
+            out["prediction_error"] = self._error_view
+        elif "prediction_error" in diag:
+            out["prediction_error"] = diag["prediction_error"]
         if self._belief is not None:
             out["belief"] = self._belief.reshape(p1, n)
             out["belief_sd"] = np.sqrt(np.diagonal(self._cov)).reshape(p1, n)
@@ -1177,7 +1193,6 @@ class ArmAgent(PredictMixin):
             # Constant precisions are run metadata (see precision_summary), not per-step data.
             out["precision"] = self.precision
             out["fault"] = self._fault
-        out.setdefault("safe_stop", bool(self._safe_stop_reason))
         return out
 
     def precision_summary(self) -> dict[str, list[float]]:
