@@ -38,12 +38,73 @@ def _load() -> str:
     return f"load average {one:.2f} {five:.2f} {fifteen:.2f} on {os.cpu_count()} cores"
 
 
+def _timed_alone(barrier, results, name: str, episode_s: float, n_seeds: int) -> None:
+    """In a fresh process: warm up, wait for the others, time one 1-worker sweep."""
+    os.environ.update({"OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1"})
+    scenario = Scenario(
+        env="blanket/planar-2link-v0", env_options={"episode_s": episode_s}, name="ceiling"
+    )
+    tmp = Path(tempfile.mkdtemp(prefix="blanket-bench-ceiling-"))
+    try:
+        run_sweep(
+            scenario,
+            [parse_vary("agent.order=2")],
+            seeds=[0],
+            out_dir=tmp / "warm",
+            progress=False,
+            plots=False,
+            workers=1,
+        )
+        barrier.wait()
+        t0 = time.perf_counter()
+        run_sweep(
+            scenario,
+            [parse_vary(v) for v in VARY],
+            seeds=list(range(n_seeds)),
+            out_dir=tmp / "run",
+            progress=False,
+            plots=False,
+            workers=1,
+        )
+        results[name] = time.perf_counter() - t0
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+
+
+def machine_ceiling(episode_s: float, n_seeds: int, cores: int) -> float:
+    """The most ``cores`` processes can gain on this machine for this very work: the same
+    1-worker sweep alone, then in ``cores`` processes at once (no pool, no start-up in the
+    timed part); returns ``cores * t_alone / t_slowest_of_the_group``."""
+    import multiprocessing
+
+    ctx = multiprocessing.get_context("spawn")
+    with ctx.Manager() as manager:
+        times = manager.dict()
+
+        def run(names: list[str]) -> list[float]:
+            barrier = ctx.Barrier(len(names))
+            procs = [
+                ctx.Process(target=_timed_alone, args=(barrier, times, n, episode_s, n_seeds))
+                for n in names
+            ]
+            for p in procs:
+                p.start()
+            for p in procs:
+                p.join()
+            return [times[n] for n in names]
+
+        alone = run(["alone"])[0]
+        together = run([f"together-{k}" for k in range(cores)])
+    return cores * alone / max(together)
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--episode-s", type=float, default=2.0)
     ap.add_argument("--seeds", type=int, default=5)
-    ap.add_argument("--repeat", type=int, default=2, help="rounds; the best time is kept")
+    ap.add_argument("--repeat", type=int, default=3, help="rounds; the best time is kept")
     ap.add_argument("--no-ray", action="store_true")
+    ap.add_argument("--no-ceiling", action="store_true", help="skip the machine-ceiling run")
     args = ap.parse_args()
 
     scenario = Scenario(
@@ -98,6 +159,14 @@ def main() -> None:
         print(f"{cores} workers (process pool):    {tn:7.1f} s   speed-up {t1 / tn:.2f}x")
         same = _same(r1.table, rn.table)
         print(f"  identical metrics to 1 worker: {same}")
+        per_round = sorted(a / b for a, b in zip(t1s, tns, strict=True))
+        print(f"  per-round speed-ups: {', '.join(f'{r:.2f}' for r in per_round)}")
+        if not args.no_ceiling:
+            ceiling = machine_ceiling(args.episode_s, args.seeds, cores)
+            print(
+                f"machine ceiling for this work: {ceiling:.2f}x ({cores} independent 1-worker "
+                f"sweeps at once vs one alone); the pool reaches {t1 / tn / ceiling:.0%} of it"
+            )
         if not args.no_ray:
             try:
                 import ray

@@ -244,6 +244,51 @@ def test_sweep_two_workers_equal_one_worker_and_writes_outputs(tmp_path):
     assert len(Journal(two.out_dir / JOURNAL).read()) == 4
 
 
+def test_pool_fork_server_warm_up_loads_the_compiled_kernel():
+    # A fresh interpreter, as the fork server is: importing the preload module leaves the
+    # agent's numba kernel loaded (one overload), so forked workers skip that cost.
+    code = (
+        "import blanket.tune._preload; from blanket.agent import _kernel; "
+        "print(len(_kernel.perception_step.overloads))"
+    )
+    out = subprocess.run(
+        [sys.executable, "-c", code], capture_output=True, text=True, timeout=120, check=True
+    )
+    assert out.stdout.strip().splitlines()[-1] == "1"
+
+
+def test_pool_and_this_process_share_the_trials_once_each(tmp_path):
+    # While the pool starts, this process runs trials from the back of the queue; every
+    # trial runs exactly once and gives the numbers of the in-process engine.
+    from blanket.tune.engines import InProcessEngine, LocalEngine
+    from blanket.tune.search import trial_key
+
+    scenario = {
+        "env": "blanket/planar-2link-v0",
+        "env_options": {"episode_s": 0.3},
+        "agent": {},
+        "name": "share",
+    }
+    payloads = [
+        {
+            "index": i,
+            "key": trial_key({"agent.camera_precision": c}),
+            "scenario": scenario,
+            "overrides": {"agent.camera_precision": c},
+            "seeds": [0],
+            "condition": None,
+        }
+        for i, c in enumerate([0.01, 0.03, 0.1, 0.3, 1.0, 3.0, 10.0, 30.0])
+    ]
+    with InProcessEngine() as engine:
+        alone = {r["index"]: r["metrics"] for r in engine.imap(payloads)}
+    with LocalEngine(2) as engine:
+        shared = list(engine.imap(payloads))
+    assert sorted(r["index"] for r in shared) == list(range(8))
+    assert {r["index"]: r["metrics"] for r in shared} == alone
+    assert len({r["timing"]["pid"] for r in shared}) >= 2  # the pool took part
+
+
 def test_sweep_on_env_option_and_line_plot(tmp_path):
     res = _sweep(
         tmp_path, "noise", vary=["env_options.camera_noise_px=0.5,8"], seeds=[0], workers=1

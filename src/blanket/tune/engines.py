@@ -50,12 +50,17 @@ _PRELOAD = (
     "pandas",
     "gymnasium",
     "pybullet",
+    "pinocchio",
+    "numba",
     "blanket.runner",
     "blanket.agent",
     "blanket.agent.arm",
     "blanket.wrappers",
     "blanket_envs.arm_reach",
     "blanket.tune.engines",
+    "blanket.tune.space",
+    "blanket.bench.conditions",
+    "blanket.tune._preload",  # loads the compiled kernel once, for every worker
 )
 
 
@@ -120,6 +125,13 @@ def _cached_env(env_id: str, env_options: Mapping[str, Any]) -> Any:
         env = make_env(env_id, env_options)
         _ENV_CACHE[key] = env
     return env
+
+
+def _drop_env_cache() -> None:
+    """Close the env this process keeps for trials (its pybullet connection)."""
+    for env in _ENV_CACHE.values():
+        env.close()
+    _ENV_CACHE.clear()
 
 
 def with_safety(env: Any) -> Any:
@@ -219,6 +231,7 @@ def evaluate_trial(payload: Mapping[str, Any]) -> dict[str, Any]:
         "agent_step_us": summary.get("agent_step_us"),
         "sim_step_us": summary.get("sim_step_us"),
         "pid": os.getpid(),
+        "started_unix_s": time.time() - (time.perf_counter() - t0),
     }
     return out
 
@@ -237,7 +250,7 @@ class InProcessEngine:
             yield evaluate_trial(p)
 
     def close(self) -> None:
-        _ENV_CACHE.clear()
+        _drop_env_cache()
 
     def __enter__(self) -> InProcessEngine:
         return self
@@ -257,7 +270,8 @@ def _init_worker() -> None:
 
 
 class LocalEngine:
-    """A pool of ``workers`` spawned processes on this machine (default: all cores).
+    """A pool of ``workers`` spawned processes on this machine (default: all cores); this
+    process runs trials too while the workers start (see :meth:`imap`).
 
     Parameters
     ----------
@@ -266,6 +280,7 @@ class LocalEngine:
     """
 
     name = "local"
+    help_while_starting = True
 
     def __init__(self, workers: int | None = None) -> None:
         import multiprocessing
@@ -289,14 +304,62 @@ class LocalEngine:
         )
 
     def imap(self, payloads: Iterable[Mapping[str, Any]]) -> Iterator[dict[str, Any]]:
-        """Results in the order trials finish."""
+        """Results in the order trials finish.
+
+        Starting the workers takes a second or two (the fork server imports numpy, pybullet
+        and blanket before the first worker can fork). Until the workers exist, this process
+        runs trials itself, so that time is not lost; from then on it only feeds the pool
+        (``workers`` processes, as asked).
+        Each trial is the same pure function wherever it runs, so the numbers do not depend
+        on where it ran.
+        """
+        import threading
+        from collections import deque
         from concurrent.futures import FIRST_COMPLETED, wait
         from concurrent.futures.process import BrokenProcessPool
 
-        pending = {self._pool.submit(evaluate_trial, dict(p)) for p in payloads}
+        queue = deque(dict(p) for p in payloads)
+        pending: set[Any] = set()
+        lock = threading.Lock()
+        started = threading.Event()
+        failure: list[BaseException] = []
+
+        def top_up() -> None:  # a little ahead of the workers, so none waits for work
+            while len(pending) < 2 * self.workers:
+                try:
+                    payload = queue.popleft()  # atomic: this process takes from the back
+                except IndexError:
+                    return
+                future = self._pool.submit(evaluate_trial, payload)
+                with lock:
+                    pending.add(future)
+
+        def start() -> None:
+            # The first submit blocks until the fork server has imported everything: do it
+            # on a thread, so this process runs trials in the meantime.
+            try:
+                top_up()
+            except BaseException as exc:  # re-raised below, on the caller's thread
+                failure.append(exc)
+            finally:
+                started.set()
+
+        threading.Thread(target=start, name="blanket-pool-start", daemon=True).start()
+        booting = self.help_while_starting
         try:
+            while booting and not started.is_set():
+                try:
+                    payload = queue.pop()
+                except IndexError:
+                    break
+                yield evaluate_trial(payload)
+            started.wait()
+            if failure:
+                raise failure[0]
             while pending:
-                done, pending = wait(pending, return_when=FIRST_COMPLETED)
+                done, rest = wait(pending, return_when=FIRST_COMPLETED)
+                pending.clear()
+                pending.update(rest)
                 for fut in done:
                     try:
                         yield fut.result()
@@ -305,12 +368,15 @@ class LocalEngine:
                             "a sweep worker process died; a script that calls run_sweep must "
                             "guard its top level with `if __name__ == '__main__':`"
                         ) from None
+                top_up()
         finally:
+            started.wait()
             for fut in pending:
                 fut.cancel()
 
     def close(self) -> None:
         self._pool.shutdown(wait=True, cancel_futures=True)
+        _drop_env_cache()
         for k, v in self._saved.items():
             if v is None:
                 os.environ.pop(k, None)

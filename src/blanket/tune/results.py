@@ -14,7 +14,7 @@ Layout of ``--out DIR``::
                        seed.success, seed.time_to_success_s, seed.final_error_m
                                              lists aligned with ``seeds``
                        timing.wall_s, timing.cpu_s, timing.agent_step_us, timing.sim_step_us,
-                       timing.worker_pid
+                       timing.worker_pid, timing.started_unix_s (when the trial started)
                                              measured, not reproducible: kept out of metric.*
     best.toml        the best trial's scenario, ready for ``blanket run best.toml``
     objective.png    heatmap (two names) or line plots (one or more names) of the objective
@@ -184,7 +184,7 @@ def records_table(records: Sequence[Mapping[str, Any]], names: Sequence[str]) ->
             None if v is None else float(v) for v in per["time_to_success_s"]
         ]
         row["seed.final_error_m"] = [float(v) for v in per["final_error_m"]]
-        for k in ("wall_s", "cpu_s", "agent_step_us", "sim_step_us", "pid"):
+        for k in ("wall_s", "cpu_s", "agent_step_us", "sim_step_us", "pid", "started_unix_s"):
             v = rec.get("timing", {}).get(k)
             col = "timing.worker_pid" if k == "pid" else f"timing.{k}"
             row[col] = math.nan if v is None else float(v)
