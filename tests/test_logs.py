@@ -309,6 +309,43 @@ def test_buffers_grow_without_max_steps_and_keys_may_come_and_go(tmp_path: Path)
     assert frame.loc[99, "sensory.count"] == 99.0 and frame.loc[100, "sensory.count"] == 100.5
 
 
+def test_new_keys_mid_episode_keep_every_earlier_value_in_place(tmp_path: Path) -> None:
+    # A key that first appears in an early group (external) after later groups hold arrays
+    # moves those groups' places in the row buffer; every value must stay with its column.
+    with RunWriter(tmp_path / "r", {"joint_names": JOINTS}) as w:
+        w.begin_episode(0, max_steps=8)
+        for k in range(12):  # beyond max_steps: one doubling after the new keys
+            external = {"joint_angle_rad": np.array([k, 10.0 + k])}
+            if k >= 5:
+                external["push_force_n"] = np.array([k, -k, 2.0 * k])
+                external["payload_kg"] = 0.1 * k
+            internal = {"belief": np.full((2, 2), float(k)), "free_energy": -float(k)}
+            if k >= 7:
+                internal["prediction_error"] = {"camera": np.array([k, k + 0.5])}
+            w.record(
+                k,
+                0.01 * k,
+                external=external,
+                sensory={"tip_pixel_px": np.array([k, 2.0 * k])},
+                active={"action": np.array([-k, -2.0 * k])},
+                internal=internal,
+            )
+        w.end_episode()
+    f = read_run(tmp_path / "r")
+    ks = np.arange(12.0)
+    np.testing.assert_array_equal(f["external.joint_angle_rad.elbow"], 10.0 + ks)
+    np.testing.assert_array_equal(f["sensory.tip_pixel_px.v"], 2.0 * ks)
+    np.testing.assert_array_equal(f["active.action.elbow"], -2.0 * ks)
+    np.testing.assert_array_equal(f["internal.belief.order1.elbow"], ks)
+    np.testing.assert_array_equal(f["internal.free_energy"], -ks)
+    push = f["external.push_force_n.y"]
+    assert push[:5].isna().all() and np.array_equal(push[5:], -ks[5:])
+    assert f["external.payload_kg"][:5].isna().all()
+    np.testing.assert_allclose(f["external.payload_kg"][5:], 0.1 * ks[5:])
+    cam = f["internal.prediction_error.camera.v"]
+    assert cam[:7].isna().all() and np.array_equal(cam[7:], ks[7:] + 0.5)
+
+
 @pytest.mark.parametrize(
     ("value", "message"),
     [
