@@ -38,6 +38,19 @@ def _load() -> str:
     return f"load average {one:.2f} {five:.2f} {fifteen:.2f} on {os.cpu_count()} cores"
 
 
+def _warm_up(scenario: Scenario, out_dir: Path) -> None:
+    """Load the imports and compiled kernels of this process with a one-trial sweep."""
+    run_sweep(
+        scenario,
+        [parse_vary("agent.order=2")],
+        seeds=[0],
+        out_dir=out_dir,
+        progress=False,
+        plots=False,
+        workers=1,
+    )
+
+
 def _timed_alone(barrier, results, name: str, episode_s: float, n_seeds: int) -> None:
     """In a fresh process: warm up, wait for the others, time one 1-worker sweep."""
     os.environ.update({"OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1"})
@@ -46,15 +59,7 @@ def _timed_alone(barrier, results, name: str, episode_s: float, n_seeds: int) ->
     )
     tmp = Path(tempfile.mkdtemp(prefix="blanket-bench-ceiling-"))
     try:
-        run_sweep(
-            scenario,
-            [parse_vary("agent.order=2")],
-            seeds=[0],
-            out_dir=tmp / "warm",
-            progress=False,
-            plots=False,
-            workers=1,
-        )
+        _warm_up(scenario, tmp / "warm")
         barrier.wait()
         t0 = time.perf_counter()
         run_sweep(
@@ -135,15 +140,7 @@ def main() -> None:
 
     try:
         # warm the imports and compiled kernels of this process (the 1-worker reference)
-        run_sweep(
-            scenario,
-            [parse_vary("agent.order=2")],
-            seeds=[0],
-            out_dir=tmp / "warm",
-            progress=False,
-            plots=False,
-            workers=1,
-        )
+        _warm_up(scenario, tmp / "warm")
         # the machine may be shared: alternate the two runs and keep each one's best time
         t1s, tns = [], []
         for k in range(args.repeat):
