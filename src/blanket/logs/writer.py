@@ -654,15 +654,11 @@ class RunWriter:
         self._sync(final)
         self._written.add(episode)
         self._episode = None
-        units = {
-            f.name: f.metadata[b"unit"].decode()
-            for f in table.schema
-            if f.metadata and b"unit" in f.metadata
-        }
+        units = json.loads(table.schema.metadata[META_UNITS])
         if not units.items() <= self._run_json["units"].items():
             self._run_json["units"].update(units)
             self._write_run_json()
-        self._reset_buffers(0)
+        # The buffers are kept until the next begin_episode replaces them (no reallocation here).
         return final
 
     def discard_episode(self) -> None:
