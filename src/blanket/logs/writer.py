@@ -94,14 +94,18 @@ def _commit(path: Path) -> None:
     _fsync_dir(path.parent)
 
 
-def _write_bytes_atomically(path: Path, data: bytes) -> None:
+def _write_bytes_atomically(path: Path, data: bytes, durable: bool = True) -> None:
+    """Replace ``path`` whole through a hidden temporary; ``durable`` fsyncs the file before
+    the rename and the folder after it (else the caller commits it, see ``_commit``)."""
     tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
     with open(tmp, "wb") as handle:
         handle.write(data)
-        handle.flush()
-        os.fsync(handle.fileno())
+        if durable:
+            handle.flush()
+            os.fsync(handle.fileno())
     os.replace(tmp, path)
-    _fsync_dir(path.parent)
+    if durable:
+        _fsync_dir(path.parent)
 
 
 def _getter(names: list[str]) -> Any:
@@ -744,14 +748,12 @@ class RunWriter:
     def _write_run_json(self) -> None:
         text = to_json(self._run_json, indent=2) + "\n"
         path = self.run_dir / "run.json"
-        if not path.exists():  # the first version: committed before the run starts
-            _write_bytes_atomically(path, text.encode())
-            return
-        # An update (units of new columns): replaced whole, committed in the background.
-        tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
-        tmp.write_bytes(text.encode())
-        os.replace(tmp, path)
-        self._sync(path)
+        # The first version is committed before the run starts; an update (units of new
+        # columns) is committed in the background, like the episode files.
+        first = not path.exists()
+        _write_bytes_atomically(path, text.encode(), durable=first)
+        if not first:
+            self._sync(path)
 
     def _reset_buffers(self, capacity: int) -> None:
         self._rows = 0

@@ -119,9 +119,7 @@ def _cached_env(env_id: str, env_options: Mapping[str, Any]) -> Any:
     key = json.dumps([env_id, dict(env_options)], sort_keys=True, default=str)
     env = _ENV_CACHE.get(key)
     if env is None:
-        for old in _ENV_CACHE.values():
-            old.close()
-        _ENV_CACHE.clear()
+        _drop_env_cache()
         env = make_env(env_id, env_options)
         _ENV_CACHE[key] = env
     return env
@@ -280,7 +278,6 @@ class LocalEngine:
     """
 
     name = "local"
-    help_while_starting = True
 
     def __init__(self, workers: int | None = None) -> None:
         import multiprocessing
@@ -319,8 +316,7 @@ class LocalEngine:
         from concurrent.futures.process import BrokenProcessPool
 
         queue = deque(dict(p) for p in payloads)
-        pending: set[Any] = set()
-        lock = threading.Lock()
+        pending: set[Any] = set()  # the start thread's until ``started``, then this thread's
         started = threading.Event()
         failure: list[BaseException] = []
 
@@ -330,9 +326,7 @@ class LocalEngine:
                     payload = queue.popleft()  # atomic: this process takes from the back
                 except IndexError:
                     return
-                future = self._pool.submit(evaluate_trial, payload)
-                with lock:
-                    pending.add(future)
+                pending.add(self._pool.submit(evaluate_trial, payload))
 
         def start() -> None:
             # The first submit blocks until the fork server has imported everything: do it
@@ -345,9 +339,8 @@ class LocalEngine:
                 started.set()
 
         threading.Thread(target=start, name="blanket-pool-start", daemon=True).start()
-        booting = self.help_while_starting
         try:
-            while booting and not started.is_set():
+            while not started.is_set():
                 try:
                     payload = queue.pop()
                 except IndexError:
@@ -357,9 +350,7 @@ class LocalEngine:
             if failure:
                 raise failure[0]
             while pending:
-                done, rest = wait(pending, return_when=FIRST_COMPLETED)
-                pending.clear()
-                pending.update(rest)
+                done, pending = wait(pending, return_when=FIRST_COMPLETED)
                 for fut in done:
                     try:
                         yield fut.result()
