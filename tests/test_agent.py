@@ -177,6 +177,8 @@ def test_diverging_belief_triggers_safe_stop(planar_env):
     d = agent.diagnostics()
     assert d["safe_stop"] and "exploded" in d["safe_stop_reason"]
     np.testing.assert_array_equal(a, np.zeros(2))
+    # the log view then reports the kept belief's spread, not the rejected step's
+    np.testing.assert_allclose(agent.diagnostics(copy=False)["belief_sd"], d["belief_sd"])
 
 
 @pytest.mark.parametrize("control", ["velocity", "torque"])
@@ -196,6 +198,19 @@ def test_compiled_step_equals_numpy_step(control, goal):
             np.testing.assert_allclose(fast.belief, slow.belief, rtol=1e-9, atol=1e-10)
             assert fast.diagnostics()["free_energy"] == pytest.approx(
                 slow.diagnostics()["free_energy"], rel=1e-9, abs=1e-8
+            )
+            # the log view's standard deviations (filled by the kernel, or by numpy on the
+            # numpy path) are those of the copied diagnostics
+            for agent in (fast, slow):
+                np.testing.assert_allclose(
+                    agent.diagnostics(copy=False)["belief_sd"],
+                    agent.diagnostics()["belief_sd"],
+                    rtol=1e-12,
+                )
+            np.testing.assert_allclose(
+                fast.diagnostics(copy=False)["belief_sd"],
+                slow.diagnostics(copy=False)["belief_sd"],
+                rtol=1e-8,
             )
             obs, *_ = env.step(a_fast)
     finally:

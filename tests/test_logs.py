@@ -17,6 +17,7 @@ import signal
 import subprocess
 import sys
 import textwrap
+import time
 from pathlib import Path
 
 import gymnasium as gym
@@ -31,6 +32,7 @@ from blanket.errors import ConfigError
 from blanket.logs import LogError, RunWriter, open_dataset, read_metadata, read_run
 from blanket.logs.cli import add_inspect_parser, add_plot_parser, run_inspect
 from blanket.logs.inspect import inspect_text, summarize_run
+from blanket.logs.journal import journal_path, write_journal
 from blanket.logs.schema import SCHEMA_VERSION, component_labels, unit_for_key
 from blanket.wrappers import Recorder
 
@@ -421,10 +423,30 @@ _CHILD = textwrap.dedent(
     import os, sys, time
     import numpy as np
     from blanket.logs import RunWriter
+    import blanket.logs.journal as journal_module
     import blanket.logs.writer as writer_module
 
     mode = sys.argv[2]
     w = RunWriter(sys.argv[1], {"scenario": "kill-test", "joint_names": ["shoulder", "elbow"]})
+    real_replace, real_write_episode = os.replace, journal_module.write_episode
+
+    def stuck_rename(src, dst):  # the journal of episode 2 is complete but not renamed
+        if str(dst).endswith(".episode-00002.journal.arrow"):
+            print("READY", flush=True)
+            time.sleep(120)
+        return real_replace(src, dst)
+
+    def stuck_encoding(table, final, compression):  # episode 2 is only in its journal
+        if final.name == "episode-00002.parquet":
+            print("READY", flush=True)
+            time.sleep(120)
+        return real_write_episode(table, final, compression)
+
+    if mode == "renaming":
+        journal_module.os.replace = stuck_rename
+    if mode == "encoding":  # without the encoder process: on the writer's own thread
+        writer_module._ENCODER[:] = [False, os.getpid()]
+        journal_module.write_episode = stuck_encoding
     for ep in range(3):
         w.begin_episode(ep)
         for k in range(200):
@@ -434,18 +456,20 @@ _CHILD = textwrap.dedent(
             if ep == 2 and k == 100 and mode == "recording":
                 print("READY", flush=True)
                 time.sleep(120)
-        if ep == 2 and mode == "renaming":
-            def stuck(src, dst):
-                print("READY", flush=True)
-                time.sleep(120)
-            writer_module.os.replace = stuck
         w.end_episode()
+    # encoder, encoder-too: killed right after end_episode(2) returned
+    print("READY", writer_module._ENCODER[0]._proc.pid, flush=True)
+    time.sleep(120)
     """
 )
 
 
-@pytest.mark.parametrize("mode", ["recording", "renaming"])
+@pytest.mark.parametrize("mode", ["recording", "renaming", "encoding", "encoder", "encoder-too"])
 def test_sigkill_mid_episode_keeps_finished_episodes(tmp_path: Path, mode: str) -> None:
+    """recording: killed while episode 2 records; renaming: killed with episode 2's complete
+    journal not yet renamed; encoding: killed after end_episode(2) returned, its Parquet file
+    not yet encoded (the journal holds it); encoder: killed right after end_episode(2), the
+    encoder process finishes the file alone; encoder-too: both processes killed then."""
     script = tmp_path / "child.py"
     script.write_text(_CHILD)
     run_dir = tmp_path / "run"
@@ -455,27 +479,80 @@ def test_sigkill_mid_episode_keeps_finished_episodes(tmp_path: Path, mode: str) 
         stderr=subprocess.PIPE,
         text=True,
     )
+    encoder_pid = None
     try:
-        line = proc.stdout.readline()
-        assert line.strip() == "READY", proc.stderr.read()
+        words = proc.stdout.readline().split()
+        assert words and words[0] == "READY", proc.stderr.read()
         os.kill(proc.pid, signal.SIGKILL)
+        if mode.startswith("encoder"):
+            encoder_pid = int(words[1])
+            if mode == "encoder-too":
+                os.kill(encoder_pid, signal.SIGKILL)
         proc.wait(timeout=30)
     finally:
         if proc.poll() is None:
             proc.kill()
     assert proc.returncode == -signal.SIGKILL
-    names = sorted(p.name for p in (run_dir / "episodes").iterdir())
-    visible = [n for n in names if not n.startswith(".")]
-    assert visible == ["episode-00000.parquet", "episode-00001.parquet"]
-    if mode == "renaming":  # the complete temporary of episode 2 is left, hidden
-        assert len(names) == 3 and names[0].startswith(".episode-00002.parquet.")
-    frame = read_run(run_dir)
-    assert sorted(set(frame.episode)) == [0, 1] and len(frame) == 400
+    if encoder_pid is not None:  # it exits once its task stream closes
+        for _ in range(600):
+            try:
+                os.kill(encoder_pid, 0)
+            except ProcessLookupError:
+                break
+            time.sleep(0.05)
+        else:
+            pytest.fail("the encoder process did not exit after the writer was killed")
+    episodes = run_dir / "episodes"
+    finished = 3 if mode in ("encoding", "encoder", "encoder-too") else 2
+    names = sorted(p.name for p in episodes.iterdir())
+    # every finished episode is there, as a Parquet file or (hidden) as its journal
+    for ep in range(finished):
+        assert {f"episode-{ep:05d}.parquet", f".episode-{ep:05d}.journal.arrow"} & set(names)
+    if mode == "encoding":
+        assert ".episode-00002.journal.arrow" in names
+        assert "episode-00002.parquet" not in names
+    if mode == "encoder":  # the encoder finished every file on its own
+        assert [n for n in names if not n.startswith(".episode-spare")] == [
+            f"episode-{ep:05d}.parquet" for ep in range(3)
+        ]
+    if mode == "renaming":  # the complete temporary of episode 2's journal is left, hidden
+        assert [n for n in names if "00002" in n] == [
+            n for n in names if n.startswith(".episode-00002.journal.arrow.")
+        ]
+        assert len([n for n in names if "00002" in n]) == 1
+    frame = read_run(run_dir)  # finishes the journals first
+    assert sorted(set(frame.episode)) == list(range(finished)) and len(frame) == 200 * finished
     np.testing.assert_array_equal(
-        frame["external.joint_angle_rad.elbow"], np.repeat([0.0, 1.0], 200)
+        frame["external.joint_angle_rad.elbow"], np.repeat(np.arange(finished, dtype=float), 200)
     )
-    assert ds.dataset(run_dir / "episodes", format="parquet").count_rows() == 400
-    assert open_dataset(run_dir).count_rows() == 400
+    np.testing.assert_array_equal(frame["step"], np.tile(np.arange(200), finished))
+    after = sorted(p.name for p in episodes.iterdir() if not p.name.startswith("."))
+    assert after == [f"episode-{ep:05d}.parquet" for ep in range(finished)]
+    assert not list(episodes.glob("*.journal.arrow"))
+    assert ds.dataset(episodes, format="parquet").count_rows() == 200 * finished
+    assert open_dataset(run_dir).count_rows() == 200 * finished
+
+
+def test_journal_finished_by_a_reader_matches_the_writer(tmp_path: Path) -> None:
+    """A journal finished by a reader gives the same Parquet bytes as the writer's own."""
+    write_demo_run(tmp_path / "run", episodes=2, steps=40)
+    episodes = tmp_path / "run" / "episodes"
+    expected = (episodes / "episode-00001.parquet").read_bytes()
+    table = pq.read_table(episodes / "episode-00001.parquet")
+    (episodes / "episode-00001.parquet").unlink()
+    write_journal(table, journal_path(episodes / "episode-00001.parquet"), "snappy")
+    assert len(read_run(tmp_path / "run")) == 80
+    assert (episodes / "episode-00001.parquet").read_bytes() == expected
+    assert sorted(p.name for p in episodes.iterdir()) == [
+        "episode-00000.parquet",
+        "episode-00001.parquet",
+    ]
+
+
+def test_unreadable_journal_is_a_one_line_error(tmp_path: Path) -> None:
+    write_demo_run(tmp_path / "run", episodes=1, steps=10)
+    (tmp_path / "run" / "episodes" / ".episode-00001.journal.arrow").write_bytes(b"not arrow")
+    _one_line_log_error(tmp_path / "run", r"\.episode-00001\.journal\.arrow: unreadable")
 
 
 # --------------------------------------------------------------------------- errors
@@ -722,3 +799,92 @@ def test_arrays_are_copied_so_callers_may_reuse_them(tmp_path: Path) -> None:
         w.end_episode()
     frame = read_run(tmp_path / "r")
     np.testing.assert_array_equal(frame["internal.belief.order1.elbow"], [1, 2, 3, 4, 5])
+
+
+def test_arrays_of_any_dtype_or_memory_order_keep_their_values(tmp_path: Path) -> None:
+    """The fast row copy joins raw bytes; rows whose arrays are not native C-ordered float64
+    must still store the numbers, not reinterpreted bits."""
+    base = np.array([[1.5, -2.0], [3.25, 4.0]])
+    rows = [
+        base,  # float64, C order: the layout
+        base.astype(np.float32),  # 4-byte floats: half the bytes
+        np.array([[1, 2], [3, 4]], dtype=np.int64),  # 8 bytes each, not float bits
+        np.asfortranarray(base),  # other memory order
+        base.astype(">f8"),  # big-endian doubles
+        np.arange(8.0).reshape(2, 4)[:, ::2],  # a strided view
+        np.array([[True, False], [False, True]]),
+        base * 2,  # float64 again
+    ]
+    with RunWriter(tmp_path / "r", {"joint_names": JOINTS}) as w:
+        w.begin_episode(0)
+        for k, value in enumerate(rows):
+            w.record(
+                k,
+                k * 0.1,
+                external={"joint_angle_rad": value[0].copy()},
+                sensory={"tip_pixel_px": np.array([float(k), 0.0])},
+                active={},
+                internal={"belief": value},
+            )
+        w.end_episode()
+    frame = read_run(tmp_path / "r")
+    for k, value in enumerate(rows):
+        expected = np.asarray(value, dtype=float)
+        got = frame.loc[k, [f"internal.belief.order{i}.{j}" for i in (0, 1) for j in JOINTS]]
+        np.testing.assert_array_equal(got.to_numpy(float), expected.reshape(-1))
+        np.testing.assert_array_equal(
+            frame.loc[k, [f"external.joint_angle_rad.{j}" for j in JOINTS]].to_numpy(float),
+            expected[0],
+        )
+    np.testing.assert_array_equal(frame["sensory.tip_pixel_px.u"], np.arange(len(rows)))
+
+
+def test_journal_reuses_a_larger_spare_file_and_reads_back_exactly(tmp_path: Path) -> None:
+    from blanket.logs.journal import finish_journal, spare_path
+
+    folder = tmp_path / "episodes"
+    folder.mkdir()
+    spare = spare_path(folder)
+    big = pa.table({"episode": np.zeros(500, np.int64), "x": np.arange(500.0)})
+    small = pa.table({"episode": np.ones(3, np.int64), "x": np.array([7.0, 8.0, 9.0])})
+    big_final, small_final = folder / "episode-00000.parquet", folder / "episode-00001.parquet"
+    write_journal(big, journal_path(big_final), "snappy", spare)
+    finish_journal(big, journal_path(big_final), big_final, "snappy", spare)
+    assert spare.is_file() and not journal_path(big_final).exists()
+    spare_size = spare.stat().st_size
+    write_journal(small, journal_path(small_final), "snappy", spare)  # overwrites the spare
+    assert not spare.exists()
+    assert journal_path(small_final).stat().st_size < spare_size  # cut to its own length
+    with pa.memory_map(str(journal_path(small_final))) as source:
+        assert pa.ipc.open_file(source).read_all().equals(small)
+    assert pq.read_table(big_final).equals(big)
+
+
+def test_episodes_survive_the_encoder_process_dying(tmp_path: Path) -> None:
+    """The encoder process killed mid-run: its episodes are finished from their journals by
+    the writer, which then encodes on its own thread."""
+    import blanket.logs.writer as writer_module
+
+    try:
+        with RunWriter(tmp_path / "r", {"joint_names": JOINTS}) as w:
+            for ep in range(4):
+                w.begin_episode(ep)
+                for k in range(50):
+                    w.record(
+                        k, k * 0.1, external={"a_m": float(ep * 100 + k)}, sensory={}, active={}
+                    )
+                w.end_episode()
+                if ep == 1:
+                    encoder = writer_module._ENCODER[0]
+                    assert encoder and encoder.alive()
+                    os.kill(encoder._proc.pid, signal.SIGKILL)
+                    encoder._proc.wait(timeout=30)
+        names = sorted(p.name for p in (tmp_path / "r" / "episodes").iterdir())
+        assert names == [f"episode-{ep:05d}.parquet" for ep in range(4)]
+        frame = read_run(tmp_path / "r")
+        np.testing.assert_array_equal(
+            frame["external.a_m"], [ep * 100 + k for ep in range(4) for k in range(50)]
+        )
+        assert writer_module._ENCODER[0] is False  # not restarted
+    finally:
+        writer_module._ENCODER[:] = [None, 0]

@@ -191,10 +191,21 @@ def run_episode(
 def active_group(action: Any, info: Mapping[str, Any]) -> dict[str, Any]:
     """The ``active.*`` log group: the command sent and, behind a safety wrapper, the command
     it let through (``info["action_applied"]`` of the step that executed it)."""
-    group: dict[str, Any] = {"action": np.asarray(action, dtype=float)}
-    if "action_applied" in info:
-        group["action_applied"] = np.asarray(info["action_applied"], dtype=float)
+    group: dict[str, Any] = {"action": _as_float_array(action)}
+    applied = info.get("action_applied")
+    if applied is not None:
+        group["action_applied"] = _as_float_array(applied)
     return group
+
+
+def _as_float_array(value: Any) -> np.ndarray:
+    # the usual case, a float64 array, as it is (the log writer copies it)
+    if type(value) is np.ndarray and value.dtype is _FLOAT64:
+        return value
+    return np.asarray(value, dtype=float)
+
+
+_FLOAT64 = np.dtype(np.float64)
 
 
 _INFO_TRUTH_KEYS = ("distance_m", "success", "inside_tolerance", "contact", "heading_error_rad")

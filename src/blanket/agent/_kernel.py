@@ -107,6 +107,7 @@ def perception_step(  # pragma: no cover - compiled
     err_m,
     err_c,
     err_g,
+    sd_out,
     work,
     velocity_limit,
 ):
@@ -116,7 +117,8 @@ def perception_step(  # pragma: no cover - compiled
     attractor prior (torque control).
     ``attractor_params = (k, vmax, lambda^2, k_null, weighting_on)``.
     ``intrinsics = (fx, fy, cx, cy)``. ``pm <= 0`` disables the efference-copy term.
-    ``work`` is an (N, 4N) scratch buffer. A belief velocity above ``velocity_limit`` returns
+    ``sd_out`` receives the posterior standard deviations ``sqrt(diag(cov_out))`` (for the
+    logs). ``work`` is an (N, 4N) scratch buffer. A belief velocity above ``velocity_limit`` returns
     ``EXPLODED``; a non-finite belief or energy ``NOT_FINITE``.
     """
     n = yq.shape[0]
@@ -326,6 +328,7 @@ def perception_step(  # pragma: no cover - compiled
         for j in range(N):
             s += cov_out[i, j] * grad[j]
         z_out[i] = zp[i] - s
+        sd_out[i] = np.sqrt(cov_out[i, i])
         if not np.isfinite(z_out[i]):
             return NOT_FINITE, energy
         if n <= i < 2 * n and abs(z_out[i]) > vmax_belief:

@@ -356,6 +356,10 @@ class ArmAgent(PredictMixin):
         self._diag: dict[str, Any] = {}
         self._error_view: dict[str, np.ndarray] = {}
         self._error_view_layout: tuple[int, bool, bool, bool] | None = None
+        # belief_sd of the diagnostics view: one buffer, refilled per call
+        self._sd_flat = np.zeros(self.size)
+        self._sd_fresh = False
+        self._sd_view = self._sd_flat.reshape(self.order + 1, self.n)
         self._lazy_errors = False
         self._safe_stop_reason = ""
         self._last_finite_q = np.zeros(self.n)
@@ -382,6 +386,7 @@ class ArmAgent(PredictMixin):
         for k in range(2, p + 1):
             var[self._sel[k]] = 10.0 ** (2 * k)
         self._cov = np.diag(var)
+        self._sd_fresh = False
         self._home = q.copy()
         self._last_finite_q = q.copy()
         self._action = v.copy() if self.control == "velocity" else np.zeros(n)
@@ -664,6 +669,7 @@ class ArmAgent(PredictMixin):
 
         self._belief = z
         self._cov = cov
+        self._sd_fresh = False
         self._last_finite_q = z[:n]
         action = self._action_update(z)
         self._action = action
@@ -773,9 +779,11 @@ class ArmAgent(PredictMixin):
             err["motor"],
             err["camera"],
             err["goal"],
+            self._sd_flat,
             self._work,
             float(self.options["divergence_limit"]),
         )
+        self._sd_fresh = status == _kernel.OK
         if status == _kernel.NOT_FINITE:
             return self._safe_stop("belief or free energy is not finite")
         if status == _kernel.EXPLODED:
@@ -1143,8 +1151,9 @@ class ArmAgent(PredictMixin):
         Keys: ``belief`` (order+1, n), ``belief_sd`` (order+1, n), ``free_energy``,
         ``prediction_error`` (per channel), ``precision`` (per channel), ``fault`` (per
         channel), ``safe_stop`` and ``safe_stop_reason``. With ``copy=False`` the arrays are
-        views of the agent's buffers, valid until the next :meth:`act`, and only numbers are
-        given (no ``safe_stop_reason``): what a log writer that copies them anyway wants.
+        views of the agent's buffers, valid until the next :meth:`act` or ``copy=False``
+        call, and only numbers are given (no ``safe_stop_reason``): what a log writer that
+        copies them anyway wants.
         """
         if not copy:
             return self._diagnostics_view()
@@ -1188,7 +1197,9 @@ class ArmAgent(PredictMixin):
             out["prediction_error"] = diag["prediction_error"]
         if self._belief is not None:
             out["belief"] = self._belief.reshape(p1, n)
-            out["belief_sd"] = np.sqrt(np.diagonal(self._cov)).reshape(p1, n)
+            if not self._sd_fresh:  # (the kernel fills it on every completed step)
+                np.sqrt(self._cov.diagonal(), out=self._sd_flat)
+            out["belief_sd"] = self._sd_view
         if self._precision_changing:
             # Constant precisions are run metadata (see precision_summary), not per-step data.
             out["precision"] = self.precision

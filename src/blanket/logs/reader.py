@@ -5,7 +5,8 @@
 metadata. Every file is checked first: a foreign Parquet file, a truncated or corrupt file,
 a file from a newer major schema version, or a folder without episodes raises a one-line
 :class:`~blanket.logs.schema.LogError`. Hidden files (the writer's temporaries, names
-starting with ``.``) are never read.
+starting with ``.``) are never read as episodes; complete journals a killed writer left
+behind are first finished into their episode files (see :mod:`blanket.logs.journal`).
 """
 
 from __future__ import annotations
@@ -21,6 +22,7 @@ import pyarrow as pa
 import pyarrow.dataset as ds
 import pyarrow.parquet as pq
 
+from blanket.logs.journal import finish_journals
 from blanket.logs.schema import (
     INDEX_COLUMNS,
     META_EPISODE,
@@ -62,6 +64,7 @@ def episode_files(path: str | os.PathLike[str]) -> list[Path]:
     if not path.is_dir():
         raise LogError(f"{path}: no such file or folder")
     folder = path / "episodes" if (path / "episodes").is_dir() else path
+    finish_journals(folder)  # episodes a killed writer left in journals (see journal.py)
     files = sorted(
         p
         for p in folder.iterdir()
