@@ -154,7 +154,7 @@ def runner_loop(rounds: int, episodes: int) -> bool:
       writer, the agent's diagnostics view, the runner's group building) against the rest of
       the same loop. Both parts run interleaved, step by step, so a change of machine speed
       between rounds (seen here: +-40 % on a shared VM) affects both alike.
-    * A/B: rounds without logging and with it (no stopwatch), alternating (ABBA), fastest
+    * A/B: rounds without logging and with it (no stopwatch), in rotating order, fastest
       of each compared. It also sees indirect costs (caches, the background thread). The
       fastest of 16 rounds is stable here (an A/A comparison of two plain series agreed to
       0.1 %) where means and medians of rounds scatter by +-15 %.
@@ -173,7 +173,7 @@ def runner_loop(rounds: int, episodes: int) -> bool:
     env = with_safety(make_env(scenario.env, scenario.env_options))
     agent = ArmAgent.from_env(env)
     meta = _run_metadata(scenario, env, 0)
-    plain, logged, shares = [], [], []
+    plain, plain_2, logged, shares = [], [], [], []
     parts: dict[str, int] = {}
     calls = [0]
     original = (runner._external_group, runner.active_group, agent.diagnostics)
@@ -219,11 +219,14 @@ def runner_loop(rounds: int, episodes: int) -> bool:
         encoder = writer_module._encoder()
         cpu_before = encoder.cpu_s if encoder is not None else 0.0
         for r in range(rounds):
-            # ABC CBA: plain, logged, logged under the stopwatch
-            order = ("plain", "logged", "watched") if r % 2 == 0 else ("watched", "logged", "plain")
-            for kind in order:
+            # each kind in each position equally often (a change of machine speed within a
+            # round then favours none of them)
+            kinds = ("plain", "logged", "watched", "plain-2")
+            for kind in kinds[r % 4 :] + kinds[: r % 4]:
                 if kind == "plain":
                     plain.append(timed(r, None))
+                elif kind == "plain-2":  # an A/A control: the noise floor of the A/B
+                    plain_2.append(timed(r, None))
                 elif kind == "logged":
                     logged.append(timed(r, Path(tmp) / f"run-{r}", watched=False))
                 else:
@@ -272,10 +275,17 @@ def runner_loop(rounds: int, episodes: int) -> bool:
         f"A/B: fastest round        {t_plain / steps * 1e6:.1f} us/step without, "
         f"{t_logged / steps * 1e6:.1f} us/step with logging (no stopwatch)"
     )
+    aa = abs(1.0 - min(plain) / min(plain_2))
     print(
         f"  overhead                {ab * 100:.1f} % of the loop with recording on "
         f"({(t_logged / t_plain - 1) * 100:.1f} % added to the loop without; second-fastest "
         f"rounds {ab2 * 100:.1f} %)"
+    )
+    print(f"  A/A control             {aa * 100:.1f} % between two plain series (the noise floor)")
+    rest = min(t - s for s, t in shares)  # the fastest watched round outside the logging calls
+    print(
+        f"  indirect                {(rest - t_plain) / steps * 1e6:+.1f} us/step: the loop "
+        "outside the logging calls (fastest watched round) against the plain loop"
     )
     share = spent / total
     ok = share <= 0.10 and ab <= 0.10

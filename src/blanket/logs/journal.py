@@ -243,11 +243,11 @@ class Encoder:
     """A helper process that turns journals into Parquet files, so that the encoding costs
     the control loop neither its thread nor the GIL.
 
-    A thread in the same process would: measured here, a thread writing Parquet files slowed
-    the iiwa loop by 33 %, a process doing the same by 12 % (the second core's share of the
-    machine), while it runs. The process is this module run as a script (pyarrow only, no
-    blanket imports), in its own session (a Ctrl-C of the run's process group does not stop
-    it mid-file); it reads tasks, one JSON line each, from its stdin and answers each on its
+    A thread in the same process would: measured here, a thread writing Parquet files
+    continuously slowed the iiwa loop by 33 %, another process doing the same by 12 %. The
+    process is this module run as a script (pyarrow only, no blanket imports), at idle CPU
+    priority, in its own session (a Ctrl-C of the run's process group does not stop it
+    mid-file); it reads tasks, one JSON line each, from its stdin and answers each on its
     stdout; it finishes what it has been sent and exits when its stdin closes, also when the
     run's process was killed. Journals it has not finished remain for the readers.
     """
@@ -346,12 +346,29 @@ class Encoder:
             future.set_exception(self._dead())
 
 
+def _yield_to_the_loop() -> None:
+    """Run the encoder only on CPU time the control loop leaves idle.
+
+    ``SCHED_IDLE`` (Linux; else the lowest nice level): the encoder never takes a CPU from
+    the loop. When the machine has no idle CPU, the writer's bound on pending episodes makes
+    the loop wait for the encoder instead of piling up journals.
+    """
+    try:
+        os.sched_setscheduler(0, os.SCHED_IDLE, os.sched_param(0))
+    except (AttributeError, OSError):
+        try:
+            os.nice(19)
+        except (AttributeError, OSError):  # pragma: no cover
+            pass
+
+
 def _serve() -> None:
     """The encoder process: one task per stdin line, one answer per stdout line."""
     import json
     import sys
     import time
 
+    _yield_to_the_loop()
     orphaned = False
     for line in sys.stdin.buffer:
         task = json.loads(line)

@@ -4,6 +4,8 @@ A run folder holds::
 
     RUN_DIR/run.json                        run metadata (the only place for wall-clock fields)
     RUN_DIR/episodes/episode-00000.parquet  one Parquet file per finished episode
+    RUN_DIR/episodes/.episode-00000.journal.arrow  (hidden) an ended episode not yet encoded,
+                                            see blanket.logs.journal
     RUN_DIR/summary.json, RUN_DIR/figures/  written beside them by the runner and the plotter
 
 Columns
