@@ -888,3 +888,37 @@ def test_episodes_survive_the_encoder_process_dying(tmp_path: Path) -> None:
         assert writer_module._ENCODER[0] is False  # not restarted
     finally:
         writer_module._ENCODER[:] = [None, 0]
+
+
+@pytest.mark.parametrize("durable", [False, True])
+def test_episode_files_are_committed_per_episode_only_when_durable(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, durable: bool
+) -> None:
+    """fsync per episode file with durable=True; otherwise once per file at close."""
+    import blanket.logs.journal as journal_module
+    import blanket.logs.writer as writer_module
+
+    synced: list[str] = []
+    real_commit = journal_module.commit
+
+    def counting_commit(path: Path) -> None:
+        synced.append(Path(path).name)
+        real_commit(path)
+
+    # on the writer's thread (the encoder process cannot be observed from here)
+    monkeypatch.setattr(writer_module, "_ENCODER", [False, os.getpid()])
+    monkeypatch.setattr(journal_module, "commit", counting_commit)
+    monkeypatch.setattr(writer_module, "commit", counting_commit)
+    w = RunWriter(tmp_path / "r", {"joint_names": JOINTS}, durable=durable)
+    for ep in range(3):
+        w.begin_episode(ep)
+        w.record(0, 0.0, external={"a_m": 1.0}, sensory={}, active={})
+        w.end_episode()
+    w.flush()
+    before_close = [n for n in synced if n.endswith(".parquet")]
+    w.close()
+    files = [f"episode-{ep:05d}.parquet" for ep in range(3)]
+    assert sorted(before_close) == (files if durable else [])
+    assert sorted(n for n in synced if n.endswith(".parquet")) == files
+    assert "run.json" in synced or durable  # durable: committed when first written
+    assert len(read_run(tmp_path / "r")) == 3

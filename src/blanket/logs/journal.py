@@ -35,6 +35,7 @@ __all__ = [
     "finish_journals",
     "Encoder",
     "EncoderStopped",
+    "remove_temporaries",
 ]
 
 JOURNAL_SUFFIX = ".journal.arrow"
@@ -162,10 +163,15 @@ def write_episode(table: pa.Table, final: Path, compression: str) -> None:
 
 
 def finish_journal(
-    table: pa.Table, journal: Path, final: Path, compression: str, spare: Path | None = None
+    table: pa.Table,
+    journal: Path,
+    final: Path,
+    compression: str,
+    spare: Path | None = None,
+    durable: bool = True,
 ) -> None:
     """The background half of ``end_episode``: Parquet file, journal removed (kept as the
-    ``spare`` file for the next journal when given), committed."""
+    ``spare`` file for the next journal when given), committed to the disk if ``durable``."""
     write_episode(table, final, compression)
     try:
         if spare is not None:
@@ -174,7 +180,8 @@ def finish_journal(
             journal.unlink()
     except FileNotFoundError:
         pass  # a reader finished it meanwhile
-    commit(final)
+    if durable:
+        commit(final)
 
 
 def read_journal(journal: Path) -> tuple[pa.Table, str]:
@@ -186,7 +193,9 @@ def read_journal(journal: Path) -> tuple[pa.Table, str]:
     return table, meta.get(_META_COMPRESSION, b"snappy").decode()
 
 
-def finish_journal_file(journal: Path, final: Path, spare: Path | None = None) -> None:
+def finish_journal_file(
+    journal: Path, final: Path, spare: Path | None = None, durable: bool = True
+) -> None:
     """:func:`finish_journal` for a journal on disk (what the encoder process does)."""
     try:
         table, compression = read_journal(journal)
@@ -236,7 +245,20 @@ def finish_journals(folder: Path) -> list[Path]:
 
 
 class EncoderStopped(OSError):
-    """The encoder process is gone; the episodes sent to it are in their journals."""
+    """The encoder process is gone; the episodes sent to it are in their journals.
+
+    ``pid`` is the process's id: the hidden temporaries it may have left carry it.
+    """
+
+    def __init__(self, message: str, pid: int = 0) -> None:
+        super().__init__(message)
+        self.pid = pid
+
+
+def remove_temporaries(folder: Path, pid: int) -> None:
+    """Remove the hidden temporaries a (dead) process ``pid`` left in ``folder``."""
+    for path in folder.glob(f".*.{pid}-*.tmp"):
+        path.unlink(missing_ok=True)
 
 
 class Encoder:
@@ -270,7 +292,7 @@ class Encoder:
         self._reader = threading.Thread(target=self._read, name="blanket-encoder", daemon=True)
         self._reader.start()
 
-    def submit(self, journal: Path, final: Path, spare: Path | None) -> Any:
+    def submit(self, journal: Path, final: Path, spare: Path | None, durable: bool = True) -> Any:
         """Send one task; the returned future completes when the Parquet file is committed."""
         import json
         from concurrent.futures import Future
@@ -284,6 +306,7 @@ class Encoder:
             self._futures[task_id] = future
         task = {"id": task_id, "journal": str(journal), "final": str(final)}
         task["spare"] = None if spare is None else str(spare)
+        task["durable"] = durable
         try:
             self._proc.stdin.write(json.dumps(task).encode() + b"\n")
             self._proc.stdin.flush()
@@ -318,7 +341,9 @@ class Encoder:
                 pass
         lines = err.decode(errors="replace").strip().splitlines()
         why = lines[-1] if lines else f"exit code {self._proc.returncode}"
-        return EncoderStopped(f"the log encoder process stopped ({why}); the journals remain")
+        return EncoderStopped(
+            f"the log encoder process stopped ({why}); the journals remain", self._proc.pid
+        )
 
     def _read(self) -> None:
         import json
@@ -376,7 +401,10 @@ def _serve() -> None:
         try:
             spare = task.get("spare")
             finish_journal_file(
-                Path(task["journal"]), Path(task["final"]), None if spare is None else Path(spare)
+                Path(task["journal"]),
+                Path(task["final"]),
+                None if spare is None else Path(spare),
+                bool(task.get("durable", True)),
             )
             error = None
         except Exception as exc:  # reported to the writer, which raises it

@@ -6,15 +6,17 @@ Each episode is held in buffers preallocated on ``begin_episode`` (``max_steps``
 C-level copy per row, so the values are copied and may be reused by the caller) and a list
 slot for the tuple of its scalars (immutable numbers). ``end_episode`` turns them into one
 Arrow table, typed back per column (int64 and bool where the values allow), stores it as a
-complete journal file and returns; a background thread writes the Parquet file (a hidden
-temporary in the same folder, renamed with :func:`os.replace`), removes the journal and
-commits the file to the disk (fsync of the file and of the folder). See
-:mod:`blanket.logs.journal`: a killed process never leaves a partial file under a visible
-name, every ended episode survives it (a reader finishes a left-over journal), and readers
-(ours, ``pyarrow.dataset``, pandas) skip the dot-files. :meth:`RunWriter.close` and
-:meth:`RunWriter.flush` wait for the background work. Only a power loss in the milliseconds
+complete journal file and returns; the encoder process (else a background thread) writes
+the Parquet file (a hidden temporary in the same folder, renamed with :func:`os.replace`)
+and removes the journal. See :mod:`blanket.logs.journal`: a killed process never leaves a
+partial file under a visible name, every ended episode survives it (a reader finishes a
+left-over journal), and readers (ours, ``pyarrow.dataset``, pandas) skip the dot-files.
+:meth:`RunWriter.close` and :meth:`RunWriter.flush` wait for the background work; ``close``
+commits the files to the disk (fsync of each file and the folder). With ``durable=True``
+every episode file is committed as it is written, and only a power loss in the milliseconds
 between a rename and its commit can cost that episode (the file system may then keep an
-empty or short file, which the reader refuses).
+empty or short file, which the reader refuses); by default a power loss or OS crash can cost
+the episodes of the last ~30 s the OS had not written back yet.
 """
 
 from __future__ import annotations
@@ -42,6 +44,7 @@ from blanket.logs.journal import (
     finish_journals,
     fsync_dir,
     journal_path,
+    remove_temporaries,
     spare_path,
     write_journal,
 )
@@ -555,6 +558,12 @@ class RunWriter:
         Component names per key or key suffix, see :mod:`blanket.logs.schema`.
     compression : str
         Parquet compression codec (default ``"snappy"``; ``"zstd"`` writes smaller, slower).
+    durable : bool
+        Commit every episode file to the disk (fsync) as it is written, so that it survives
+        a power cut or an OS crash moments later. Off by default: files are committed when
+        the writer closes, and before that the OS writes them back within about 30 s; a
+        killed *process* loses nothing either way. On our VM an fsync slowed the control
+        steps that ran right after it (see DEVELOPERS.md).
 
     Examples
     --------
@@ -573,8 +582,10 @@ class RunWriter:
         overwrite: bool = False,
         component_names: Mapping[str, Sequence[str]] | None = None,
         compression: str = "snappy",
+        durable: bool = False,
     ) -> None:
         self.run_dir = Path(run_dir)
+        self._durable = bool(durable)
         self.episodes_dir = self.run_dir / "episodes"
         self._pending: list[Any] = []
         if self.run_dir.exists() and not self.run_dir.is_dir():
@@ -701,9 +712,17 @@ class RunWriter:
         # (else on the background thread).
         encoder = _encoder()
         if encoder is not None:
-            self._pending.append(encoder.submit(journal, final, self._spare))
+            self._pending.append(encoder.submit(journal, final, self._spare, self._durable))
         else:
-            self._submit(finish_journal, table, journal, final, self._compression, self._spare)
+            self._submit(
+                finish_journal,
+                table,
+                journal,
+                final,
+                self._compression,
+                self._spare,
+                self._durable,
+            )
         self._written.add(episode)
         self._episode = None
         units = json.loads(table.schema.metadata[META_UNITS])
@@ -720,7 +739,7 @@ class RunWriter:
 
     def close(self) -> None:
         """Write an open episode that has rows (an empty one is dropped), wait until every
-        episode file is committed to the disk, and close the run."""
+        episode file is written, commit them to the disk, and close the run."""
         if self._closed:
             return
         try:
@@ -733,11 +752,18 @@ class RunWriter:
             self._closed = True
             try:
                 self.flush()
+                if not self._durable:  # one commit of the whole run, at its end
+                    for episode in sorted(self._written):
+                        path = self.episodes_dir / episode_file_name(episode)
+                        if path.exists():
+                            commit(path)
+                    commit(self.run_dir / "run.json")
             finally:
                 self._spare.unlink(missing_ok=True)
 
     def flush(self) -> None:
-        """Wait until the episodes ended so far are Parquet files committed to the disk.
+        """Wait until the episodes ended so far are Parquet files (committed to the disk
+        too with ``durable=True``).
 
         Raises
         ------
@@ -747,9 +773,11 @@ class RunWriter:
         """
         pending, self._pending = self._pending, []
         failures = [f.exception() for f in pending]  # waits for every one
-        if any(isinstance(f, EncoderStopped) for f in failures):
-            # the encoder process died: its episodes are in their journals; finish them here
-            finish_journals(self.episodes_dir)
+        for failure in failures:
+            if isinstance(failure, EncoderStopped):
+                # the encoder process died: its episodes are in their journals; finish them
+                self._after_encoder_stopped(failure)
+        if failures:
             failures = [f for f in failures if not isinstance(f, EncoderStopped)]
         for failure in failures:
             if failure is not None:
@@ -776,9 +804,13 @@ class RunWriter:
             failure = self._pending.pop(0).exception()
             if isinstance(failure, EncoderStopped):
                 # the encoder process died: its episodes are in their journals; finish them
-                finish_journals(self.episodes_dir)
+                self._after_encoder_stopped(failure)
             elif failure is not None:
                 raise failure
+
+    def _after_encoder_stopped(self, failure: EncoderStopped) -> None:
+        remove_temporaries(self.episodes_dir, failure.pid)
+        finish_journals(self.episodes_dir)
 
     def _submit(self, fn: Any, *args: Any) -> None:
         """Run ``fn(*args)`` on the writer's background thread (in order, one at a time).
@@ -806,11 +838,12 @@ class RunWriter:
     def _write_run_json(self) -> None:
         text = to_json(self._run_json, indent=2) + "\n"
         path = self.run_dir / "run.json"
-        # The first version is committed before the run starts; an update (units of new
-        # columns) is committed in the background, like the episode files.
+        # With durable=True the first version is committed before the run starts and an
+        # update (units of new columns) in the background, like the episode files; else
+        # close() commits the last version.
         first = not path.exists()
-        _write_bytes_atomically(path, text.encode(), durable=first)
-        if not first:
+        _write_bytes_atomically(path, text.encode(), durable=first and self._durable)
+        if not first and self._durable:
             self._submit(commit, path)
 
     def _reset_buffers(self, capacity: int) -> None:
