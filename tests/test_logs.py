@@ -901,9 +901,9 @@ def test_episode_files_are_committed_per_episode_only_when_durable(
     synced: list[str] = []
     real_commit = journal_module.commit
 
-    def counting_commit(path: Path) -> None:
-        synced.append(Path(path).name)
-        real_commit(path)
+    def counting_commit(*paths: Path) -> None:
+        synced.extend(Path(p).name for p in paths)
+        real_commit(*paths)
 
     # on the writer's thread (the encoder process cannot be observed from here)
     monkeypatch.setattr(writer_module, "_ENCODER", [False, os.getpid()])
@@ -922,3 +922,20 @@ def test_episode_files_are_committed_per_episode_only_when_durable(
     assert sorted(n for n in synced if n.endswith(".parquet")) == files
     assert "run.json" in synced or durable  # durable: committed when first written
     assert len(read_run(tmp_path / "r")) == 3
+
+
+def test_encoder_task_commits_only_when_durable(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """What the encoder process runs per task (finish_journal_file) honours ``durable``."""
+    import blanket.logs.journal as journal_module
+
+    synced: list[str] = []
+    monkeypatch.setattr(journal_module, "commit", lambda *paths: synced.extend(map(str, paths)))
+    table = pa.table({"episode": np.zeros(4, np.int64), "x": np.arange(4.0)})
+    for ep, durable in enumerate((False, True)):
+        final = tmp_path / f"episode-{ep:05d}.parquet"
+        write_journal(table, journal_path(final), "snappy")
+        journal_module.finish_journal_file(journal_path(final), final, None, durable)
+        assert pq.read_table(final).equals(table) and not journal_path(final).exists()
+    assert synced == [str(tmp_path / "episode-00001.parquet")]

@@ -45,6 +45,7 @@ from blanket.logs.journal import (
     fsync_dir,
     journal_path,
     remove_temporaries,
+    replacing,
     spare_path,
     write_journal,
 )
@@ -134,13 +135,11 @@ def _encoder() -> Encoder | None:
 def _write_bytes_atomically(path: Path, data: bytes, durable: bool = True) -> None:
     """Replace ``path`` whole through a hidden temporary; ``durable`` fsyncs the file before
     the rename and the folder after it (else the caller commits it, see ``commit``)."""
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
-    with open(tmp, "wb") as handle:
+    with replacing(path) as tmp, open(tmp, "wb") as handle:
         handle.write(data)
         if durable:
             handle.flush()
             os.fsync(handle.fileno())
-    os.replace(tmp, path)
     if durable:
         fsync_dir(path.parent)
 
@@ -753,11 +752,8 @@ class RunWriter:
             try:
                 self.flush()
                 if not self._durable:  # one commit of the whole run, at its end
-                    for episode in sorted(self._written):
-                        path = self.episodes_dir / episode_file_name(episode)
-                        if path.exists():
-                            commit(path)
-                    commit(self.run_dir / "run.json")
+                    files = [self.episodes_dir / episode_file_name(e) for e in self._written]
+                    commit(*sorted(f for f in files if f.exists()), self.run_dir / "run.json")
             finally:
                 self._spare.unlink(missing_ok=True)
 
@@ -772,13 +768,7 @@ class RunWriter:
             kept, and a reader finishes it).
         """
         pending, self._pending = self._pending, []
-        failures = [f.exception() for f in pending]  # waits for every one
-        for failure in failures:
-            if isinstance(failure, EncoderStopped):
-                # the encoder process died: its episodes are in their journals; finish them
-                self._after_encoder_stopped(failure)
-        if failures:
-            failures = [f for f in failures if not isinstance(f, EncoderStopped)]
+        failures = [self._settle(f.exception()) for f in pending]  # waits for every one
         for failure in failures:
             if failure is not None:
                 raise failure
@@ -801,16 +791,18 @@ class RunWriter:
         """Raise the first failure of finished background work; wait for the oldest until at
         most ``limit`` items are pending."""
         while self._pending and (self._pending[0].done() or len(self._pending) > limit):
-            failure = self._pending.pop(0).exception()
-            if isinstance(failure, EncoderStopped):
-                # the encoder process died: its episodes are in their journals; finish them
-                self._after_encoder_stopped(failure)
-            elif failure is not None:
+            failure = self._settle(self._pending.pop(0).exception())
+            if failure is not None:
                 raise failure
 
-    def _after_encoder_stopped(self, failure: EncoderStopped) -> None:
+    def _settle(self, failure: BaseException | None) -> BaseException | None:
+        """The failure of one piece of background work, or None when there is none or it is
+        dealt with here: a stopped encoder process, whose episodes are in their journals."""
+        if not isinstance(failure, EncoderStopped):
+            return failure
         remove_temporaries(self.episodes_dir, failure.pid)
         finish_journals(self.episodes_dir)
+        return None
 
     def _submit(self, fn: Any, *args: Any) -> None:
         """Run ``fn(*args)`` on the writer's background thread (in order, one at a time).
