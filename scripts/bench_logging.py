@@ -7,6 +7,12 @@ calls within the same logged rounds (robust to machine-speed drift, with a break
 call) and an A/B comparison of the fastest rounds with and without logging (which also sees
 indirect costs).
 
+``--instructions``: the same runner loop counted in machine instructions under valgrind's
+cachegrind, with and without logging, as a ratio. Instruction counts do not depend on the
+machine's speed, so this estimate is free of the timing noise of a shared VM (it does not see
+cache misses or the encoder process, which runs beside the loop and is not traced). Needs
+``valgrind`` on the PATH (``apt-get install valgrind``); takes some minutes.
+
 ``--loop planar``: ``blanket/planar-2link-v0`` for N control steps with a proportional
 task-space controller (joint velocity = gain * J(q)^T (target - tip(q)), analytic planar
 kinematics, clipped to the action bounds), without and with ``RunWriter.record`` on every
@@ -17,12 +23,18 @@ Acceptance: logging is at most 10 % of the loop's time with recording on.
 Usage::
 
     python scripts/bench_logging.py [--loop runner|planar|both] [--rounds 16] [--pairs 40]
+    python scripts/bench_logging.py --instructions
 """
 
 from __future__ import annotations
 
 import argparse
 import functools
+import os
+import re
+import shutil
+import subprocess
+import sys
 import tempfile
 import time
 from pathlib import Path
@@ -348,6 +360,108 @@ def paired_episodes(pairs: int) -> None:
     )
 
 
+def _instruction_child(mode: str, episodes: int) -> None:
+    """The runner loop for ``episodes`` episodes (seeds 0, 1, ...), logged or not: the
+    program valgrind counts (see :func:`instruction_counts`)."""
+    from blanket.agent import ArmAgent
+    from blanket.runner import _run_metadata, run_episodes, with_safety
+    from blanket.scenario import Scenario, make_env
+
+    scenario = Scenario(
+        env="blanket/arm-reach-v0", env_options={"robot": "iiwa"}, name="bench-logging-ir"
+    )
+    env = with_safety(make_env(scenario.env, scenario.env_options))
+    agent = ArmAgent.from_env(env)
+    with tempfile.TemporaryDirectory() as tmp:
+        if mode == "logged":
+            with RunWriter(Path(tmp) / "run", _run_metadata(scenario, env, 0)) as writer:
+                run_episodes(env, agent, episodes, 0, writer=writer, progress=False)
+        else:
+            run_episodes(env, agent, episodes, 0, progress=False)
+    env.close()
+
+
+def _count(mode: str, episodes: int, tmp: str) -> subprocess.Popen:
+    out = Path(tmp) / f"cg.{mode}.{episodes}"
+    command = [
+        "valgrind",
+        "--tool=cachegrind",
+        "--cache-sim=no",
+        f"--cachegrind-out-file={out}",
+        sys.executable,
+        __file__,
+        "--instruction-child",
+        mode,
+        str(episodes),
+    ]
+    # a fixed hash seed: the same dict layouts, so the same instructions, in every run
+    environment = {**os.environ, "PYTHONHASHSEED": "0", "MPLBACKEND": "Agg"}
+    return subprocess.Popen(
+        command, env=environment, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True
+    )
+
+
+def instruction_counts(episodes: int) -> bool:
+    """Instructions per episode of the runner loop with and without logging.
+
+    Each configuration runs twice, for 1 and for ``1 + episodes`` episodes; the difference
+    removes start-up and the first (warm-up) episode, leaving ``episodes`` steady episodes.
+    Two runs go at a time (one per core). Returns whether logging is <= 10 % of the logged
+    loop's instructions.
+    """
+    if shutil.which("valgrind") is None:
+        print("--instructions needs valgrind on the PATH (apt-get install valgrind)")
+        return False
+    counts: dict[tuple[str, int], int] = {}
+    t0 = time.perf_counter()
+    with tempfile.TemporaryDirectory() as tmp:
+        # one uncounted run under valgrind first: numba sees valgrind's CPU model, not the
+        # machine's, so its first run under valgrind compiles the kernels and caches them
+        # (measured: otherwise the 1-episode runs, counted first, came out larger than the
+        # 3-episode runs)
+        warm_up = _count("plain", 1, tmp)
+        _, err = warm_up.communicate()
+        if warm_up.returncode != 0:
+            print(f"valgrind warm-up run failed:\n{err[-2000:]}")
+            return False
+        print(f"  warm-up run ({time.perf_counter() - t0:.0f} s)", flush=True)
+        jobs = [(m, n) for n in (1, 1 + episodes) for m in ("plain", "logged")]
+        for i in range(0, len(jobs), 2):
+            running = {job: _count(*job, tmp) for job in jobs[i : i + 2]}
+            for job, process in running.items():
+                _, err = process.communicate()
+                found = re.search(r"I\s+refs:\s+([\d,]+)", err)
+                if process.returncode != 0 or found is None:
+                    print(f"valgrind run {job} failed:\n{err[-2000:]}")
+                    return False
+                counts[job] = int(found.group(1).replace(",", ""))
+            print(
+                f"  counted {', '.join(f'{m} x{n}' for m, n in running)} "
+                f"({time.perf_counter() - t0:.0f} s so far)",
+                flush=True,
+            )
+    steps = episodes * 960
+    plain = (counts["plain", 1 + episodes] - counts["plain", 1]) / steps
+    logged = (counts["logged", 1 + episodes] - counts["logged", 1]) / steps
+    if plain <= 0 or logged <= 0:
+        print(f"inconsistent counts (a run did extra one-off work): {counts}")
+        return False
+    share = 1.0 - plain / logged
+    print(f"instructions (cachegrind), runner loop, {episodes} steady episodes after a warm-up")
+    print(f"  without logging         {plain / 1e3:.1f} k instructions/step")
+    print(f"  with logging            {logged / 1e3:.1f} k instructions/step")
+    print(
+        f"  overhead                {share * 100:.1f} % of the loop with recording on "
+        f"({(logged / plain - 1) * 100:.1f} % added to the loop without)"
+    )
+    ok = share <= 0.10
+    print(
+        f"acceptance (logging <= 10 % of the loop's instructions with recording on): "
+        f"{'PASS' if ok else 'FAIL'}"
+    )
+    return ok
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--steps", type=int, default=4800)
@@ -370,7 +484,19 @@ def main() -> None:
         default=0,
         help="also time N pairs of adjacent episodes without/with logging (runner loop)",
     )
+    parser.add_argument(
+        "--instructions",
+        action="store_true",
+        help="count the runner loop's instructions under valgrind instead of timing it",
+    )
+    parser.add_argument("--instruction-child", nargs=2, help=argparse.SUPPRESS)
     args = parser.parse_args()
+    if args.instruction_child:
+        _instruction_child(args.instruction_child[0], int(args.instruction_child[1]))
+        return
+    if args.instructions:
+        instruction_counts(args.episodes)
+        return
     if args.loop in ("runner", "both"):
         runner_loop(args.rounds, args.episodes)
         if args.pairs:
