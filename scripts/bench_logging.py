@@ -9,8 +9,9 @@ indirect costs).
 
 ``--instructions``: the same runner loop counted in machine instructions under valgrind's
 cachegrind, with and without logging, as a ratio. Instruction counts do not depend on the
-machine's speed, so this estimate is free of the timing noise of a shared VM (it does not see
-cache misses or the encoder process, which runs beside the loop and is not traced). Needs
+machine's speed, so this estimate is free of the timing noise of a shared VM (the counts
+still varied by ~2 % between runs here; it does not see cache misses or the encoder process,
+which runs beside the loop and is not traced). Needs
 ``valgrind`` on the PATH (``apt-get install valgrind``); takes some minutes.
 
 ``--loop planar``: ``blanket/planar-2link-v0`` for N control steps with a proportional
@@ -38,6 +39,7 @@ import sys
 import tempfile
 import time
 from pathlib import Path
+from typing import Any
 
 import gymnasium as gym
 import numpy as np
@@ -156,6 +158,18 @@ def _stopwatch_cost_ns() -> float:
     return watch.by_name["noop"] / 200_000
 
 
+def _iiwa_loop(name: str) -> tuple[Any, Any, dict[str, Any]]:
+    """The setup ``blanket demo`` runs: the iiwa reach env behind the safety wrapper, its
+    ArmAgent, and the run metadata a writer needs (scenario ``name``)."""
+    from blanket.agent import ArmAgent
+    from blanket.runner import _run_metadata, with_safety
+    from blanket.scenario import Scenario, make_env
+
+    scenario = Scenario(env="blanket/arm-reach-v0", env_options={"robot": "iiwa"}, name=name)
+    env = with_safety(make_env(scenario.env, scenario.env_options))
+    return env, ArmAgent.from_env(env), _run_metadata(scenario, env, 0)
+
+
 def runner_loop(rounds: int, episodes: int) -> bool:
     """The loop ``blanket demo`` runs (iiwa, ArmAgent, safety wrapper), with and without
     recording all four groups (the Parquet writes inside the timed region).
@@ -175,16 +189,9 @@ def runner_loop(rounds: int, episodes: int) -> bool:
     """
     import blanket.logs.writer as writer_module
     import blanket.runner as runner
-    from blanket.agent import ArmAgent
-    from blanket.runner import _run_metadata, run_episodes, with_safety
-    from blanket.scenario import Scenario, make_env
+    from blanket.runner import run_episodes
 
-    scenario = Scenario(
-        env="blanket/arm-reach-v0", env_options={"robot": "iiwa"}, name="bench-logging-runner"
-    )
-    env = with_safety(make_env(scenario.env, scenario.env_options))
-    agent = ArmAgent.from_env(env)
-    meta = _run_metadata(scenario, env, 0)
+    env, agent, meta = _iiwa_loop("bench-logging-runner")
     plain, plain_2, logged, shares = [], [], [], []
     parts: dict[str, int] = {}
     calls = [0]
@@ -247,7 +254,7 @@ def runner_loop(rounds: int, episodes: int) -> bool:
         if encoder is not None:
             background_s[0] = encoder.cpu_s - cpu_before
     env.close()
-    steps = episodes * 960
+    steps = episodes * env.unwrapped.max_steps
     t_plain, t_logged = min(plain), min(logged)
     t_plain2, t_logged2 = sorted(plain)[1], sorted(logged)[1]
     spent = sum(s for s, _ in shares)
@@ -313,17 +320,11 @@ def paired_episodes(pairs: int) -> None:
     its encoding finished before the next timing), alternating which comes first: the median
     of the per-pair ratios, with a bootstrap 95 % interval. Adjacent episodes see the same
     machine speed, which min-of-rounds comparisons cannot rely on here."""
-    from blanket.agent import ArmAgent
-    from blanket.runner import _run_metadata, run_episode, with_safety
-    from blanket.scenario import Scenario, make_env
+    from blanket.runner import run_episode
 
-    scenario = Scenario(
-        env="blanket/arm-reach-v0", env_options={"robot": "iiwa"}, name="bench-logging-pairs"
-    )
-    env = with_safety(make_env(scenario.env, scenario.env_options))
-    agent = ArmAgent.from_env(env)
+    env, agent, meta = _iiwa_loop("bench-logging-pairs")
     with tempfile.TemporaryDirectory() as tmp:
-        writer = RunWriter(Path(tmp) / "run", _run_metadata(scenario, env, 0))
+        writer = RunWriter(Path(tmp) / "run", meta)
         episode = [0]
 
         def one(logged: bool, seed: int) -> float:
@@ -362,23 +363,18 @@ def paired_episodes(pairs: int) -> None:
 
 def _instruction_child(mode: str, episodes: int) -> None:
     """The runner loop for ``episodes`` episodes (seeds 0, 1, ...), logged or not: the
-    program valgrind counts (see :func:`instruction_counts`)."""
-    from blanket.agent import ArmAgent
-    from blanket.runner import _run_metadata, run_episodes, with_safety
-    from blanket.scenario import Scenario, make_env
+    program valgrind counts (see :func:`instruction_counts`). Prints the steps it ran."""
+    from blanket.runner import run_episodes
 
-    scenario = Scenario(
-        env="blanket/arm-reach-v0", env_options={"robot": "iiwa"}, name="bench-logging-ir"
-    )
-    env = with_safety(make_env(scenario.env, scenario.env_options))
-    agent = ArmAgent.from_env(env)
+    env, agent, meta = _iiwa_loop("bench-logging-ir")
     with tempfile.TemporaryDirectory() as tmp:
         if mode == "logged":
-            with RunWriter(Path(tmp) / "run", _run_metadata(scenario, env, 0)) as writer:
-                run_episodes(env, agent, episodes, 0, writer=writer, progress=False)
+            with RunWriter(Path(tmp) / "run", meta) as writer:
+                results = run_episodes(env, agent, episodes, 0, writer=writer, progress=False)
         else:
-            run_episodes(env, agent, episodes, 0, progress=False)
+            results = run_episodes(env, agent, episodes, 0, progress=False)
     env.close()
+    print(f"steps {sum(r.steps for r in results)}")
 
 
 def _count(mode: str, episodes: int, tmp: str) -> subprocess.Popen:
@@ -397,8 +393,19 @@ def _count(mode: str, episodes: int, tmp: str) -> subprocess.Popen:
     # a fixed hash seed: the same dict layouts, so the same instructions, in every run
     environment = {**os.environ, "PYTHONHASHSEED": "0", "MPLBACKEND": "Agg"}
     return subprocess.Popen(
-        command, env=environment, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True
+        command, env=environment, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True
     )
+
+
+def _counted(process: subprocess.Popen, what: str) -> tuple[int, int] | None:
+    """Wait for one valgrind run: (instructions, steps), or None (and the error shown)."""
+    out, err = process.communicate()
+    instructions = re.search(r"I\s+refs:\s+([\d,]+)", err)
+    steps = re.search(r"^steps (\d+)$", out, re.MULTILINE)
+    if process.returncode != 0 or instructions is None or steps is None:
+        print(f"valgrind run {what} failed:\n{err[-2000:]}")
+        return None
+    return int(instructions.group(1).replace(",", "")), int(steps.group(1))
 
 
 def instruction_counts(episodes: int) -> bool:
@@ -412,37 +419,35 @@ def instruction_counts(episodes: int) -> bool:
     if shutil.which("valgrind") is None:
         print("--instructions needs valgrind on the PATH (apt-get install valgrind)")
         return False
-    counts: dict[tuple[str, int], int] = {}
+    counts: dict[tuple[str, int], tuple[int, int]] = {}
     t0 = time.perf_counter()
     with tempfile.TemporaryDirectory() as tmp:
         # one uncounted run under valgrind first: numba sees valgrind's CPU model, not the
         # machine's, so its first run under valgrind compiles the kernels and caches them
         # (measured: otherwise the 1-episode runs, counted first, came out larger than the
         # 3-episode runs)
-        warm_up = _count("plain", 1, tmp)
-        _, err = warm_up.communicate()
-        if warm_up.returncode != 0:
-            print(f"valgrind warm-up run failed:\n{err[-2000:]}")
+        if _counted(_count("plain", 1, tmp), "warm-up") is None:
             return False
         print(f"  warm-up run ({time.perf_counter() - t0:.0f} s)", flush=True)
         jobs = [(m, n) for n in (1, 1 + episodes) for m in ("plain", "logged")]
         for i in range(0, len(jobs), 2):
             running = {job: _count(*job, tmp) for job in jobs[i : i + 2]}
             for job, process in running.items():
-                _, err = process.communicate()
-                found = re.search(r"I\s+refs:\s+([\d,]+)", err)
-                if process.returncode != 0 or found is None:
-                    print(f"valgrind run {job} failed:\n{err[-2000:]}")
+                counted = _counted(process, f"{job[0]} x{job[1]}")
+                if counted is None:
                     return False
-                counts[job] = int(found.group(1).replace(",", ""))
+                counts[job] = counted
             print(
                 f"  counted {', '.join(f'{m} x{n}' for m, n in running)} "
                 f"({time.perf_counter() - t0:.0f} s so far)",
                 flush=True,
             )
-    steps = episodes * 960
-    plain = (counts["plain", 1 + episodes] - counts["plain", 1]) / steps
-    logged = (counts["logged", 1 + episodes] - counts["logged", 1]) / steps
+
+    def per_step(mode: str) -> float:
+        (i_1, s_1), (i_n, s_n) = counts[mode, 1], counts[mode, 1 + episodes]
+        return (i_n - i_1) / (s_n - s_1)
+
+    plain, logged = per_step("plain"), per_step("logged")
     if plain <= 0 or logged <= 0:
         print(f"inconsistent counts (a run did extra one-off work): {counts}")
         return False
@@ -491,6 +496,11 @@ def main() -> None:
     )
     parser.add_argument("--instruction-child", nargs=2, help=argparse.SUPPRESS)
     args = parser.parse_args()
+    for option in ("steps", "rounds", "episodes"):
+        if getattr(args, option) < 1:
+            parser.error(f"--{option}: expected an int >= 1, got {getattr(args, option)}")
+    if args.pairs < 0:
+        parser.error(f"--pairs: expected an int >= 0, got {args.pairs}")
     if args.instruction_child:
         _instruction_child(args.instruction_child[0], int(args.instruction_child[1]))
         return
