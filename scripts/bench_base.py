@@ -19,7 +19,7 @@ import gymnasium as gym
 import numpy as np
 
 import blanket  # noqa: F401  (registers the env ids)
-from blanket.agent.base import BaseAgent, run_base_episode
+from blanket.agent.mobile_base import BaseAgent, run_base_episode
 from blanket.sensors.wheel_odometry import dead_reckoning
 from blanket_envs.base_goto import calibrate_effective_track
 

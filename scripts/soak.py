@@ -1,7 +1,7 @@
 """Soak run: many control steps and resets on the planar arm, watching memory and pybullet clients.
 
 Runs ``--steps`` control steps split over ``--resets`` episodes on ``blanket/planar-2link-v0``
-behind :class:`blanket.wrappers.safety.SafetyLimits`, with a cheap random policy (uniform
+behind :class:`blanket.wrappers.safety_limits.SafetyLimits`, with a cheap random policy (uniform
 commands up to 1.5x the limit, a NaN command now and then to exercise the protective stop).
 Every ``--recreate-every`` resets the env is dropped *without* ``close()``, ``gc.collect()``
 runs, and the dropped env's pybullet client must be disconnected by then (envs close their
@@ -29,7 +29,7 @@ import numpy as np
 import pybullet
 
 import blanket_envs  # noqa: F401  (registers the env ids)
-from blanket.wrappers.safety import SafetyLimits
+from blanket.wrappers.safety_limits import SafetyLimits
 
 #: Client ids scanned for open connections (pybullet hands out small integers).
 CLIENT_ID_SCAN = 256

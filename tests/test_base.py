@@ -12,7 +12,7 @@ from gymnasium.utils.env_checker import check_env
 from scipy.integrate import solve_ivp
 
 import blanket  # noqa: F401  (registers the env ids)
-from blanket.agent.base import BaseAgent, plan_waypoints, run_base_episode
+from blanket.agent.mobile_base import BaseAgent, plan_waypoints, run_base_episode
 from blanket.body.diff_drive import (
     DiffDriveModel,
     body_velocity,

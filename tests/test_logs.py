@@ -31,8 +31,8 @@ import pytest
 from blanket.errors import ConfigError
 from blanket.logs import LogError, RunWriter, open_dataset, read_metadata, read_run
 from blanket.logs.cli import add_inspect_parser, add_plot_parser, run_inspect
-from blanket.logs.inspect import inspect_text, summarize_run
 from blanket.logs.journal import journal_path, write_journal
+from blanket.logs.run_summary import inspect_text, summarize_run
 from blanket.logs.schema import SCHEMA_VERSION, component_labels, unit_for_key
 from blanket.wrappers import Recorder
 

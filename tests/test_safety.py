@@ -19,7 +19,7 @@ from hypothesis import strategies as st
 
 import blanket_envs  # noqa: F401  (registers the env ids)
 from blanket.errors import ConfigError
-from blanket.safety import (
+from blanket.robot_limits import (
     IIWA14_R820,
     PANDA,
     REDUCED_SPEED_M_S,
@@ -29,7 +29,7 @@ from blanket.safety import (
 )
 from blanket.scenario import make_env as scenario_make_env
 from blanket.scenario import scenario_from_dict
-from blanket.wrappers.safety import SafetyLimits
+from blanket.wrappers.safety_limits import SafetyLimits
 
 FAST_EXAMPLES = 50
 SLOW_EXAMPLES = 500

@@ -1,22 +1,12 @@
-"""The blanket environment suite.
+"""The blanket environment suite: gymnasium envs over the simulated worlds and sensors.
 
-Importing this package registers its env ids with gymnasium, using string entry points so
-nothing heavy (pybullet, pinocchio) is imported until an env is made. It uses only
-gymnasium's public ``register`` -- the same route a user's own package would take.
+The env ids are registered by ``import blanket`` (see :data:`blanket.ENV_IDS`); importing this
+package imports blanket, so either import registers them. Dependencies point one way: this
+package imports blanket's world side (``blanket.sim``, ``blanket.sensors``), never the reverse.
 """
 
 from __future__ import annotations
 
-from gymnasium import register, registry
-
-_ENVS = {
-    "blanket/arm-reach-v0": "blanket_envs.arm_reach:ArmReachEnv",
-    "blanket/planar-2link-v0": "blanket_envs.arm_reach:PlanarReachEnv",
-    "blanket/base-goto-v0": "blanket_envs.base_goto:BaseGotoEnv",
-}
-
-for _env_id, _entry_point in _ENVS.items():
-    if _env_id not in registry:
-        register(id=_env_id, entry_point=_entry_point)
+import blanket  # noqa: F401  (registers the env ids)
 
 __all__: list[str] = []

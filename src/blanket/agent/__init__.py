@@ -11,7 +11,7 @@ __all__ = ["ArmAgent", "AgentOptions", "BaseAgent", "agent_for_env"]
 
 def __getattr__(name: str) -> Any:
     if name == "BaseAgent":
-        from blanket.agent.base import BaseAgent
+        from blanket.agent.mobile_base import BaseAgent
 
         return BaseAgent
     raise AttributeError(name)
@@ -23,6 +23,6 @@ def agent_for_env(env: Any, **options: Any) -> Any:
 
     if isinstance(getattr(env.unwrapped, "description", None), ArmDescription):
         return ArmAgent.from_env(env, **options)
-    from blanket.agent.base import BaseAgent
+    from blanket.agent.mobile_base import BaseAgent
 
     return BaseAgent.from_env(env, **options)

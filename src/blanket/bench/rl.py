@@ -245,7 +245,7 @@ def make_bench_env(
     **env_options: Any,
 ) -> gym.Env:
     """The benchmark's reaching env: ``blanket/arm-reach-v0`` (or the planar arm)."""
-    import blanket_envs  # noqa: F401  (registers the ids)
+    import blanket  # noqa: F401  (registers the ids)
 
     if robot == "planar":
         return gym.make(

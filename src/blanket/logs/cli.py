@@ -101,8 +101,8 @@ def add_inspect_parser(subparsers: Any) -> argparse.ArgumentParser:
 
 def run_inspect(args: argparse.Namespace) -> int:
     """Print the summary of ``args.run_dir``. Returns the exit status (0)."""
-    from blanket.logs.inspect import format_summary, summarize_run
     from blanket.logs.reader import read_metadata
+    from blanket.logs.run_summary import format_summary, summarize_run
     from blanket.logs.schema import LogError
 
     table = summarize_run(args.run_dir)

@@ -223,7 +223,7 @@ def _agent_option_names(env_id: str, agent: Mapping[str, Any]) -> list[str] | No
         entry = ""
     entry_text = entry if isinstance(entry, str) else f"{entry.__module__}:{entry.__qualname__}"
     if entry_text.startswith("blanket_envs.base_goto"):
-        from blanket.agent import base as base_agent
+        from blanket.agent import mobile_base as base_agent
 
         return list(base_agent.OPTION_DEFAULTS)
     from blanket.agent.arm import AgentOptions

@@ -14,7 +14,7 @@ from blanket.wrappers.perturbations import (
     SensorNoiseScale,
 )
 from blanket.wrappers.recorder import Recorder
-from blanket.wrappers.safety import SafetyLimits
+from blanket.wrappers.safety_limits import SafetyLimits
 
 __all__ = [
     "CameraDelay",

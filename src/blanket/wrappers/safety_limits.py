@@ -25,7 +25,8 @@ What the wrapper does, each step (arm envs):
       its speed toward the limit is cut so that one control step cannot enter the margin;
    c. **joint velocity limit** of the profile: a command above a joint's limit scales the
       whole command down together (the joint-space direction is kept);
-   d. **tool-speed cap** (``tool_speed_cap_m_s``, e.g. :data:`blanket.safety.REDUCED_SPEED_M_S`,
+   d. **tool-speed cap** (``tool_speed_cap_m_s``, e.g.
+      :data:`blanket.robot_limits.REDUCED_SPEED_M_S`,
       the 250 mm/s reduced speed of ISO 10218-1:2011, 5.6): ``v`` is scaled down until the
       tool-tip speed ``|J(q) v|`` is at most the cap.
 
@@ -60,7 +61,7 @@ import numpy as np
 
 from blanket.description import ArmDescription
 from blanket.errors import ConfigError
-from blanket.safety import SafetyProfile, profile_for, profile_named
+from blanket.robot_limits import SafetyProfile, profile_for, profile_named
 
 __all__ = ["SafetyLimits"]
 
@@ -90,8 +91,8 @@ class SafetyLimits(gym.Wrapper, gym.utils.RecordConstructorArgs):
         A blanket arm env (``blanket/arm-reach-v0``, ``blanket/planar-2link-v0``) or any env
         with a bounded Box action space of velocity-like commands.
     profile : SafetyProfile or str, optional
-        The limits; default :func:`blanket.safety.profile_for` of the env's description. A
-        name from :data:`blanket.safety.PROFILE_NAMES` is accepted.
+        The limits; default :func:`blanket.robot_limits.profile_for` of the env's description. A
+        name from :data:`blanket.robot_limits.PROFILE_NAMES` is accepted.
     joint_margin_rad : float
         Margin before the joint position limits (>= 0).
     workspace_box_m : array_like, shape (2, 3), optional

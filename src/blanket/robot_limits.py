@@ -7,8 +7,8 @@ the maker's published figures instead. :func:`profile_for` picks the profile of 
 :class:`~blanket.description.ArmDescription` (by the URDF's joint names), falling back to the
 URDF's own limits.
 
-The limits :class:`blanket.wrappers.safety.SafetyLimits` enforces are the element-wise minimum of
-the profile and the URDF (the env clips to the URDF anyway).
+The limits :class:`blanket.wrappers.safety_limits.SafetyLimits` enforces are the element-wise
+minimum of the profile and the URDF (the env clips to the URDF anyway).
 
 These profiles are for simulation. Before any hardware use, take the limits from the maker's
 current documentation for the exact robot variant, not from this file.
