@@ -32,13 +32,14 @@ from blanket.planar_motion import (
 )
 
 __all__ = [
+    "DiffDriveModel",
+    "polar_coordinates",
+    # re-exported from blanket.planar_motion (their home since the world side needs them too)
     "wrap_angle",
     "body_velocity",
     "wheel_speeds",
     "pose_rate",
     "integrate_pose",
-    "polar_coordinates",
-    "DiffDriveModel",
 ]
 
 

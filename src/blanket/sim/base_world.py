@@ -13,6 +13,7 @@ deterministic resets, bullet3 issue #3285).
 
 from __future__ import annotations
 
+import contextlib
 import os
 from dataclasses import dataclass
 from typing import Protocol
@@ -264,12 +265,10 @@ class BaseWorld:
 
     def close(self) -> None:
         """Disconnect the pybullet client (safe to call twice)."""
-        if getattr(self, "_connected", False):
+        if self._connected:
             self._connected = False
-            try:
+            with contextlib.suppress(pybullet.error):
                 self.client.disconnect()
-            except pybullet.error:
-                pass
 
 
 def spin_in_place(
@@ -277,11 +276,11 @@ def spin_in_place(
 ) -> dict[str, float]:
     """Measure a base's effective-track factor and ICR offset by a spin in place.
 
-    On a bare floor the base settles for 0.5 s, then spins with wheel commands ``(-w, +w)``;
-    the first second is discarded and the yaw rate ``omega`` and the lateral velocity ``u`` of
-    the base origin are averaged. The factor is ``(r (w_R - w_L) / track) / omega`` (1 for a
-    base that does not slip) and the ICR offset is ``-u / omega`` (Martinez et al. 2005, Int J
-    Robot Res 24(10)).
+    On a bare floor the base settles for 0.5 s at the origin, then spins with wheel commands
+    ``(-w, +w)``; the first second is discarded and the yaw rate ``omega`` and the lateral
+    velocity ``u`` of the base origin are averaged. The factor is
+    ``(r (w_R - w_L) / track) / omega`` (1 for a base that does not slip) and the ICR offset is
+    ``-u / omega`` (Martinez et al. 2005, Int J Robot Res 24(10)).
 
     Returns
     -------
