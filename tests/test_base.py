@@ -2,28 +2,27 @@
 
 from __future__ import annotations
 
-import warnings
 from types import SimpleNamespace
 
 import gymnasium as gym
 import numpy as np
 import pytest
-from gymnasium.utils.env_checker import check_env
 from scipy.integrate import solve_ivp
 
 import blanket  # noqa: F401  (registers the env ids)
 from blanket.agent.mobile_base import BaseAgent, plan_waypoints, run_base_episode
-from blanket.body.diff_drive import (
-    DiffDriveModel,
+from blanket.body.diff_drive import DiffDriveModel, polar_coordinates
+from blanket.errors import ConfigError
+from blanket.planar_motion import (
+    bearing_range,
+    bearing_range_jacobian,
     body_velocity,
     integrate_pose,
-    polar_coordinates,
     wheel_speeds,
     wrap_angle,
 )
-from blanket.errors import ConfigError
-from blanket.sensors.landmarks import bearing_range, bearing_range_jacobian
 from blanket.sensors.wheel_odometry import dead_reckoning
+from blanket.success import time_to_success
 from blanket_envs.base_goto import ROBOTS, BaseGotoEnv, calibrate_effective_track
 from blanket_envs.greenhouse_rows import box_distance, default_layout
 
@@ -154,20 +153,6 @@ def test_husky_effective_track_calibration_matches_stored_factor():
 
 
 # ---------------------------------------------------------------- env contract
-def test_check_env_is_clean():
-    # measure_step_time=False: info must repeat exactly for repeated seeded steps
-    env = BaseGotoEnv(robot="rover", episode_s=2.0, measure_step_time=False)
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("error")
-            # the action is in physical units (rad/s) by the env contract, so gymnasium's advice
-            # to normalise Box actions to [-1, 1] is the one warning we accept
-            warnings.filterwarnings("ignore", message=".*symmetric and normalized.*")
-            check_env(env, skip_render_check=True)
-    finally:
-        env.close()
-
-
 def test_seeded_reset_reproducible_and_observation_keys():
     env = gym.make("blanket/base-goto-v0", robot="husky")
     try:
@@ -209,7 +194,7 @@ def test_landmark_occlusion_by_benches():
         south_end = (lm[:, 0] > 3) & (lm[:, 0] < 4) & (lm[:, 1] < -2.0)
         assert vis[north_end].all()
         assert not vis[south_end].any()
-        pose = env.unwrapped._base.planar_pose()
+        pose = env.unwrapped.world.planar_pose()
         b, r = bearing_range(pose, lm[vis], env.description.camera_offset_m)
         np.testing.assert_allclose(obs["landmark_bearing_rad"][vis], b, atol=1e-5)
         np.testing.assert_allclose(obs["landmark_range_m"][vis], r, atol=1e-4)
@@ -246,6 +231,34 @@ def test_bad_action_and_model_input_raise():
             with pytest.raises(ValueError) as err:
                 env.step(bad)
             assert "\n" not in str(err.value)
+    finally:
+        env.close()
+
+
+def test_success_is_the_one_rule_entry_time_of_the_held_stay():
+    # The env's success and time to success are blanket.success's rule applied to its own
+    # inside_tolerance trace: the time is when the held stay began, not when the hold completed.
+    env = BaseGotoEnv(robot="rover", episode_s=25.0, terminate_on_success=False)
+    try:
+        agent = BaseAgent.from_env(env)
+        obs, info = env.reset(seed=1, options={"start_pose": (-3.6, 1.3, np.pi)})
+        agent.reset()
+        inside, reported = [], []
+        while True:
+            obs, _, terminated, truncated, info = env.step(agent.act(obs))
+            inside.append(info["inside_tolerance"])
+            reported.append(info["time_to_success_s"])
+            if truncated:
+                break
+        dt = env.description.control_dt
+        expected = time_to_success(inside, dt, env.description.success_hold_s)
+        assert expected is not None
+        assert info["success"] and info["time_to_success_s"] == pytest.approx(expected)
+        # success is declared after the hold: 0.25 s (10 steps at 40 Hz) after the entry step
+        entry = round(expected / dt)
+        first = next(k for k, t in enumerate(reported) if t is not None)
+        assert first + 1 == entry + 10
+        assert all(inside[entry - 1 : first + 1]) and not inside[entry - 2]
     finally:
         env.close()
 

@@ -15,11 +15,17 @@ Observation (Dict):
 ``landmark_visible`` (MultiBinary L, from the latest frame), ``camera_fresh`` (Discrete 2: a frame
 arrived this step). Unseen landmarks keep their last value.
 
-``info``: ``distance_m``, ``heading_error_rad``, ``inside_tolerance``, ``success``,
-``time_to_success_s`` (None until success), ``time_s``, ``contact`` (the base touched a bench
-during this step), ``contact_count`` (steps with contact so far), ``sim_step_us``, and the
-truth under ``external``: ``base_pose`` (x_m, y_m, heading_rad), ``base_velocity``
-(x'_m_s, y'_m_s, yaw_rate_rad_s, world frame), ``wheel_speed_rad_s`` (true, left/right).
+``info``: ``distance_m``, ``heading_error_rad``, ``inside_tolerance``, ``success`` and
+``time_to_success_s`` (the one success rule, :class:`blanket.success.HeldInside`: inside the
+tolerance for ``success_hold_s``; the time is the entry time of the stay that was held, None
+until then), ``time_s``, ``contact`` (the base touched a bench during this step),
+``contact_count`` (steps with contact so far), and the truth under ``external``: ``base_pose``
+(x_m, y_m, heading_rad), ``base_velocity`` (x'_m_s, y'_m_s, yaw_rate_rad_s, world frame),
+``wheel_speed_rad_s`` (true, left/right), ``dock_pose``. No wall-clock value: ``info`` repeats
+exactly for a repeated seed.
+
+The simulation itself is :class:`blanket.sim.base_world.BaseWorld`; this module holds the task
+(dock, success, reward), the sensors' settings and the robots' configuration :data:`ROBOTS`.
 
 Skid-steer calibration: :func:`calibrate_effective_track` spins the base in place in an empty
 world and compares the yaw rate with ``r (w_R - w_L) / track``; the ratio is the effective-track
@@ -29,26 +35,24 @@ factor stored in :data:`ROBOTS` (and re-measured by the tests).
 from __future__ import annotations
 
 import os
-import time
-from dataclasses import dataclass, replace
+from dataclasses import replace
 from typing import Any
 
 import gymnasium as gym
 import numpy as np
-import pybullet
 import pybullet_data
 from gymnasium import spaces
-from pybullet_utils import bullet_client
 
 from blanket.base_description import BaseDescription
-from blanket.body.diff_drive import wrap_angle
 from blanket.errors import ConfigError
+from blanket.planar_motion import wrap_angle
 from blanket.sensors.landmarks import LandmarkSensor
 from blanket.sensors.wheel_odometry import WheelOdometry
+from blanket.sim.base_world import PHYSICS_HZ, BaseWorld, RobotSpec, spin_in_place
+from blanket.success import HeldInside
 from blanket_envs.greenhouse_rows import (
     GreenhouseLayout,
     box_distance,
-    build_world,
     default_layout,
     sample_start_pose,
     validate_layout,
@@ -56,29 +60,7 @@ from blanket_envs.greenhouse_rows import (
 
 __all__ = ["RobotSpec", "ROBOTS", "BaseGotoEnv", "calibrate_effective_track", "PHYSICS_HZ"]
 
-PHYSICS_HZ = 240
 _ASSETS = os.path.join(os.path.dirname(__file__), "assets")
-
-
-@dataclass(frozen=True)
-class RobotSpec:
-    """Fixed facts about a simulated base (geometry from its URDF, limits our choice)."""
-
-    urdf: str
-    left_joints: tuple[str, ...]
-    right_joints: tuple[str, ...]
-    wheel_radius_m: float
-    track_m: float
-    effective_track_factor: float
-    icr_offset_m: float
-    wheel_speed_limit_rad_s: float
-    wheel_torque_limit_n_m: float
-    camera_offset_m: float
-    camera_height_m: float
-    half_length_m: float
-    half_width_m: float
-    has_gyro: bool
-
 
 ROBOTS: dict[str, RobotSpec] = {
     # Our URDF: r = 0.06 m, wheels at y = +-0.15 m.
@@ -133,72 +115,10 @@ def _check_positive(name: str, value: Any, unit: str, allow_zero: bool = False) 
     return v
 
 
-class _Base:
-    """A base loaded into a client: joint indices, frame conversion, wheel motors."""
-
-    def __init__(self, client: Any, spec: RobotSpec) -> None:
-        self.client = client
-        self.robot_spec = spec
-        self.body = client.loadURDF(
-            spec.urdf, [0, 0, 0.3], flags=pybullet.URDF_USE_INERTIA_FROM_FILE
-        )
-        names = {}
-        for j in range(client.getNumJoints(self.body)):
-            info = client.getJointInfo(self.body, j)
-            names[info[1].decode()] = j
-        self.left = [names[n] for n in spec.left_joints]
-        self.right = [names[n] for n in spec.right_joints]
-        self.wheels = self.left + self.right
-        # Links without an <inertial> get 1 kg and unit inertia from pybullet; make them light.
-        for link in range(-1, client.getNumJoints(self.body)):
-            dyn = client.getDynamicsInfo(self.body, link)
-            if abs(dyn[0] - 1.0) < 1e-12 and np.allclose(dyn[2], 1.0):
-                client.changeDynamics(self.body, link, mass=0.01, localInertiaDiagonal=[1e-5] * 3)
-        dyn = client.getDynamicsInfo(self.body, -1)
-        self.com_in_link = (tuple(dyn[3]), tuple(dyn[4]))
-        # Height of the link origin above the floor when standing: the wheel axle for the rover
-        # (wheel radius), the floor for the husky's base_footprint.
-        self.stand_z = spec.wheel_radius_m if spec.urdf.endswith("rover.urdf") else 0.0
-
-    def link_pose(self) -> tuple[np.ndarray, np.ndarray]:
-        """World position and quaternion of the base *link* frame (not its inertial frame)."""
-        pos, orn = self.client.getBasePositionAndOrientation(self.body)
-        inv_pos, inv_orn = self.client.invertTransform(*self.com_in_link)
-        p, q = self.client.multiplyTransforms(pos, orn, inv_pos, inv_orn)
-        return np.array(p), np.array(q)
-
-    def planar_pose(self) -> np.ndarray:
-        p, q = self.link_pose()
-        yaw = self.client.getEulerFromQuaternion(q)[2]
-        return np.array([p[0], p[1], yaw])
-
-    def planar_velocity(self) -> np.ndarray:
-        """World-frame ``(x', y', yaw rate)`` of the link origin."""
-        lin, ang = self.client.getBaseVelocity(self.body)
-        com, _ = self.client.getBasePositionAndOrientation(self.body)
-        p, _ = self.link_pose()
-        v = np.array(lin) + np.cross(np.array(ang), p - np.array(com))
-        return np.array([v[0], v[1], ang[2]])
-
-    def reset_pose(self, pose: np.ndarray) -> None:
-        q = self.client.getQuaternionFromEuler([0.0, 0.0, float(pose[2])])
-        p, qq = self.client.multiplyTransforms(
-            [float(pose[0]), float(pose[1]), self.stand_z + 0.002], q, *self.com_in_link
-        )
-        self.client.resetBasePositionAndOrientation(self.body, p, qq)
-        self.client.resetBaseVelocity(self.body, [0, 0, 0], [0, 0, 0])
-        for j in self.wheels:
-            self.client.resetJointState(self.body, j, 0.0, 0.0)
-
-    def command(self, left: float, right: float) -> None:
-        n_l, n_r = len(self.left), len(self.right)
-        self.client.setJointMotorControlArray(
-            self.body,
-            self.wheels,
-            pybullet.VELOCITY_CONTROL,
-            targetVelocities=[left] * n_l + [right] * n_r,
-            forces=[self.robot_spec.wheel_torque_limit_n_m] * (n_l + n_r),
-        )
+def _robot_spec(robot: str) -> RobotSpec:
+    if robot not in ROBOTS:
+        raise ConfigError(f"robot must be one of {sorted(ROBOTS)}, got {robot!r}")
+    return ROBOTS[robot]
 
 
 def calibrate_effective_track(
@@ -206,49 +126,10 @@ def calibrate_effective_track(
 ) -> dict[str, float]:
     """Measure the effective-track factor and ICR offset of a base by a spin in place.
 
-    Commands ``(-w, +w)`` in an empty world, discards the first second and averages the yaw rate
-    ``omega`` and the lateral velocity ``u`` of the base origin. The factor is
-    ``(r (w_R - w_L) / track) / omega`` (1 for a base that does not slip) and the ICR offset is
-    ``-u / omega`` (Martinez et al. 2005, Int J Robot Res 24(10)).
-
-    Returns
-    -------
-    dict
-        ``factor``, ``icr_offset_m``, ``yaw_rate_rad_s`` (measured) and
-        ``predicted_yaw_rate_rad_s`` (two-wheel relation with the geometric track).
+    :func:`blanket.sim.base_world.spin_in_place` for the robot called ``robot`` (see there:
+    ``factor``, ``icr_offset_m``, ``yaw_rate_rad_s``, ``predicted_yaw_rate_rad_s``).
     """
-    if robot not in ROBOTS:
-        raise ConfigError(f"robot must be one of {sorted(ROBOTS)}, got {robot!r}")
-    spec = ROBOTS[robot]
-    client = bullet_client.BulletClient(connection_mode=pybullet.DIRECT)
-    try:
-        client.setGravity(0, 0, -9.81)
-        client.setPhysicsEngineParameter(fixedTimeStep=1.0 / PHYSICS_HZ)
-        client.loadURDF(os.path.join(pybullet_data.getDataPath(), "plane.urdf"))
-        base = _Base(client, spec)
-        base.reset_pose(np.zeros(3))
-        base.command(0.0, 0.0)
-        for _ in range(PHYSICS_HZ // 2):
-            client.stepSimulation()
-        base.command(-wheel_speed_rad_s, wheel_speed_rad_s)
-        rates, lateral = [], []
-        for k in range(int(duration_s * PHYSICS_HZ)):
-            client.stepSimulation()
-            if k >= PHYSICS_HZ:
-                vel = base.planar_velocity()
-                h = base.planar_pose()[2]
-                rates.append(vel[2])
-                lateral.append(-np.sin(h) * vel[0] + np.cos(h) * vel[1])
-    finally:
-        client.disconnect()
-    omega = float(np.mean(rates))
-    predicted = spec.wheel_radius_m * 2.0 * wheel_speed_rad_s / spec.track_m
-    return {
-        "factor": predicted / omega,
-        "icr_offset_m": -float(np.mean(lateral)) / omega,
-        "yaw_rate_rad_s": omega,
-        "predicted_yaw_rate_rad_s": predicted,
-    }
+    return spin_in_place(_robot_spec(robot), wheel_speed_rad_s, duration_s)
 
 
 class BaseGotoEnv(gym.Env):
@@ -282,9 +163,8 @@ class BaseGotoEnv(gym.Env):
     terminate_on_success : bool
         End the episode when ``success`` first becomes true (default True).
     measure_step_time : bool
-        Report the wall time of the physics substeps as ``info["sim_step_us"]`` (default True);
-        False reports 0.0, which makes ``info`` bit-reproducible (gymnasium's ``check_env``
-        compares the info of repeated seeded steps).
+        Deprecated, no effect (accepted so that existing scenario files keep working): the env
+        reports no wall-clock ``sim_step_us``, so ``info`` repeats exactly for a repeated seed.
     render_mode : {"rgb_array", "human"} or None
         ``"human"`` opens pybullet's GUI.
     """
@@ -313,9 +193,7 @@ class BaseGotoEnv(gym.Env):
         render_mode: str | None = None,
     ) -> None:
         super().__init__()
-        if robot not in ROBOTS:
-            raise ConfigError(f"robot must be one of {sorted(ROBOTS)}, got {robot!r}")
-        spec = ROBOTS[robot]
+        spec = _robot_spec(robot)
         if use_gyro is None:
             use_gyro = spec.has_gyro
         control_hz = _check_positive("control_hz", control_hz, "Hz")
@@ -376,27 +254,24 @@ class BaseGotoEnv(gym.Env):
         self.robot_spec = spec
         self.robot = robot
 
-        mode = pybullet.GUI if render_mode == "human" else pybullet.DIRECT
-        self._client = bullet_client.BulletClient(connection_mode=mode)
-        c = self._client
-        c.setGravity(0, 0, -9.81)
-        c.setPhysicsEngineParameter(fixedTimeStep=1.0 / PHYSICS_HZ)
-        self.world = build_world(c, layout, os.path.join(pybullet_data.getDataPath(), "plane.urdf"))
-        self._base = _Base(c, spec)
+        self.world = BaseWorld(
+            spec, layout, gui=render_mode == "human", rest_pose=np.asarray(layout.dock_pose)
+        )
+        w = self.world
         self._odometry = WheelOdometry(
-            c,
-            self._base.body,
-            self._base.left,
-            self._base.right,
+            w.client,
+            w.body,
+            w.left_joints,
+            w.right_joints,
             wheel_speed_noise_rad_s,
             use_gyro=use_gyro,
             yaw_rate_noise_rad_s=yaw_rate_noise_rad_s,
         )
         self._camera = LandmarkSensor(
-            c,
+            w.client,
             layout.landmarks_m,
-            self.world.posts,
-            self._base.body,
+            w.bodies.posts,
+            w.body,
             fov_rad=fov,
             max_range_m=float(camera_range_m),
             bearing_noise_rad=float(bearing_noise_rad),
@@ -407,7 +282,6 @@ class BaseGotoEnv(gym.Env):
             camera_height_m=spec.camera_height_m,
         )
         self.terminate_on_success = bool(terminate_on_success)
-        self.measure_step_time = bool(measure_step_time)
         self.description = BaseDescription(
             robot=robot,
             wheel_radius_m=radius_known,
@@ -455,15 +329,7 @@ class BaseGotoEnv(gym.Env):
                 np.float32(0.0), self._range_bound, shape=(L,), dtype=np.float32
             )
         self.observation_space = spaces.Dict(obs)
-        self._hold_steps = int(np.ceil(self.description.success_hold_s * control_hz - 1e-9))
-        # A snapshot of the settled world (base standing on the dock): every reset restores it
-        # before placing the base, so contact caches are identical and steps are deterministic
-        # (pybullet's advice for deterministic resets, bullet3 issue #3285).
-        self._base.reset_pose(self.description.dock_pose)
-        self._base.command(0.0, 0.0)
-        for _ in range(PHYSICS_HZ // 4):
-            c.stepSimulation()
-        self._snapshot = c.saveState()
+        self._success_rule = HeldInside(1.0 / control_hz, self.description.success_hold_s)
         self._reset_state()
 
     # ------------------------------------------------------------------ internals
@@ -473,17 +339,14 @@ class BaseGotoEnv(gym.Env):
         self._last_bearing = np.zeros(L)
         self._last_range = np.zeros(L)
         self._visible = np.zeros(L, dtype=np.int8)
-        self._inside_count = 0
-        self._success = False
-        self._time_to_success: float | None = None
+        self._success_rule.reset()
         self._contact_count = 0
-        self._last_step_us = 0.0
 
     def _observe(self, fresh: bool) -> dict[str, Any]:
         rng = self.np_random
         wheels, yaw_rate = self._odometry.read(rng)
         if fresh:
-            frame = self._camera.read(self._base.planar_pose(), rng)
+            frame = self._camera.read(self.world.planar_pose(), rng)
             seen = frame["visible"].astype(bool)
             self._last_bearing[seen] = frame["bearing_rad"][seen]
             self._last_range[seen] = frame["range_m"][seen]
@@ -504,15 +367,8 @@ class BaseGotoEnv(gym.Env):
             )
         return obs
 
-    def _contact(self) -> bool:
-        body = self._base.body
-        for bench in self.world.benches:
-            if self._client.getContactPoints(bodyA=body, bodyB=bench):
-                return True
-        return False
-
     def _info(self, contact: bool) -> dict[str, Any]:
-        pose = self._base.planar_pose()
+        pose = self.world.planar_pose()
         dock = self.description.dock_pose
         distance = float(np.hypot(*(dock[:2] - pose[:2])))
         heading_error = float(wrap_angle(dock[2] - pose[2]))
@@ -524,15 +380,14 @@ class BaseGotoEnv(gym.Env):
             "distance_m": distance,
             "heading_error_rad": heading_error,
             "inside_tolerance": bool(inside),
-            "success": self._success,
-            "time_to_success_s": self._time_to_success,
+            "success": self._success_rule.success,
+            "time_to_success_s": self._success_rule.time_to_success_s,
             "time_s": self._step / self.control_hz,
             "contact": bool(contact),
             "contact_count": self._contact_count,
-            "sim_step_us": self._last_step_us,
             "external": {
                 "base_pose": pose,
-                "base_velocity": self._base.planar_velocity(),
+                "base_velocity": self.world.planar_velocity(),
                 "wheel_speed_rad_s": self._odometry.true_wheel_speeds(),
                 "dock_pose": np.array(dock, dtype=float),
             },
@@ -560,11 +415,8 @@ class BaseGotoEnv(gym.Env):
         else:
             start = sample_start_pose(self.np_random, self.layout, clearance)
         self._reset_state()
-        self._client.restoreState(stateId=self._snapshot)
-        self._base.reset_pose(start)
-        self._base.command(0.0, 0.0)
-        for _ in range(self.substeps):
-            self._client.stepSimulation()
+        self.world.reset(start)
+        self.world.step(self.substeps)
         obs = self._observe(fresh=True)
         return obs, self._info(contact=False)
 
@@ -578,52 +430,27 @@ class BaseGotoEnv(gym.Env):
             raise ValueError(f"action must be finite wheel speeds in rad/s, got {a.tolist()}")
         lim = self.robot_spec.wheel_speed_limit_rad_s
         a = np.clip(a, -lim, lim)
-        self._base.command(float(a[0]), float(a[1]))
-        contact = False
-        t0 = time.perf_counter()
-        for _ in range(self.substeps):
-            self._client.stepSimulation()
-            contact = contact or self._contact()
-        self._last_step_us = (time.perf_counter() - t0) * 1e6 if self.measure_step_time else 0.0
+        self.world.command(float(a[0]), float(a[1]))
+        contact = self.world.step(self.substeps)
         self._step += 1
         self._contact_count += int(contact)
         fresh = self._camera.is_frame_step(self._step)
         obs = self._observe(fresh)
         info = self._info(contact)
-        self._inside_count = self._inside_count + 1 if info["inside_tolerance"] else 0
-        if not self._success and self._inside_count >= self._hold_steps:
-            self._success = True
-            self._time_to_success = self._step / self.control_hz
-        info["success"] = self._success
-        info["time_to_success_s"] = self._time_to_success
+        info["success"] = self._success_rule.update(info["inside_tolerance"])
+        info["time_to_success_s"] = self._success_rule.time_to_success_s
         reward = -info["distance_m"] / self.control_hz - float(contact)
-        terminated = bool(self._success and self.terminate_on_success)
+        terminated = bool(info["success"] and self.terminate_on_success)
         truncated = bool(self._step >= round(self.episode_s * self.control_hz))
         return obs, float(reward), terminated, truncated, info
 
     def render(self) -> np.ndarray | None:
+        """An RGB overhead image for ``render_mode="rgb_array"``; None otherwise."""
         if self.render_mode != "rgb_array":
             return None
-        pose = self._base.planar_pose()
-        view = self._client.computeViewMatrixFromYawPitchRoll(
-            cameraTargetPosition=[pose[0] * 0.3, pose[1] * 0.3, 0.0],
-            distance=12.0,
-            yaw=0.0,
-            pitch=-70.0,
-            roll=0.0,
-            upAxisIndex=2,
-        )
-        proj = self._client.computeProjectionMatrixFOV(
-            fov=60.0, aspect=4 / 3, nearVal=0.1, farVal=40
-        )
-        w, h = 320, 240
-        img = self._client.getCameraImage(w, h, view, proj, renderer=pybullet.ER_TINY_RENDERER)[2]
-        return np.asarray(img, dtype=np.uint8).reshape(h, w, 4)[:, :, :3]
+        return self.world.render()
 
     def close(self) -> None:
-        if getattr(self, "_client", None) is not None:
-            try:
-                self._client.disconnect()
-            except pybullet.error:
-                pass
-            self._client = None
+        if getattr(self, "world", None) is not None:
+            self.world.close()
+            self.world = None

@@ -21,11 +21,11 @@ y north, z up, the floor is z = 0):
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Any
 
 import numpy as np
 
 from blanket.errors import ConfigError
+from blanket.sim.base_world import WorldIds, build_world  # re-exported: built by BaseWorld
 
 __all__ = [
     "GreenhouseLayout",
@@ -150,54 +150,6 @@ def validate_layout(layout: GreenhouseLayout, clearance_m: float = 0.0) -> None:
             f"dock_pose {tuple(dock[:2])} lies inside an obstacle: it must be >= "
             f"{clearance_m:.2f} m from every bench"
         )
-
-
-@dataclass
-class WorldIds:
-    """Body ids of the world's parts in one physics client."""
-
-    plane: int
-    benches: list[int]
-    posts: list[int]
-    dock: int
-
-
-def build_world(client: Any, layout: GreenhouseLayout, plane_urdf: str) -> WorldIds:
-    """Create floor, benches (static boxes), posts (static cylinders) and the dock marker."""
-    plane = client.loadURDF(plane_urdf)
-    h = float(layout.bench_height_m)
-    benches = []
-    for x0, y0, x1, y1 in np.asarray(layout.bench_boxes_m, dtype=float):
-        half = [(x1 - x0) / 2, (y1 - y0) / 2, h / 2]
-        col = client.createCollisionShape(client.GEOM_BOX, halfExtents=half)
-        vis = client.createVisualShape(
-            client.GEOM_BOX, halfExtents=half, rgbaColor=[0.45, 0.33, 0.22, 1.0]
-        )
-        benches.append(
-            client.createMultiBody(
-                0.0, col, vis, basePosition=[(x0 + x1) / 2, (y0 + y1) / 2, h / 2]
-            )
-        )
-    posts = []
-    r, ph = float(layout.post_radius_m), float(layout.post_height_m)
-    col = client.createCollisionShape(client.GEOM_CYLINDER, radius=r, height=ph)
-    vis = client.createVisualShape(
-        client.GEOM_CYLINDER, radius=r, length=ph, rgbaColor=[0.95, 0.85, 0.1, 1.0]
-    )
-    for x, y in np.asarray(layout.landmarks_m, dtype=float):
-        posts.append(client.createMultiBody(0.0, col, vis, basePosition=[x, y, ph / 2]))
-    dx, dy, dh = np.asarray(layout.dock_pose, dtype=float)
-    pad = client.createVisualShape(
-        client.GEOM_BOX, halfExtents=[0.35, 0.3, 0.003], rgbaColor=[0.1, 0.5, 0.9, 0.8]
-    )
-    dock = client.createMultiBody(
-        0.0,
-        -1,
-        pad,
-        basePosition=[dx, dy, 0.003],
-        baseOrientation=client.getQuaternionFromEuler([0, 0, dh]),
-    )
-    return WorldIds(plane=plane, benches=benches, posts=posts, dock=dock)
 
 
 def sample_start_pose(

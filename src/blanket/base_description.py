@@ -11,6 +11,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from blanket.success import HOLD_S
+
 __all__ = ["BaseDescription"]
 
 
@@ -57,7 +59,7 @@ class BaseDescription:
     dock_pose : numpy.ndarray
         Goal pose ``(x_m, y_m, heading_rad)``.
     episode_s, success_distance_m, success_heading_rad, success_hold_s : float
-        Task settings.
+        Task settings (the hold time is the one success rule's, :data:`blanket.success.HOLD_S`).
     """
 
     robot: str
@@ -85,7 +87,7 @@ class BaseDescription:
     episode_s: float
     success_distance_m: float = 0.10
     success_heading_rad: float = float(np.deg2rad(10.0))
-    success_hold_s: float = 0.25
+    success_hold_s: float = HOLD_S
 
     @property
     def n_landmarks(self) -> int:

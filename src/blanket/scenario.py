@@ -22,7 +22,6 @@ rejected with the closest valid names.
 
 from __future__ import annotations
 
-import difflib
 import importlib
 import inspect
 import tomllib
@@ -34,7 +33,7 @@ from typing import Any
 import gymnasium
 import numpy as np
 
-from blanket.errors import ConfigError
+from blanket.errors import ConfigError, did_you_mean
 
 __all__ = ["Scenario", "load_scenario", "load_object", "env_option_names", "make_env"]
 
@@ -86,13 +85,6 @@ def _toml_value(v: Any) -> str:
     raise ConfigError(f"cannot write {v!r} to a scenario file")
 
 
-def _suggest(name: str, valid: list[str]) -> str:
-    close = difflib.get_close_matches(name, valid, n=3)
-    if close:
-        return f"did you mean {', '.join(close)}?"
-    return f"valid: {', '.join(sorted(valid))}"
-
-
 def load_object(path: str, what: str = "class") -> Any:
     """Import ``package.module:Name`` -- only an import path the user wrote, never eval."""
     if not isinstance(path, str) or ":" not in path:
@@ -115,7 +107,9 @@ def _entry_point(env_id: str) -> Any:
         spec = gymnasium.spec(env_id)
     except Exception:  # noqa: BLE001 - gymnasium raises several error types here
         ids = [k for k in gymnasium.registry if k.startswith("blanket/")]
-        raise ConfigError(f"env {env_id!r} is not registered; {_suggest(env_id, ids)}") from None
+        raise ConfigError(
+            f"env {env_id!r} is not registered; {did_you_mean(env_id, ids)}"
+        ) from None
     ep = spec.entry_point
     if isinstance(ep, str):
         return load_object(ep, "env entry point")
@@ -138,7 +132,7 @@ def _check_env_options(env_id: str, options: Mapping[str, Any], where: str) -> N
     for key, value in options.items():
         if key not in valid:
             raise ConfigError(
-                f"{where}: unknown env option {key!r} for {env_id}; {_suggest(key, list(valid))}"
+                f"{where}: unknown env option {key!r} for {env_id}; {did_you_mean(key, valid)}"
             )
         default = valid[key]
         if key in _STRING_OPTIONS and value is not None and not isinstance(value, str):
@@ -185,7 +179,7 @@ def scenario_from_dict(
     for key in data:
         if key not in _TOP_KEYS and key not in _TABLES:
             raise ConfigError(
-                f"{where}: unknown key {key!r}; {_suggest(key, list(_TOP_KEYS) + list(_TABLES))}"
+                f"{where}: unknown key {key!r}; {did_you_mean(key, [*_TOP_KEYS, *_TABLES])}"
             )
     for key, typ in _TOP_KEYS.items():
         if key in data and (

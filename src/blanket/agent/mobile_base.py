@@ -63,7 +63,7 @@ from blanket.base_description import BaseDescription
 from blanket.body.diff_drive import DiffDriveModel, polar_coordinates, pose_rate, wrap_angle
 from blanket.errors import ConfigError
 from blanket.gcoords import shift_operator
-from blanket.sensors.landmarks import bearing_range, bearing_range_jacobian
+from blanket.planar_motion import bearing_range, bearing_range_jacobian
 
 __all__ = ["BaseAgent", "plan_waypoints", "segment_hits_box", "attractor_velocity"]
 

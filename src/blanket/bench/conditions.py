@@ -7,14 +7,13 @@ wrapper's generator, seeded at ``reset(seed)``, so every policy meets the same p
 
 from __future__ import annotations
 
-import difflib
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
 import gymnasium as gym
 
-from blanket.errors import ConfigError
+from blanket.errors import ConfigError, did_you_mean
 from blanket.wrappers.perturbations import (
     CameraDelay,
     CameraDropout,
@@ -116,10 +115,7 @@ def resolve_conditions(names: Sequence[str] | None) -> list[Condition]:
     out = []
     for name in names:
         if name not in CONDITIONS:
-            close = difflib.get_close_matches(name, list(CONDITIONS), n=1)
-            hint = f" (did you mean {close[0]}?)" if close else ""
-            raise ConfigError(
-                f"--conditions: unknown condition {name!r}{hint}; valid: {', '.join(CONDITIONS)}"
-            )
+            hint = did_you_mean(name, CONDITIONS, n=1, list_valid=True)
+            raise ConfigError(f"--conditions: unknown condition {name!r}; {hint}")
         out.append(CONDITIONS[name])
     return out

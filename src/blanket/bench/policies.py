@@ -19,7 +19,6 @@ the comparison isolates estimation and the way action is derived.
 
 from __future__ import annotations
 
-import difflib
 import inspect
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
@@ -28,7 +27,7 @@ from typing import Any
 
 import numpy as np
 
-from blanket.errors import ConfigError
+from blanket.errors import ConfigError, did_you_mean
 from blanket.scenario import load_object
 
 __all__ = [
@@ -355,9 +354,7 @@ def resolve_policy(name: str) -> PolicySpec:
         return POLICIES[name]
     if ":" in name:
         return _external(name)
-    close = difflib.get_close_matches(name, list(POLICIES), n=1)
-    hint = f" (did you mean {close[0]}?)" if close else ""
+    hint = did_you_mean(name, POLICIES, n=1, list_valid=True)
     raise ConfigError(
-        f"--policies: unknown policy {name!r}{hint}; valid: {', '.join(POLICIES)} or an import "
-        "path 'package.module:Name'"
+        f"--policies: unknown policy {name!r}; {hint} or an import path 'package.module:Name'"
     )

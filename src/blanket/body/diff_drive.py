@@ -1,20 +1,11 @@
-"""Differential-drive kinematics over the planar pose ``(x, y, heading)``.
+"""The agent's kinematic body model of a differential-drive (or skid-steer) base.
 
-Conventions
------------
-- The pose is ``(x_m, y_m, heading_rad)`` of the base frame in the world (floor) frame; the
-  heading is measured from the world +x axis, counter-clockwise positive, wrapped to
-  ``[-pi, pi)``.
-- Wheel speeds are ordered ``(left, right)`` in rad/s; a positive speed rolls the base
-  forward.
-- Body velocity is ``(v, omega)``: forward speed (m/s) and yaw rate (rad/s).
-
-The textbook relations (Siegwart, Nourbakhsh & Scaramuzza, *Introduction to Autonomous Mobile
-Robots*, 2nd ed., 2011, sec. 3.2) are
-
-    v = r (w_R + w_L) / 2,        omega = r (w_R - w_L) / track,
-
-and the pose rate of the unicycle is ``(v cos(heading), v sin(heading), omega)``.
+The planar relations both sides need -- ``wrap_angle``, ``body_velocity``, ``wheel_speeds``,
+``pose_rate``, ``integrate_pose`` -- live in :mod:`blanket.planar_motion` (the world's sensors
+use them too) and are re-exported here; their conventions are stated there: pose
+``(x_m, y_m, heading_rad)``, wheel speeds ``(left, right)`` rad/s, body velocity ``(v, omega)``
+with ``v = r (w_R + w_L) / 2``, ``omega = r (w_R - w_L) / track`` (Siegwart, Nourbakhsh &
+Scaramuzza, *Introduction to Autonomous Mobile Robots*, 2nd ed., 2011, sec. 3.2).
 
 Skid-steer bases (four wheels, no steering) turn by slipping, so their yaw rate is smaller than
 the two-wheel relation predicts: we use an *effective track* ``track_eff = factor * track``
@@ -23,9 +14,6 @@ instantaneous centres of rotation along the body x axis (Martinez, Mandow, Moral
 Garcia-Cerezo 2005, "Approximating kinematics for tracked mobile robots", Int J Robot Res
 24(10)), which gives the base origin a lateral velocity ``-icr_offset_m * omega``. For an ideal
 two-wheel base ``factor = 1`` and ``icr_offset_m = 0``.
-
-Generalized coordinates of the planar pose follow :mod:`blanket.gcoords`: an array
-``(order + 1, 3)`` whose row ``k`` is the k-th time derivative of ``(x, y, heading)``.
 """
 
 from __future__ import annotations
@@ -35,133 +23,24 @@ from dataclasses import dataclass
 import numpy as np
 
 from blanket.errors import ConfigError
+from blanket.planar_motion import (
+    body_velocity,
+    integrate_pose,
+    pose_rate,
+    wheel_speeds,
+    wrap_angle,
+)
 
 __all__ = [
+    "DiffDriveModel",
+    "polar_coordinates",
+    # re-exported from blanket.planar_motion (their home since the world side needs them too)
     "wrap_angle",
     "body_velocity",
     "wheel_speeds",
     "pose_rate",
     "integrate_pose",
-    "generalized_pose",
-    "polar_coordinates",
-    "DiffDriveModel",
 ]
-
-
-def wrap_angle(angle: np.ndarray | float) -> np.ndarray | float:
-    """Wrap angles to ``[-pi, pi)`` (so a heading error of 350 degrees becomes -10 degrees)."""
-    wrapped = (np.asarray(angle, dtype=float) + np.pi) % (2.0 * np.pi) - np.pi
-    return float(wrapped) if np.ndim(wrapped) == 0 else wrapped
-
-
-def body_velocity(
-    wheel_speed_rad_s: np.ndarray, wheel_radius_m: float, track_m: float
-) -> tuple[np.ndarray | float, np.ndarray | float]:
-    """Forward speed and yaw rate from ``(left, right)`` wheel speeds.
-
-    ``v = r (w_R + w_L) / 2``, ``omega = r (w_R - w_L) / track`` (Siegwart et al. 2011, sec. 3.2).
-
-    Parameters
-    ----------
-    wheel_speed_rad_s : numpy.ndarray
-        Shape ``(..., 2)``, ``(left, right)``.
-    wheel_radius_m, track_m : float
-        Wheel radius and (effective) track.
-    """
-    w = np.asarray(wheel_speed_rad_s, dtype=float)
-    v = wheel_radius_m * (w[..., 1] + w[..., 0]) / 2.0
-    omega = wheel_radius_m * (w[..., 1] - w[..., 0]) / track_m
-    return v, omega
-
-
-def wheel_speeds(
-    v_m_s: np.ndarray | float,
-    omega_rad_s: np.ndarray | float,
-    wheel_radius_m: float,
-    track_m: float,
-) -> np.ndarray:
-    """Inverse of :func:`body_velocity`: ``w_L, w_R = (v -+ omega T / 2) / r``.
-
-    Returns
-    -------
-    numpy.ndarray
-        Shape ``(..., 2)``, ``(left, right)``.
-    """
-    v = np.asarray(v_m_s, dtype=float)
-    om = np.asarray(omega_rad_s, dtype=float)
-    left = (v - om * track_m / 2.0) / wheel_radius_m
-    right = (v + om * track_m / 2.0) / wheel_radius_m
-    return np.stack([left, right], axis=-1)
-
-
-def pose_rate(
-    pose: np.ndarray, v_m_s: float, omega_rad_s: float, lateral_m_s: float = 0.0
-) -> np.ndarray:
-    """World-frame pose rate ``(x', y', heading')`` of a base moving with body velocity.
-
-    ``x' = v cos(h) - u sin(h)``, ``y' = v sin(h) + u cos(h)``, ``heading' = omega`` with ``u`` the
-    lateral (body y) speed, zero for an ideal differential drive (Siegwart et al. 2011, eq. 3.9).
-    """
-    h = float(np.asarray(pose, dtype=float)[2])
-    c, s = np.cos(h), np.sin(h)
-    return np.array([v_m_s * c - lateral_m_s * s, v_m_s * s + lateral_m_s * c, omega_rad_s])
-
-
-def integrate_pose(pose: np.ndarray, v_m_s: float, omega_rad_s: float, dt: float) -> np.ndarray:
-    """Exact pose after moving with constant ``(v, omega)`` for ``dt`` seconds (a circular arc).
-
-    For ``|omega dt|`` tiny the straight-line limit is used. Heading is wrapped.
-    """
-    x, y, h = np.asarray(pose, dtype=float)
-    dh = omega_rad_s * dt
-    if abs(dh) < 1e-9:
-        dx = v_m_s * dt * np.cos(h + dh / 2.0)
-        dy = v_m_s * dt * np.sin(h + dh / 2.0)
-    else:
-        radius = v_m_s / omega_rad_s
-        dx = radius * (np.sin(h + dh) - np.sin(h))
-        dy = -radius * (np.cos(h + dh) - np.cos(h))
-    return np.array([x + dx, y + dy, wrap_angle(h + dh)])
-
-
-def generalized_pose(
-    pose: np.ndarray,
-    v_m_s: float,
-    omega_rad_s: float,
-    accel_m_s2: float = 0.0,
-    yaw_accel_rad_s2: float = 0.0,
-    order: int = 2,
-) -> np.ndarray:
-    """Generalized coordinates ``(pose, pose', pose'')`` of a unicycle trajectory.
-
-    Differentiating ``x' = v cos h``, ``y' = v sin h``, ``h' = omega`` once more gives
-    ``x'' = a cos h - v omega sin h``, ``y'' = a sin h + v omega cos h``, ``h'' = alpha``.
-    Orders above two are set to zero (the local-linear truncation).
-
-    Returns
-    -------
-    numpy.ndarray
-        Shape ``(order + 1, 3)``, order-major as in :mod:`blanket.gcoords`.
-    """
-    if int(order) != order or order < 0:
-        raise ValueError(f"order must be a whole number >= 0, got {order!r}")
-    x, y, h = np.asarray(pose, dtype=float)
-    c, s = np.cos(h), np.sin(h)
-    rows = [
-        np.array([x, y, wrap_angle(h)]),
-        np.array([v_m_s * c, v_m_s * s, omega_rad_s]),
-        np.array(
-            [
-                accel_m_s2 * c - v_m_s * omega_rad_s * s,
-                accel_m_s2 * s + v_m_s * omega_rad_s * c,
-                yaw_accel_rad_s2,
-            ]
-        ),
-    ]
-    out = np.zeros((int(order) + 1, 3))
-    for k in range(min(int(order) + 1, 3)):
-        out[k] = rows[k]
-    return out
 
 
 def polar_coordinates(pose: np.ndarray, goal_pose: np.ndarray) -> tuple[float, float, float]:

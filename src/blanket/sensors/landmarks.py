@@ -7,11 +7,13 @@ forward. For a landmark at ``l = (lx, ly)`` and a base pose ``(x, y, h)`` the ca
     bearing = wrap(atan2(ly - cy, lx - cx) - h),     range = |l - c|,
 
 the usual range-bearing observation model of planar localisation (Thrun, Burgard & Fox 2005,
-*Probabilistic Robotics*, eq. 6.40, with the sensor offset). A landmark is seen when its bearing
-lies within half the field of view, its range is within ``max_range_m`` and the straight ray
-from the lens to it (at lens height) hits the landmark first (occlusion by benches is tested
-with pybullet's ``rayTestBatch``). Frames arrive at ``rate_hz``; each carries independent
-Gaussian noise on bearing and range.
+*Probabilistic Robotics*, eq. 6.40, with the sensor offset). The formulas and their Jacobians
+live in :mod:`blanket.planar_motion`, shared with the agent, and are re-exported here.
+
+A landmark is seen when its bearing lies within half the field of view, its range is within
+``max_range_m`` and the straight ray from the lens to it (at lens height) hits the landmark
+first (occlusion by benches is tested with pybullet's ``rayTestBatch``). Frames arrive at
+``rate_hz``; each carries independent Gaussian noise on bearing and range.
 """
 
 from __future__ import annotations
@@ -21,8 +23,13 @@ from typing import Any
 
 import numpy as np
 
-from blanket.body.diff_drive import wrap_angle
 from blanket.errors import ConfigError
+from blanket.planar_motion import (
+    bearing_range,
+    bearing_range_jacobian,
+    camera_position,
+    wrap_angle,
+)
 
 __all__ = [
     "camera_position",
@@ -31,54 +38,6 @@ __all__ = [
     "in_field_of_view",
     "LandmarkSensor",
 ]
-
-
-def camera_position(pose: np.ndarray, camera_offset_m: float = 0.0) -> np.ndarray:
-    """Floor-plane position of the lens: ``(x + d cos h, y + d sin h)``."""
-    x, y, h = np.asarray(pose, dtype=float)
-    return np.array([x + camera_offset_m * np.cos(h), y + camera_offset_m * np.sin(h)])
-
-
-def bearing_range(
-    pose: np.ndarray, landmarks_m: np.ndarray, camera_offset_m: float = 0.0
-) -> tuple[np.ndarray, np.ndarray]:
-    """Predicted bearings (rad, wrapped) and ranges (m) of landmarks ``(L, 2)`` from a pose."""
-    lm = np.asarray(landmarks_m, dtype=float).reshape(-1, 2)
-    c = camera_position(pose, camera_offset_m)
-    delta = lm - c
-    bearing = wrap_angle(np.arctan2(delta[:, 1], delta[:, 0]) - float(pose[2]))
-    rng = np.hypot(delta[:, 0], delta[:, 1])
-    return np.atleast_1d(bearing), rng
-
-
-def bearing_range_jacobian(
-    pose: np.ndarray, landmarks_m: np.ndarray, camera_offset_m: float = 0.0
-) -> tuple[np.ndarray, np.ndarray]:
-    """Analytic Jacobians of :func:`bearing_range` w.r.t. the pose ``(x, y, h)``.
-
-    With ``delta = l - c`` and ``q = |delta|^2``:
-    ``d bearing / d(x, y) = (delta_y, -delta_x) / q``,
-    ``d bearing / dh = -d (delta_y sin h + delta_x cos h) / q - 1``,
-    ``d range / d(x, y) = -delta / range``,
-    ``d range / dh = d (delta_x sin h - delta_y cos h) / range``.
-
-    Returns
-    -------
-    (numpy.ndarray, numpy.ndarray)
-        Bearing and range Jacobians, each of shape ``(L, 3)``.
-    """
-    lm = np.asarray(landmarks_m, dtype=float).reshape(-1, 2)
-    h = float(pose[2])
-    d = camera_offset_m
-    c = camera_position(pose, d)
-    dx = lm[:, 0] - c[0]
-    dy = lm[:, 1] - c[1]
-    q = dx * dx + dy * dy
-    rng = np.sqrt(q)
-    sh, ch = np.sin(h), np.cos(h)
-    jb = np.stack([dy / q, -dx / q, -d * (dy * sh + dx * ch) / q - 1.0], axis=1)
-    jr = np.stack([-dx / rng, -dy / rng, d * (dx * sh - dy * ch) / rng], axis=1)
-    return jb, jr
 
 
 def in_field_of_view(

@@ -13,8 +13,8 @@ from typing import Any
 
 import numpy as np
 
-from blanket.body.diff_drive import body_velocity, integrate_pose
 from blanket.errors import ConfigError
+from blanket.planar_motion import body_velocity, integrate_pose
 
 __all__ = ["WheelOdometry", "dead_reckoning"]
 

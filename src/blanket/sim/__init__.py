@@ -1,7 +1,7 @@
 """pybullet worlds, one ``BulletClient`` per env, and URDF limit parsing.
 
-``blanket.sim.urdf_limits`` needs no pybullet; ``ArmWorld`` is imported lazily so that
-reading limits stays light.
+``blanket.sim.urdf_limits`` needs no pybullet; ``ArmWorld`` (a fixed-base arm) and ``BaseWorld``
+(a wheeled base between bench rows) are imported lazily so that reading limits stays light.
 """
 
 from __future__ import annotations
@@ -12,8 +12,9 @@ from blanket.sim.urdf_limits import JointLimit, read_joint_limits, read_link_nam
 
 if TYPE_CHECKING:
     from blanket.sim.arm_world import ArmWorld, Contact
+    from blanket.sim.base_world import BaseWorld
 
-__all__ = ["ArmWorld", "Contact", "JointLimit", "read_joint_limits", "read_link_names"]
+__all__ = ["ArmWorld", "BaseWorld", "Contact", "JointLimit", "read_joint_limits", "read_link_names"]
 
 
 def __getattr__(name: str) -> Any:
@@ -21,4 +22,8 @@ def __getattr__(name: str) -> Any:
         from blanket.sim import arm_world
 
         return getattr(arm_world, name)
+    if name == "BaseWorld":
+        from blanket.sim.base_world import BaseWorld
+
+        return BaseWorld
     raise AttributeError(f"module 'blanket.sim' has no attribute {name!r}")

@@ -21,7 +21,7 @@ from collections.abc import Callable, Iterable, Iterator, Mapping
 from pathlib import Path
 from typing import Any
 
-from blanket.errors import ConfigError
+from blanket.errors import ConfigError, did_you_mean
 
 __all__ = [
     "ENGINES",
@@ -98,12 +98,8 @@ def condition_parts(
         return {}, lambda env: env, {}
     cond = _registry().get(name)
     if cond is None:
-        import difflib
-
-        valid = condition_names()
-        close = difflib.get_close_matches(name, valid, n=1)
-        hint = f"did you mean {close[0]}? " if close else ""
-        raise ConfigError(f"--condition {name!r} is unknown; {hint}valid: {', '.join(valid)}")
+        hint = did_you_mean(name, condition_names(), n=1, list_valid=True)
+        raise ConfigError(f"--condition {name!r} is unknown; {hint}")
     return dict(cond.env_options), cond.wrap, dict(cond.model_options)
 
 

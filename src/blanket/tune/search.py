@@ -19,7 +19,7 @@ from typing import Any
 
 import numpy as np
 
-from blanket.errors import ConfigError
+from blanket.errors import ConfigError, did_you_mean
 from blanket.tune.space import ParameterSpec
 
 __all__ = [
@@ -90,10 +90,7 @@ def parse_objective(text: str) -> Objective:
             f"got {text!r}"
         )
     if metric not in METRICS:
-        import difflib
-
-        close = difflib.get_close_matches(metric, METRICS, n=2)
-        hint = f"did you mean {', '.join(close)}?" if close else f"one of {', '.join(METRICS)}"
+        hint = did_you_mean(metric, METRICS, n=2)
         raise ConfigError(f"--objective metric {metric!r} is unknown; {hint}")
     return Objective(direction, metric)
 

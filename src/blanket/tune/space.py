@@ -21,7 +21,6 @@ a list; ``COUNT`` matters only to the grid.
 
 from __future__ import annotations
 
-import difflib
 import math
 import re
 from collections.abc import Iterable, Mapping, Sequence
@@ -30,7 +29,7 @@ from typing import Any
 
 import numpy as np
 
-from blanket.errors import ConfigError
+from blanket.errors import ConfigError, did_you_mean
 
 __all__ = [
     "ParameterSpec",
@@ -254,17 +253,12 @@ def check_names(specs: Sequence[ParameterSpec], env_id: str, agent: Mapping[str,
         seen.add(spec.name)
         table, key = spec.name.split(".", 1)
         if table not in TABLES:
-            close = difflib.get_close_matches(table, TABLES, n=1)
-            hint = f"did you mean {close[0]}.{key}?" if close else f"use {', '.join(TABLES)}"
+            hint = did_you_mean(spec.name, [f"{t}.{key}" for t in TABLES], n=1)
             raise ConfigError(f"--vary {spec.name}: unknown table {table!r}; {hint}")
         valid = names[table]
         if valid is None or key in valid:
             continue
-        close = difflib.get_close_matches(key, valid, n=3, cutoff=0.5)
-        if close:
-            hint = "did you mean " + ", ".join(f"{table}.{c}" for c in close) + "?"
-        else:
-            hint = f"valid {table} keys: {', '.join(valid)}"
+        hint = did_you_mean(spec.name, [f"{table}.{c}" for c in valid], cutoff=0.5)
         raise ConfigError(f"--vary {spec.name}: unknown {table} key {key!r}; {hint}")
 
 
