@@ -8,6 +8,7 @@ import numpy as np
 import pytest
 
 import blanket  # noqa: F401  (registers the envs)
+from blanket import wrappers
 from blanket.cli import main
 from blanket.conditions import (
     PARAMETERS,
@@ -19,14 +20,6 @@ from blanket.conditions import (
 )
 from blanket.errors import ConfigError
 from blanket.scenario import load_scenario, scenario_from_dict
-from blanket.wrappers.perturbations import (
-    CameraDelay,
-    CameraDropout,
-    MovingTarget,
-    Payload,
-    RandomPushes,
-    SensorNoiseScale,
-)
 
 PLANAR = "blanket/planar-2link-v0"
 ARM = "blanket/arm-reach-v0"
@@ -151,12 +144,12 @@ def test_an_env_made_at_another_rate_is_refused():
 # The wrappers the benchmark's named conditions were built from before they became mappings
 # of parameters: the same wrappers with the same arguments must give the same episodes.
 _DIRECT = {
-    "sensor-noise-x3": lambda e: SensorNoiseScale(e, factor=3.0),
-    "camera-dropout-30": lambda e: CameraDropout(e, probability=0.3),
-    "camera-delay-2": lambda e: CameraDelay(e, frames=2),
-    "payload-1.5kg": lambda e: Payload(e, mass_kg=1.5),
-    "random-pushes": lambda e: RandomPushes(e, force_n=20.0, rate_hz=0.5, duration_s=0.2),
-    "moving-target": lambda e: MovingTarget(e, speed_m_s=0.05),
+    "sensor-noise-x3": lambda e: wrappers.SensorNoiseScale(e, factor=3.0),
+    "camera-dropout-30": lambda e: wrappers.CameraDropout(e, probability=0.3),
+    "camera-delay-2": lambda e: wrappers.CameraDelay(e, frames=2),
+    "payload-1.5kg": lambda e: wrappers.Payload(e, mass_kg=1.5),
+    "random-pushes": lambda e: wrappers.RandomPushes(e, force_n=20.0, rate_hz=0.5, duration_s=0.2),
+    "moving-target": lambda e: wrappers.MovingTarget(e, speed_m_s=0.05),
 }
 
 
@@ -253,3 +246,24 @@ def test_blanket_tune_with_an_unknown_condition_exits_2(tmp_path, capsys):
     assert main([*args, "--condition", "camera_dropout=0.3"]) == 2
     err = capsys.readouterr().err.strip()
     assert len(err.splitlines()) == 1 and "did you mean camera_dropout_probability?" in err
+
+
+def test_shipped_scenarios_load_and_apply_their_conditions():
+    from pathlib import Path
+
+    import blanket_envs
+
+    folder = Path(blanket_envs.__file__).parent / "scenarios"
+    paths = sorted(folder.glob("*.toml"))
+    assert any(load_scenario(p).conditions for p in paths)
+    for path in paths:
+        scenario = load_scenario(path)
+        options = {**scenario.env_options, **condition_env_options(scenario.conditions)}
+        env = gym.make(scenario.env, **options)
+        try:
+            wrapped, _ = apply_conditions(env, scenario.conditions)
+            _obs, info = wrapped.reset(seed=0)
+            for key, value in scenario.conditions.items():
+                assert info["external"][key] == value, (path.name, key)
+        finally:
+            env.close()
