@@ -243,6 +243,7 @@ def test_bench_quick_reduced_suite_writes_results_report_and_charts(tmp_path):
         assert r["success_5cm"] == 1.0  # all three reach the planar targets
     report = (out / "report.md").read_text()
     assert "| classical |" in report and "payload-1.5kg" in report
+    assert "`payload_kg = 1.5`" in report and "SafetyLimits" in report
     for png in ("success_5cm.png", "success_1cm.png", "final_error.png"):
         assert (out / png).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     assert main(["bench", "--quick", "--out", str(out), "--policies", "classical"]) == 2
