@@ -178,6 +178,8 @@ def test_bench_list_prints_builtin_names(capsys):
         "camera-delay-2",
         "moving-target",
         "miscalibrated-lengths",
+        "payload_kg",
+        "push_magnitude_n",
     ):
         assert name in out
 

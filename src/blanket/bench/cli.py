@@ -102,7 +102,10 @@ def run_bench(args: argparse.Namespace) -> int:
         print("condition parameters (scenario [conditions], blanket tune --condition):")
         for name, p in PARAMETERS.items():
             bracket = "(" if p.low_open else "["
-            print(f"  {name:<28} {p.summary}; allowed {bracket}{p.low:g}, {p.high:g}]")
+            print(
+                f"  {name:<28} {p.summary}; allowed {bracket}{p.low:g}, {p.high:g}]; "
+                f"sets {p.drives}"
+            )
         return 0
     from blanket.runner import prepare_out_dir
 
