@@ -186,9 +186,9 @@ PARAMETERS: dict[str, ConditionParameter] = _parameters(
     ),
 )
 
-#: Push parameters that only mean something with ``push_magnitude_n``.
-_PUSH_DETAILS = ("push_rate_hz", "push_duration_s")
-_PUSH_DEFAULTS = {"push_rate_hz": 0.5, "push_duration_s": 0.2}
+#: Push parameters that only mean something with ``push_magnitude_n``: RandomPushes keywords
+#: (RandomPushes' own defaults when not given).
+_PUSH_DETAILS = {"push_rate_hz": "rate_hz", "push_duration_s": "duration_s"}
 #: Parameters that are not env wrappers: where they go instead.
 _ENV_OPTIONS = {"control_hz": "control_hz"}
 _MODEL_OPTIONS = {"model_length_scale": "length_scale"}
@@ -291,13 +291,8 @@ def apply_conditions(
     if "payload_kg" in checked:
         env = Payload(env, mass_kg=checked["payload_kg"])
     if "push_magnitude_n" in checked:
-        push = {k: checked.get(k, default) for k, default in _PUSH_DEFAULTS.items()}
-        env = RandomPushes(
-            env,
-            force_n=checked["push_magnitude_n"],
-            rate_hz=push["push_rate_hz"],
-            duration_s=push["push_duration_s"],
-        )
+        details = {arg: checked[k] for k, arg in _PUSH_DETAILS.items() if k in checked}
+        env = RandomPushes(env, force_n=checked["push_magnitude_n"], **details)
     if "target_speed_m_s" in checked:
         env = MovingTarget(env, speed_m_s=checked["target_speed_m_s"])
     if "sensor_noise_scale" in checked:
