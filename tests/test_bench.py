@@ -178,6 +178,8 @@ def test_bench_list_prints_builtin_names(capsys):
         "camera-delay-2",
         "moving-target",
         "miscalibrated-lengths",
+        "payload_kg",
+        "push_magnitude_n",
     ):
         assert name in out
 
@@ -243,6 +245,7 @@ def test_bench_quick_reduced_suite_writes_results_report_and_charts(tmp_path):
         assert r["success_5cm"] == 1.0  # all three reach the planar targets
     report = (out / "report.md").read_text()
     assert "| classical |" in report and "payload-1.5kg" in report
+    assert "`payload_kg = 1.5`" in report and "SafetyLimits" in report
     for png in ("success_5cm.png", "success_1cm.png", "final_error.png"):
         assert (out / png).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     assert main(["bench", "--quick", "--out", str(out), "--policies", "classical"]) == 2
@@ -268,6 +271,70 @@ def test_every_policy_meets_identical_targets_and_perturbations(tmp_path):
         assert [e["perturbation_digest"] for e in a] == [e["perturbation_digest"] for e in b]
         assert a[0]["target_start_m"] != a[1]["target_start_m"]
         assert a[0]["perturbation_digest"] != a[1]["perturbation_digest"]
+
+
+def _chain(env) -> list[type]:
+    out = []
+    while True:
+        out.append(type(env))
+        if not hasattr(env, "env"):
+            return out
+        env = env.env
+
+
+@pytest.mark.parametrize("condition", ["nominal", "payload-1.5kg", "control-120hz"])
+def test_bench_envs_carry_the_safety_wrapper_of_run_outermost(condition):
+    """Every policy meets the limits `blanket run` applies: the same SafetyLimits and profile,
+    directly under the policy, with the condition's perturbations inside it."""
+    import gymnasium as gym
+
+    from blanket.bench.suite import BenchSettings, _make_env
+    from blanket.conditions import PRESETS
+    from blanket.runner import with_safety
+    from blanket.wrappers import Payload, SafetyLimits
+
+    settings = BenchSettings.from_cli(
+        policies=["classical"], conditions=[condition], robot="planar", episodes=1
+    )
+    env = _make_env(settings, "velocity", PRESETS[condition])
+    reference = with_safety(gym.make("blanket/planar-2link-v0"))
+    try:
+        chain = _chain(env)
+        assert chain[0] is SafetyLimits and chain.count(SafetyLimits) == 1
+        assert (Payload in chain) == (condition == "payload-1.5kg")
+        assert env.profile == reference.profile
+        np.testing.assert_array_equal(env.velocity_limit_rad_s, reference.velocity_limit_rad_s)
+        _obs, info = env.reset(seed=0)
+        _obs, _r, _t, _tr, info = env.step(100.0 * env.command_limit)
+        assert info["safety"]["clamped"] and not info["safety"]["safe_stop"]
+        assert np.all(np.abs(info["action_applied"]) <= env.velocity_limit_rad_s * (1 + 1e-12))
+        assert "joint_speed_ratio" in info["safety"]
+        if condition == "payload-1.5kg":
+            assert info["external"]["payload_kg"] == 1.5
+    finally:
+        env.close()
+        reference.close()
+
+
+def test_rl_training_env_puts_the_safety_wrapper_under_the_action_scaling():
+    """The learner's [-1, 1] actions are scaled to physical units first, then checked."""
+    import gymnasium as gym
+
+    from blanket.bench.rl import ReachVectorObservation, TrainSettings, make_training_env
+    from blanket.wrappers import SafetyLimits
+
+    env = make_training_env(TrainSettings(algo="ppo", steps=8, robot="planar"), monitor=False)
+    try:
+        chain = _chain(env)
+        safety = chain.index(SafetyLimits)
+        assert chain.index(ReachVectorObservation) < safety
+        assert chain.index(gym.wrappers.RescaleAction) < safety
+        env.reset(seed=0)
+        _obs, _r, _t, _tr, info = env.step(np.ones(env.action_space.shape, dtype=np.float32))
+        limits = env.unwrapped.description.velocity_limit_rad_s
+        assert np.all(np.abs(info["action_applied"]) <= limits * (1 + 1e-12))
+    finally:
+        env.close()
 
 
 # ----------------------------------------------------------------------------- RL

@@ -20,12 +20,8 @@ AGENT_DIRS = ("src/blanket/agent", "src/blanket/body")
 AGENT_MODULES = ("blanket.body", "blanket.agent")
 WORLD_MODULES = ("blanket.sim", "blanket.sensors", "blanket.wrappers", "blanket_envs")
 
-# Known exceptions, file -> forbidden module it may still import.
-KNOWN = {
-    # Being removed by another change (the safety wrapper stops building the agent's ArmModel);
-    # drop this entry once that change is merged.
-    "src/blanket/wrappers/safety_limits.py": "blanket.body",
-}
+# Known exceptions, file -> forbidden module it may still import (none left).
+KNOWN: dict[str, str] = {}
 
 
 def _module_name(path: Path) -> str:

@@ -56,6 +56,14 @@ HOSTILE = {
     "agent_nan_gain": PLANAR + "[agent]\nattractor_gain_1_s = nan\n",
     "agent_bad_order": PLANAR + '[agent]\norder = "two"\n',
     "human_render_headless": PLANAR + '[env_options]\nrender_mode = "human"\n',
+    "unknown_condition": ARM + "[conditions]\npayload = 0.3\n",
+    "condition_out_of_range": PLANAR + "[conditions]\ncamera_dropout_probability = 2.0\n",
+    "condition_not_a_number": PLANAR + '[conditions]\npayload_kg = "heavy"\n',
+    "condition_nan": PLANAR + "[conditions]\nsensor_noise_scale = nan\n",
+    "condition_fraction_of_a_frame": PLANAR + "[conditions]\ncamera_delay_frames = 0.5\n",
+    "conditions_not_table": PLANAR + "conditions = 3\n",
+    "condition_and_env_option_both": PLANAR
+    + "[env_options]\ncontrol_hz = 240.0\n[conditions]\ncontrol_hz = 120.0\n",
 }
 
 

@@ -560,3 +560,118 @@ def test_base_env_commands_are_bounded_and_nan_stops() -> None:
             SafetyLimits(base, tool_speed_cap_m_s=0.25)
     finally:
         base.close()
+
+
+# ------------------------------------------------------- measured speed against the limit
+@pytest.mark.parametrize(
+    "control, patterns, steps",
+    [("velocity", 5, 300), ("torque", 3, 200)],
+)
+def test_hundredfold_commands_keep_the_measured_joint_speed_at_the_limit(
+    control: str, patterns: int, steps: int
+) -> None:
+    """A policy that asks for 100x the profile's limits on every joint (the largest command
+    that is still clamped rather than treated as divergence) runs the arm at its limits and
+    no faster: the peak of ``info["safety"]["joint_speed_ratio"]`` stays within 5 %."""
+    env, _ = cached_env("blanket/arm-reach-v0", robot="iiwa", control=control)
+    rng = np.random.default_rng(11)
+    peaks = []
+    for p in range(patterns):
+        sign = np.ones(7) if p == 0 else rng.choice([-1.0, 1.0], size=7)
+        _obs, info = env.reset(seed=p)
+        assert info["safety"]["joint_speed_ratio"] == 0.0  # at rest after reset
+        peak = 0.0
+        for _ in range(steps):
+            _obs, _r, _term, _trunc, info = env.step(100.0 * env.command_limit * sign)
+            ratio = info["safety"]["joint_speed_ratio"]
+            speed = np.abs(info["external"]["joint_velocity_rad_s"])
+            assert ratio == pytest.approx(np.max(speed / env.velocity_limit_rad_s), rel=1e-12)
+            peak = max(peak, ratio)
+        peaks.append(peak)
+    print(f"\n{control}: peak joint speed / profile limit per command pattern: {peaks}")
+    assert max(peaks) <= 1.05
+    assert min(peaks) >= 0.95  # the arm did run at its limit
+
+
+def test_base_env_reports_wheel_speed_ratio() -> None:
+    base = gym.make("blanket/base-goto-v0")
+    try:
+        env = SafetyLimits(base)
+        env.reset(seed=0)
+        for _ in range(40):
+            _, _, _, _, info = env.step(50.0 * env.command_limit)
+        wheels = np.abs(info["external"]["wheel_speed_rad_s"])
+        expected = np.max(wheels / env.command_limit)
+        assert info["safety"]["joint_speed_ratio"] == pytest.approx(expected)
+        assert 0.5 < info["safety"]["joint_speed_ratio"] <= 1.05
+    finally:
+        base.close()
+
+
+# ------------------------------------------------------------ world-side dynamics
+@pytest.mark.parametrize("robot", ["iiwa", "panda", "xarm6"])
+def test_world_dynamics_match_the_body_model_they_replace(robot: str) -> None:
+    """The wrapper's M(q), h(q, q') and tip Jacobian now come from the simulator
+    (``ArmWorld``); they equal the agent's pinocchio body model that it used before."""
+    from blanket.body import ArmModel
+
+    env = gym.make("blanket/arm-reach-v0", robot=robot)
+    try:
+        env.reset(seed=0)
+        world, d = env.unwrapped.world, env.unwrapped.description
+        model = ArmModel.from_urdf(d.urdf_path, d.end_effector, joint_names=d.joint_names)
+        rng = np.random.default_rng(3)
+        for _ in range(4):
+            q = rng.uniform(np.maximum(d.lower_rad, -2.5), np.minimum(d.upper_rad, 2.5))
+            qd = rng.normal(0.0, 1.0, size=q.size)
+            M = world.mass_matrix(q)
+            np.testing.assert_allclose(M, model.mass_matrix(q), rtol=1e-9, atol=1e-9)
+            np.testing.assert_allclose(M, M.T, atol=1e-12)
+            h = world.inverse_dynamics(q, qd, np.zeros_like(q))
+            np.testing.assert_allclose(h, model.nonlinear_effects(q, qd), rtol=1e-9, atol=1e-9)
+            np.testing.assert_allclose(
+                world.tip_jacobian(q), model.tip_jacobian(q), rtol=1e-9, atol=1e-9
+            )
+    finally:
+        env.close()
+
+
+def test_world_tip_jacobian_is_the_derivative_of_pybullets_forward_kinematics() -> None:
+    # Reference: central differences of pybullet's own link-frame positions (getLinkState),
+    # which pybullet returns rounded to float32 (~6e-8 m here): hence the 1e-3 rad step.
+    env = gym.make("blanket/arm-reach-v0", robot="iiwa")
+    try:
+        env.reset(seed=0)
+        world = env.unwrapped.world
+        q = np.array([0.3, 0.7, -0.4, -1.2, 0.5, 0.9, 0.1])
+        eps = 1e-3
+        shifted = np.concatenate([q + eps * np.eye(7), q - eps * np.eye(7)])
+        tips = world.tip_positions_for(shifted)
+        numeric = ((tips[:7] - tips[7:]) / (2 * eps)).T
+        np.testing.assert_allclose(world.tip_jacobian(q), numeric, atol=1e-4)
+    finally:
+        env.close()
+
+
+def test_safety_wrapper_never_loads_the_agents_body_model() -> None:
+    """World code must not import the agent's internals: run the torque brake (M and h) and
+    the workspace box (tip Jacobian) in a fresh interpreter and look at what got imported."""
+    import subprocess
+    import sys
+
+    code = (
+        "import sys, numpy as np, gymnasium as gym, blanket\n"
+        "from blanket.wrappers import SafetyLimits\n"
+        "box = [[0.2, -0.6, 0.0], [0.9, 0.6, 0.8]]\n"
+        "for control in ('torque', 'velocity'):\n"
+        "    env = SafetyLimits(gym.make('blanket/arm-reach-v0', robot='iiwa', control=control),\n"
+        "                       workspace_box_m=box, tool_speed_cap_m_s=0.25)\n"
+        "    env.reset(seed=0)\n"
+        "    env.step(np.full(7, 0.5)); env.step(np.full(7, np.nan)); env.step(np.zeros(7))\n"
+        "    env.close()\n"
+        "print(sorted(m for m in sys.modules if m.startswith(('blanket.body', 'blanket.agent'))))\n"
+    )
+    proc = subprocess.run(
+        [sys.executable, "-c", code], capture_output=True, text=True, timeout=120, check=True
+    )
+    assert proc.stdout.strip().splitlines()[-1] == "[]"

@@ -318,7 +318,9 @@ def test_different_sweep_in_same_folder_refused(tmp_path):
 def test_bad_trial_value_and_condition_raise_one_line(tmp_path):
     with pytest.raises(ConfigError, match=r"trial 0 .*camera_precision must be a number > 0"):
         _sweep(tmp_path, "bad", vary=["agent.camera_precision=-1"], seeds=[0], workers=1)
-    with pytest.raises(ConfigError, match=r"--condition 'windy' is unknown; valid: .*nominal"):
+    with pytest.raises(
+        ConfigError, match=r"--condition: unknown condition 'windy'; valid: .*nominal"
+    ):
         _sweep(
             tmp_path,
             "cond",
@@ -492,7 +494,7 @@ def test_ray_local_instance_equals_local_engine(tmp_path):
 
 def test_condition_runs_the_benchmarks_perturbation(tmp_path):
     """A sweep under a condition gives the numbers of the condition's own wrapper chain."""
-    conditions = pytest.importorskip("blanket.bench.conditions")
+    from blanket.bench import conditions
     from blanket.runner import build_agent, run_episodes, with_safety
     from blanket.scenario import make_env
 
@@ -538,7 +540,6 @@ def test_tuned_precisions_beat_defaults_on_held_out_seeds(tmp_path):
     """
     from blanket.tune.engines import evaluate_trial
 
-    pytest.importorskip("blanket.bench.conditions")
     base = _planar(2.0)
     res = run_sweep(
         base,

@@ -16,8 +16,15 @@ A scenario file is TOML::
     class = "mypackage.agents:MyAgent"    # optional: an import path you wrote
     order = 2
 
+    [conditions]                          # optional perturbations (blanket.conditions)
+    payload_kg = 0.3
+    camera_dropout_probability = 0.1
+
 Relative paths (``env_options.urdf``) resolve against the file's folder. Unknown keys are
-rejected with the closest valid names.
+rejected with the closest valid names. ``[conditions]`` takes the parameters of
+:data:`blanket.conditions.PARAMETERS`, checked when the file is read; ``control_hz`` belongs
+in one table only (``[env_options]`` or ``[conditions]``), and so does the body model's length
+scale (``[agent] length_scale`` or ``[conditions] model_length_scale``).
 """
 
 from __future__ import annotations
@@ -33,6 +40,7 @@ from typing import Any
 import gymnasium
 import numpy as np
 
+from blanket.conditions import check_conditions, condition_env_options, condition_model_options
 from blanket.errors import ConfigError, did_you_mean
 
 __all__ = ["Scenario", "load_scenario", "load_object", "env_option_names", "make_env"]
@@ -47,7 +55,12 @@ MAX_EPISODES = 100_000
 
 @dataclass
 class Scenario:
-    """A parsed scenario: env id, env options, agent options and optional defaults."""
+    """A parsed scenario: env id, env options, agent options, conditions and optional defaults.
+
+    ``conditions`` maps parameters of :data:`blanket.conditions.PARAMETERS` to values; apply
+    them with :func:`blanket.conditions.apply_conditions` (and give
+    :func:`blanket.conditions.condition_env_options` to the env).
+    """
 
     env: str
     env_options: dict[str, Any] = field(default_factory=dict)
@@ -56,6 +69,7 @@ class Scenario:
     episodes: int | None = None
     seed: int | None = None
     source: str | None = None
+    conditions: dict[str, Any] = field(default_factory=dict)
 
     def to_toml(self) -> str:
         """Render as TOML text that :func:`load_scenario` reads back."""
@@ -64,7 +78,10 @@ class Scenario:
             lines.append(f"episodes = {self.episodes}")
         if self.seed is not None:
             lines.append(f"seed = {self.seed}")
-        for table, values in (("env_options", self.env_options), ("agent", self.agent)):
+        tables = [("env_options", self.env_options), ("agent", self.agent)]
+        if self.conditions:
+            tables.append(("conditions", self.conditions))
+        for table, values in tables:
             lines.append("")
             lines.append(f"[{table}]")
             for k, v in values.items():
@@ -207,14 +224,28 @@ def scenario_from_dict(
     _check_env_options(env_id, env_options, where)
     if "episodes" in data and not 1 <= data["episodes"] <= MAX_EPISODES:
         raise ConfigError(f"{where}: episodes must be in 1..{MAX_EPISODES}, got {data['episodes']}")
+    agent = dict(data.get("agent", {}))
+    conditions = check_conditions(data.get("conditions"), f"{where}: conditions")
+    for table, options in (
+        ("env_options", condition_env_options(conditions)),
+        ("agent", condition_model_options(conditions)),
+    ):
+        given = env_options if table == "env_options" else agent
+        for key in options:
+            if key in given:
+                raise ConfigError(
+                    f"{where}: [conditions] sets the {table} option {key}, and so does "
+                    f"[{table}]; keep one"
+                )
     return Scenario(
         env=env_id,
         env_options=env_options,
-        agent=dict(data.get("agent", {})),
+        agent=agent,
         name=data.get("name", Path(where).stem),
         episodes=data.get("episodes"),
         seed=data.get("seed"),
         source=where,
+        conditions=conditions,
     )
 
 

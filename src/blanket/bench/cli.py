@@ -51,7 +51,7 @@ def add_bench_parser(sub: Any) -> argparse.ArgumentParser:
         metavar="A,B",
         help="policies: built-in names (see --list) or import paths 'package.module:Name'",
     )
-    p.add_argument("--conditions", metavar="C,D", help="conditions (see --list)")
+    p.add_argument("--conditions", metavar="C,D", help="named conditions (see --list)")
     p.add_argument(
         "--episodes",
         type=_positive_int,
@@ -87,17 +87,25 @@ def add_bench_parser(sub: Any) -> argparse.ArgumentParser:
 
 
 def run_bench(args: argparse.Namespace) -> int:
-    from blanket.bench.conditions import CONDITIONS
     from blanket.bench.policies import POLICIES
     from blanket.bench.suite import BenchSettings, run_benchmark
+    from blanket.conditions import PARAMETERS, PRESETS
 
     if args.list:
         print("policies:")
         for name, spec in POLICIES.items():
             print(f"  {name:<28} {spec.summary}")
         print("conditions:")
-        for name, cond in CONDITIONS.items():
-            print(f"  {name:<28} {cond.summary}")
+        for name, cond in PRESETS.items():
+            values = ", ".join(f"{k} = {v:g}" for k, v in cond.parameters.items())
+            print(f"  {name:<28} {cond.summary}" + (f" ({values})" if values else ""))
+        print("condition parameters (scenario [conditions], blanket tune --condition):")
+        for name, p in PARAMETERS.items():
+            bracket = "(" if p.low_open else "["
+            print(
+                f"  {name:<28} {p.summary}; allowed {bracket}{p.low:g}, {p.high:g}]; "
+                f"sets {p.drives}"
+            )
         return 0
     from blanket.runner import prepare_out_dir
 

@@ -59,6 +59,20 @@ def _grid(records, value) -> list[str]:
     return lines
 
 
+def _condition_lines(records: Sequence[Mapping[str, Any]]) -> list[str]:
+    """The parameters of each named condition in the records (blanket.conditions)."""
+    from blanket.conditions import PRESETS
+
+    lines = []
+    for name in _order(records, "condition"):
+        preset = PRESETS.get(name)
+        if preset is None:
+            continue
+        values = ", ".join(f"`{k} = {v:g}`" for k, v in preset.parameters.items())
+        lines.append(f"- **{name}**: {preset.summary}" + (f" ({values})" if values else ""))
+    return ["Conditions:", "", *lines, ""] if lines else []
+
+
 def markdown_report(
     records: Sequence[Mapping[str, Any]],
     settings: Mapping[str, Any] | None = None,
@@ -78,9 +92,13 @@ def markdown_report(
         )
         lines.append("")
     lines += [
+        "Every policy commands through the safety wrapper `blanket run` uses (SafetyLimits "
+        "with the arm's profile, outermost, around the condition's perturbations).",
+        "",
         "Success: the tool tip entered the ball and stayed 0.25 s. Intervals: 95 % percentile "
         "bootstrap of the rate (Efron & Tibshirani 1993, An Introduction to the Bootstrap).",
         "",
+        *_condition_lines(records),
         "## Reached within 1 cm, % [95 % interval]",
         "",
         *_grid(records, lambda r: _rate(r, "1cm")),

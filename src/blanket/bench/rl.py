@@ -242,18 +242,43 @@ def make_bench_env(
     robot: str = "iiwa",
     control: str = "velocity",
     episode_s: float = 4.0,
+    conditions: Mapping[str, Any] | None = None,
     **env_options: Any,
 ) -> gym.Env:
-    """The benchmark's reaching env: ``blanket/arm-reach-v0`` (or the planar arm)."""
-    import blanket  # noqa: F401  (registers the ids)
+    """The benchmark's reaching env: ``blanket/arm-reach-v0`` (or the planar arm).
 
+    Built the way ``blanket run`` builds its env, for every policy alike: the bare env (with
+    the condition's env options), the condition's perturbation wrappers
+    (:func:`blanket.conditions.apply_conditions`), and the safety wrapper outermost
+    (:func:`blanket.runner.with_safety`), directly under the policy. A learner's observation
+    and action-scaling wrappers go on top (:func:`make_training_env`).
+
+    Parameters
+    ----------
+    robot, control, episode_s
+        The arm (``planar`` for the planar 2-link arm), its control mode and episode length.
+    conditions : mapping, optional
+        Condition parameters (:data:`blanket.conditions.PARAMETERS`).
+    **env_options
+        Further env constructor keywords.
+    """
+    import blanket  # noqa: F401  (registers the ids)
+    from blanket.conditions import apply_conditions, condition_env_options
+    from blanket.runner import with_safety
+
+    options = {**env_options, **condition_env_options(conditions)}
     if robot == "planar":
-        return gym.make(
-            "blanket/planar-2link-v0", control=control, episode_s=episode_s, **env_options
+        env = gym.make("blanket/planar-2link-v0", control=control, episode_s=episode_s, **options)
+    else:
+        env = gym.make(
+            "blanket/arm-reach-v0", robot=robot, control=control, episode_s=episode_s, **options
         )
-    return gym.make(
-        "blanket/arm-reach-v0", robot=robot, control=control, episode_s=episode_s, **env_options
-    )
+    try:
+        env, _model_options = apply_conditions(env, conditions)
+        return with_safety(env)
+    except BaseException:
+        env.close()
+        raise
 
 
 def make_training_env(settings: TrainSettings, monitor: bool = True) -> gym.Env:

@@ -9,10 +9,10 @@ from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
 
-from blanket.bench.conditions import QUICK_CONDITIONS, Condition, resolve_conditions
 from blanket.bench.evaluate import run_policy_episode
 from blanket.bench.metrics import aggregate, episode_metrics
 from blanket.bench.policies import POLICIES, PolicySpec, resolve_policy
+from blanket.conditions import PRESETS, Condition, resolve_conditions
 from blanket.errors import ConfigError
 
 __all__ = ["BenchSettings", "run_benchmark", "DEFAULT_POLICIES", "QUICK_POLICIES", "ROBOTS"]
@@ -29,7 +29,7 @@ class BenchSettings:
     """What a benchmark run covers (saved in ``results.json`` beside the records)."""
 
     policies: list[str] = field(default_factory=lambda: list(DEFAULT_POLICIES))
-    conditions: list[str] = field(default_factory=lambda: list(QUICK_CONDITIONS))
+    conditions: list[str] = field(default_factory=lambda: list(PRESETS))
     episodes: int = 20
     seed: int = 0
     robot: str = "iiwa"
@@ -94,10 +94,12 @@ def _available_rl(folder: str | None) -> list[str]:
 
 
 def _make_env(settings: BenchSettings, control: str, condition: Condition) -> Any:
+    """The env of one condition: perturbations inside, the safety wrapper outermost."""
     from blanket.bench.rl import make_bench_env
 
-    env = make_bench_env(settings.robot, control, settings.episode_s, **dict(condition.env_options))
-    return condition.wrap(env)
+    return make_bench_env(
+        settings.robot, control, settings.episode_s, conditions=condition.parameters
+    )
 
 
 def _note(spec: PolicySpec, condition: Condition) -> str:

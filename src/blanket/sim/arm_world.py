@@ -137,11 +137,15 @@ class ArmWorld:
         self._link_names: dict[int, str] = {-1: c.getBodyInfo(self.robot)[0].decode()}
         joint_index: dict[str, int] = {}
         link_index: dict[str, int] = {self._link_names[-1]: -1}
+        # Movable joints in pybullet's order: the degrees of freedom of its dynamics calls.
+        self._movable: list[int] = []
         for j in range(n_bullet):
             info = c.getJointInfo(self.robot, j)
             joint_index[info[1].decode()] = j
             link_index[info[12].decode()] = j
             self._link_names[j] = info[12].decode()
+            if info[2] != pybullet.JOINT_FIXED:
+                self._movable.append(j)
         if end_effector not in link_index:
             raise ConfigError(
                 f"end_effector: link {end_effector!r} was merged away by pybullet; pick a link "
@@ -154,6 +158,11 @@ class ArmWorld:
         for name, limit in limits.items():
             if name not in self.joint_names:
                 self._held.append((joint_index[name], float(held.get(name, 0.0)), limit.effort))
+        # Columns of the controlled joints among the movable ones; held joints at their hold.
+        self._dof_columns = np.array([self._movable.index(j) for j in self.joint_indices])
+        self._dof_angles = np.zeros(len(self._movable))
+        for j, position, _ in self._held:
+            self._dof_angles[self._movable.index(j)] = position
 
         # URDF joint damping made a torque-controlled wrist blow up at 240 Hz: zero all damping.
         for link in range(-1, n_bullet):
@@ -474,37 +483,53 @@ class ArmWorld:
         image = np.asarray(rgba, dtype=np.uint8).reshape(height, width, 4)
         return np.ascontiguousarray(image[:, :, :3])
 
+    # ------------------------------------------------------------ dynamics
+    def _all_dofs(self, values: np.ndarray | None, held: np.ndarray | None = None) -> list[float]:
+        """Controlled-joint values spread over every movable joint (held ones: ``held`` or 0)."""
+        out = np.zeros(len(self._movable)) if held is None else held.copy()
+        if values is not None:
+            out[self._dof_columns] = np.asarray(values, dtype=float)
+        return out.tolist()
+
     def inverse_dynamics(
         self, angle_rad: np.ndarray, velocity_rad_s: np.ndarray, acceleration_rad_s2: np.ndarray
     ) -> np.ndarray:
         """Joint torques from pybullet's ``calculateInverseDynamics`` for the controlled joints.
 
-        Held joints are taken at their hold positions with zero velocity and acceleration.
-        pybullet computes these on the model as loaded: a payload set by :meth:`set_payload`
-        does not enter them (it acts in the simulation only).
+        ``inverse_dynamics(q, q', 0)`` is the bias torque ``h(q, q')`` (gravity, Coriolis and
+        centrifugal terms). Held joints are taken at their hold positions with zero velocity
+        and acceleration. pybullet computes these on the model as loaded: a payload set by
+        :meth:`set_payload` does not enter them (it acts in the simulation only).
         """
-        c = self.client
-        movable = [
-            j
-            for j in range(c.getNumJoints(self.robot))
-            if c.getJointInfo(self.robot, j)[2] != pybullet.JOINT_FIXED
-        ]
-        q = dict.fromkeys(movable, 0.0)
-        qd = dict.fromkeys(movable, 0.0)
-        qdd = dict.fromkeys(movable, 0.0)
-        for j, position, _ in self._held:
-            q[j] = position
-        for k, j in enumerate(self.joint_indices):
-            q[j] = float(angle_rad[k])
-            qd[j] = float(velocity_rad_s[k])
-            qdd[j] = float(acceleration_rad_s2[k])
-        tau = c.calculateInverseDynamics(
+        tau = self.client.calculateInverseDynamics(
             self.robot,
-            [q[j] for j in movable],
-            [qd[j] for j in movable],
-            [qdd[j] for j in movable],
+            self._all_dofs(angle_rad, self._dof_angles),
+            self._all_dofs(velocity_rad_s),
+            self._all_dofs(acceleration_rad_s2),
         )
-        return np.array([tau[movable.index(j)] for j in self.joint_indices], dtype=float)
+        return np.asarray(tau, dtype=float)[self._dof_columns]
+
+    def mass_matrix(self, angle_rad: np.ndarray) -> np.ndarray:
+        """Joint-space inertia matrix M(q) of the controlled joints, (n, n), from pybullet's
+        ``calculateMassMatrix`` (held joints at their hold positions; as loaded, no payload)."""
+        M = self.client.calculateMassMatrix(self.robot, self._all_dofs(angle_rad, self._dof_angles))
+        return np.asarray(M, dtype=float)[np.ix_(self._dof_columns, self._dof_columns)]
+
+    def tip_jacobian(self, angle_rad: np.ndarray) -> np.ndarray:
+        """Linear Jacobian (3, n) of the tool tip link's URDF frame origin, world (= base)
+        frame, at joint angles ``angle_rad`` (pybullet's ``calculateJacobian``)."""
+        zeros = [0.0] * len(self._movable)
+        # localPosition [0, 0, 0] is the link's URDF frame origin (measured against finite
+        # differences of getLinkState's worldLinkFramePosition in tests/test_sim.py).
+        linear, _ = self.client.calculateJacobian(
+            self.robot,
+            self.tip_link,
+            [0.0, 0.0, 0.0],
+            self._all_dofs(angle_rad, self._dof_angles),
+            zeros,
+            zeros,
+        )
+        return np.asarray(linear, dtype=float)[:, self._dof_columns]
 
     def close(self) -> None:
         """Disconnect the pybullet client (safe to call twice)."""

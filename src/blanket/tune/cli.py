@@ -9,6 +9,7 @@ from typing import Any
 from blanket.cli_types import positive_int as _positive_int
 from blanket.cli_types import seed as _seed
 from blanket.errors import ConfigError
+from blanket.tune.engines import condition_names
 
 __all__ = ["add_tune_parser", "run_tune"]
 
@@ -40,15 +41,6 @@ examples:
   blanket tune bench.toml --vary agent.motor_precision=log:0.1..100:5 \\
       --engine ray --address auto        # a running Ray cluster (pip install 'blanket[cluster]')
 """
-
-
-def _conditions() -> list[str]:
-    try:
-        from blanket.tune.engines import condition_names
-
-        return condition_names()
-    except Exception:  # noqa: BLE001 - help text must never fail
-        return ["nominal"]
 
 
 def add_tune_parser(sub: Any) -> argparse.ArgumentParser:
@@ -86,9 +78,10 @@ def add_tune_parser(sub: Any) -> argparse.ArgumentParser:
         "--condition",
         default=None,
         metavar="C",
-        help="perturbation condition every episode runs under: "
-        + ", ".join(_conditions())
-        + " (default nominal)",
+        help="perturbation condition every episode runs under: a named condition ("
+        + ", ".join(condition_names())
+        + "; default nominal) or NAME=VALUE[,NAME=VALUE...] of condition parameters "
+        "(see 'blanket bench --list'), e.g. payload_kg=0.3",
     )
     p.add_argument(
         "--objective",

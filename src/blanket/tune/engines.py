@@ -21,7 +21,7 @@ from collections.abc import Callable, Iterable, Iterator, Mapping
 from pathlib import Path
 from typing import Any
 
-from blanket.errors import ConfigError, did_you_mean
+from blanket.errors import ConfigError
 
 __all__ = [
     "ENGINES",
@@ -59,7 +59,7 @@ _PRELOAD = (
     "blanket_envs.arm_reach",
     "blanket.tune.engines",
     "blanket.tune.space",
-    "blanket.bench.conditions",
+    "blanket.conditions",
     "blanket.tune._preload",  # loads the compiled kernel once, for every worker
 )
 
@@ -67,40 +67,54 @@ _PRELOAD = (
 # -- perturbation conditions ---------------------------------------------------------------
 
 
-def _registry() -> Mapping[str, Any]:
-    try:
-        from blanket.bench.conditions import CONDITIONS
-    except ImportError:
-        return {}
-    return CONDITIONS
-
-
 def condition_names() -> list[str]:
-    """Names ``--condition`` accepts: ``nominal`` plus those of ``blanket.bench.conditions``."""
-    return ["nominal"] + [n for n in _registry() if n != "nominal"]
+    """Names ``--condition`` accepts: the presets of :mod:`blanket.conditions` (``nominal``
+    first); ``NAME=VALUE[,NAME=VALUE...]`` in the parameter vocabulary is accepted too."""
+    from blanket.conditions import PRESETS
+
+    return ["nominal"] + [n for n in PRESETS if n != "nominal"]
 
 
 def condition_parts(
-    name: str | None,
+    name: str | None, scenario_conditions: Mapping[str, Any] | None = None
 ) -> tuple[dict[str, Any], Callable[[Any], Any], dict[str, Any]]:
-    """The one hook between sweeps and the benchmark's perturbation conditions.
+    """The one hook between sweeps and the conditions of :mod:`blanket.conditions`.
 
-    Returns the condition's extra env options, its wrapper chain (``env -> env``; wrappers
-    draw from generators seeded at ``reset(seed)``) and its body-model options for the agent.
-    ``None`` and ``"nominal"`` change nothing.
+    ``name`` is a preset (``payload-1.5kg``) or ``NAME=VALUE[,NAME=VALUE...]`` of condition
+    parameters (``payload_kg=0.3``); ``scenario_conditions`` is the scenario's
+    ``[conditions]`` table, applied together with it. Returns the extra env options, the
+    wrapper chain (``env -> env``; wrappers draw from generators seeded at ``reset(seed)``)
+    and the body-model options for the agent. ``None`` / ``"nominal"`` and no scenario
+    conditions change nothing.
 
     Raises
     ------
     ConfigError
-        An unknown name (the message lists the valid ones).
+        An unknown name or parameter, a value out of range, or a parameter set by both the
+        condition and the scenario (one line).
     """
-    if name is None or name == "nominal":
-        return {}, lambda env: env, {}
-    cond = _registry().get(name)
-    if cond is None:
-        hint = did_you_mean(name, condition_names(), n=1, list_valid=True)
-        raise ConfigError(f"--condition {name!r} is unknown; {hint}")
-    return dict(cond.env_options), cond.wrap, dict(cond.model_options)
+    from blanket.conditions import (
+        apply_conditions,
+        check_conditions,
+        condition_env_options,
+        condition_model_options,
+        parse_condition,
+    )
+
+    condition = parse_condition(name, "--condition")
+    own = check_conditions(scenario_conditions, "scenario conditions")
+    both = sorted(set(own) & set(condition.parameters))
+    if both:
+        raise ConfigError(
+            f"--condition {name}: sets {', '.join(both)}, which the scenario's [conditions] "
+            "also sets; keep one"
+        )
+    values = {**own, **condition.parameters}
+    return (
+        condition_env_options(values),
+        lambda env: apply_conditions(env, values)[0],
+        condition_model_options(values),
+    )
 
 
 # -- one trial -----------------------------------------------------------------------------
@@ -182,7 +196,9 @@ def evaluate_trial(payload: Mapping[str, Any]) -> dict[str, Any]:
             ),
             payload["overrides"],
         )
-        extra_env, wrap, model_options = condition_parts(payload.get("condition"))
+        extra_env, wrap, model_options = condition_parts(
+            payload.get("condition"), sc.get("conditions")
+        )
         raw = _cached_env(scenario.env, {**scenario.env_options, **extra_env})
         env = with_safety(wrap(raw))
         agent_options = dict(scenario.agent)

@@ -245,6 +245,7 @@ def sweep_definition(
             "env": scenario.env,
             "env_options": dict(scenario.env_options),
             "agent": dict(scenario.agent),
+            **({"conditions": dict(scenario.conditions)} if scenario.conditions else {}),
         },
         "vary": [s.to_dict() for s in specs],
         "seeds": [int(s) for s in seeds],
@@ -326,7 +327,7 @@ def run_sweep(
     if not seeds or any(s < 0 for s in seeds):
         raise ConfigError(f"seeds must be one or more whole numbers >= 0, got {seeds}")
     check_names(specs, scenario.env, scenario.agent)
-    _extra_env, _wrap, model_options = condition_parts(condition)  # checks the name
+    _extra_env, _wrap, model_options = condition_parts(condition, scenario.conditions)
     for s in specs:
         table, key = s.name.split(".", 1)
         if (table == "agent" and key in model_options) or (
@@ -357,6 +358,7 @@ def run_sweep(
         "env_options": dict(scenario.env_options),
         "agent": dict(scenario.agent),
         "name": scenario.name,
+        "conditions": dict(scenario.conditions),
     }
 
     def payload(index: int, overrides: Mapping[str, Any]) -> dict[str, Any]:

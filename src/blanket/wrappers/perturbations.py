@@ -21,6 +21,12 @@ NoiseBurst          ``fault_noise_burst_<channel>``             bool (burst unde
 The key is present at every step (and at reset) with a neutral value when nothing is
 injected, so a log column never has holes.
 
+The wrappers that a condition (:mod:`blanket.conditions`) drives also write their settings
+under the condition's parameter names, at every step: ``sensor_noise_scale``,
+``camera_dropout_probability``, ``camera_delay_frames``, ``payload_kg``, ``push_magnitude_n``,
+``push_rate_hz``, ``push_duration_s`` and ``target_speed_m_s``
+(``_PerturbationWrapper.condition_values``).
+
 Random draws come from each wrapper's own generator, seeded at ``reset(seed=s)`` from
 ``(s, wrapper name)``; the number of draws per step never depends on the state or the
 actions, so every policy sees identical perturbations for a given seed. The static
@@ -52,6 +58,7 @@ __all__ = [
     "EncoderBias",
     "NoiseBurst",
     "NOISE_CHANNELS",
+    "number_in_range",
 ]
 
 #: Sensor channels a noise wrapper can act on.
@@ -62,7 +69,10 @@ _VELOCITY = "joint_velocity_rad_s"
 _FRESH = "camera_fresh"
 
 
-def _number(name: str, value: Any, low: float, high: float = np.inf, low_open: bool = False):
+def number_in_range(
+    name: str, value: Any, low: float, high: float = np.inf, low_open: bool = False
+) -> float:
+    """``value`` as a float when it is a finite number in range, else a one-line ConfigError."""
     ok = isinstance(value, int | float | np.number) and not isinstance(value, bool)
     if ok:
         v = float(value)
@@ -88,6 +98,9 @@ class _PerturbationWrapper(gym.Wrapper, RecordConstructorArgs):
 
     #: Keys this wrapper writes into ``info["external"]``.
     truth_keys: tuple[str, ...] = ()
+    #: Its settings under the names of :data:`blanket.conditions.PARAMETERS`, written into
+    #: ``info["external"]`` at every reset and step (``external.payload_kg`` and so on).
+    condition_values: dict[str, Any]
 
     def __init__(self, env: gym.Env, **recorded: Any) -> None:
         RecordConstructorArgs.__init__(self, **recorded)
@@ -112,6 +125,7 @@ class _PerturbationWrapper(gym.Wrapper, RecordConstructorArgs):
         self._tag = zlib.crc32(type(self).__name__.encode())
         self._rng: np.random.Generator | None = None
         self._steps = 0
+        self.condition_values = {}
 
     # -- clock and randomness -----------------------------------------------------------
     @property
@@ -140,6 +154,7 @@ class _PerturbationWrapper(gym.Wrapper, RecordConstructorArgs):
         self._steps = 0
         obs, info = dict(obs), self._with_external(info)
         self._on_reset(obs, info)
+        info["external"].update(self.condition_values)
         return self._clip(obs), info
 
     def step(self, action: Any) -> tuple[dict[str, Any], SupportsFloat, bool, bool, dict[str, Any]]:
@@ -148,6 +163,7 @@ class _PerturbationWrapper(gym.Wrapper, RecordConstructorArgs):
         self._steps += 1
         obs, info = dict(obs), self._with_external(info)
         self._on_step(obs, info)
+        info["external"].update(self.condition_values)
         return self._clip(obs), reward, terminated, truncated, info
 
     # -- hooks --------------------------------------------------------------------------
@@ -252,7 +268,7 @@ class SensorNoiseScale(_ExtraNoise):
         self, env: gym.Env, factor: float = 3.0, channels: Sequence[str] = NOISE_CHANNELS
     ) -> None:
         super().__init__(env, factor=factor, channels=tuple(channels))
-        self.factor = _number("factor", factor, 1.0)
+        self.factor = number_in_range("factor", factor, 1.0)
         channels = tuple(channels)
         bad = [c for c in channels if c not in NOISE_CHANNELS]
         if bad or not channels:
@@ -262,6 +278,7 @@ class SensorNoiseScale(_ExtraNoise):
             )
         self.channels = channels
         self._setup_noise(dict.fromkeys(channels, self.factor))
+        self.condition_values = {"sensor_noise_scale": self.factor}
 
     def _on_step(self, obs: dict[str, Any], info: dict[str, Any]) -> None:
         self._add_noise(obs)
@@ -302,9 +319,9 @@ class NoiseBurst(_ExtraNoise):
                 f"channel: must be one of {', '.join(NOISE_CHANNELS)}, got {channel!r}"
             )
         self.channel = channel
-        self.factor = _number("factor", factor, 1.0)
-        self.start_s = _number("start_s", start_s, 0.0)
-        self.duration_s = _number("duration_s", duration_s, 0.0, low_open=True)
+        self.factor = number_in_range("factor", factor, 1.0)
+        self.start_s = number_in_range("start_s", start_s, 0.0)
+        self.duration_s = number_in_range("duration_s", duration_s, 0.0, low_open=True)
         self.truth_keys = (f"fault_noise_burst_{channel}",)
         self._setup_noise({channel: self.factor})
 
@@ -354,7 +371,8 @@ class CameraDropout(_CameraFrames):
 
     def __init__(self, env: gym.Env, probability: float = 0.3) -> None:
         super().__init__(env, probability=probability)
-        self.probability = _number("probability", probability, 0.0, 1.0)
+        self.probability = number_in_range("probability", probability, 0.0, 1.0)
+        self.condition_values = {"camera_dropout_probability": self.probability}
         if _FRESH not in env.observation_space.spaces or not self._points:
             raise ConfigError("CameraDropout: env observation has no camera (camera_fresh)")
         self._delivered: dict[str, Any] = {}
@@ -399,6 +417,7 @@ class CameraDelay(_CameraFrames):
         if _FRESH not in env.observation_space.spaces or not self._points:
             raise ConfigError("CameraDelay: env observation has no camera (camera_fresh)")
         self.frames = int(frames)
+        self.condition_values = {"camera_delay_frames": self.frames}
         self._queue: deque[dict[str, Any]] = deque(maxlen=self.frames + 1)
         self._delivered: dict[str, Any] = {}
 
@@ -436,7 +455,8 @@ class Payload(_PerturbationWrapper):
 
     def __init__(self, env: gym.Env, mass_kg: float = 1.5) -> None:
         super().__init__(env, mass_kg=mass_kg)
-        self.mass_kg = _number("mass_kg", mass_kg, 0.0)
+        self.mass_kg = number_in_range("mass_kg", mass_kg, 0.0)
+        self.condition_values = {"payload_kg": self.mass_kg}
         if not hasattr(env.unwrapped, "set_payload"):
             raise ConfigError("Payload: env has no set_payload hook")
 
@@ -490,9 +510,14 @@ class RandomPushes(_PerturbationWrapper):
         super().__init__(
             env, force_n=force_n, rate_hz=rate_hz, duration_s=duration_s, direction=direction
         )
-        self.force_n = _number("force_n", force_n, 0.0)
-        self.rate_hz = _number("rate_hz", rate_hz, 0.0, low_open=True)
-        self.duration_s = _number("duration_s", duration_s, 0.0, low_open=True)
+        self.force_n = number_in_range("force_n", force_n, 0.0)
+        self.rate_hz = number_in_range("rate_hz", rate_hz, 0.0, low_open=True)
+        self.duration_s = number_in_range("duration_s", duration_s, 0.0, low_open=True)
+        self.condition_values = {
+            "push_magnitude_n": self.force_n,
+            "push_rate_hz": self.rate_hz,
+            "push_duration_s": self.duration_s,
+        }
         if direction not in self.DIRECTIONS:
             raise ConfigError(
                 f"direction: must be one of {', '.join(self.DIRECTIONS)}, got {direction!r}"
@@ -578,7 +603,8 @@ class MovingTarget(_PerturbationWrapper):
         self, env: gym.Env, speed_m_s: float = 0.05, direction: str | Sequence[float] = "+y"
     ) -> None:
         super().__init__(env, speed_m_s=speed_m_s, direction=direction)
-        self.speed_m_s = _number("speed_m_s", speed_m_s, 0.0)
+        self.speed_m_s = number_in_range("speed_m_s", speed_m_s, 0.0)
+        self.condition_values = {"target_speed_m_s": self.speed_m_s}
         if isinstance(direction, str):
             if direction not in self.DIRECTIONS:
                 raise ConfigError(
@@ -645,7 +671,7 @@ class FrozenEncoder(_PerturbationWrapper):
     def __init__(self, env: gym.Env, joint: int = 0, start_s: float = 1.0) -> None:
         super().__init__(env, joint=joint, start_s=start_s)
         self.joint = _joint_index(joint, self._n)
-        self.start_s = _number("start_s", start_s, 0.0)
+        self.start_s = number_in_range("start_s", start_s, 0.0)
         self._held: tuple[float, float] | None = None
 
     def _frozen(self) -> bool:
@@ -690,8 +716,8 @@ class EncoderBias(_PerturbationWrapper):
     ) -> None:
         super().__init__(env, joint=joint, bias_rad=bias_rad, start_s=start_s)
         self.joint = _joint_index(joint, self._n)
-        self.bias_rad = _number("bias_rad", bias_rad, -np.inf)
-        self.start_s = _number("start_s", start_s, 0.0)
+        self.bias_rad = number_in_range("bias_rad", bias_rad, -np.inf)
+        self.start_s = number_in_range("start_s", start_s, 0.0)
 
     def _on_step(self, obs: dict[str, Any], info: dict[str, Any]) -> None:
         bias = np.zeros(self._n)

@@ -11,9 +11,11 @@ What the wrapper does, each step (arm envs):
    ``stop_on_contact`` -- an arm contact with the bench, a tray or itself reported after the
    previous step, replaces the command by the *stop command*: zero joint velocity (velocity
    control), or the braking torque ``tau = h(q, q') - k_brake M(q) q'`` (torque control:
-   gravity and Coriolis terms ``h`` and mass matrix ``M`` from :class:`blanket.body.ArmModel` on
-   the true joint state the simulator reports -- the wrapper is part of the world, not the
-   agent -- clipped to the profile torque). With ``latch_stop`` (default) the stop holds until
+   gravity and Coriolis terms ``h`` and mass matrix ``M`` from the simulator's own
+   rigid-body model, ``ArmWorld.inverse_dynamics`` and ``ArmWorld.mass_matrix`` (pybullet's,
+   as loaded, without a payload), on the true joint state -- the wrapper is part of the
+   world and never uses the agent's body model -- clipped to the profile torque). With
+   ``latch_stop`` (default) the stop holds until
    ``reset()``, like a robot controller's protective stop.
 2. Otherwise the joint-velocity command ``v`` goes through these checks, in order:
 
@@ -35,14 +37,18 @@ What the wrapper does, each step (arm envs):
    through a-d, and a changed ``v+`` is turned back into a torque by inverse dynamics
    (``tau = M (v+ - q')/dt + h``), clipped again to the profile torque. The torque limit
    always holds; the velocity, margin, box and speed checks hold as far as the torque limit
-   and the body model's accuracy allow (a payload the model does not know, or a contact,
+   and the world model's accuracy allow (a payload the model does not know, or a contact,
    makes them approximate). This is the "restoring or zeroing" choice for torque mode: a
    joint in the margin is driven to zero velocity toward the limit, not pushed back out.
 
 Every command is logged: ``info["action_applied"]`` is the command sent to the env, and
 ``info["safety"]`` is ``dict(clamped, reason, safe_stop, safe_stop_reason, contact_stops,
-profile)``; ``info["external"]["safe_stop"]`` and ``["safety_clamped"]`` carry the flags into
-the trajectory logs. ``contact_stops`` counts contact stops since the wrapper was made.
+profile, joint_speed_ratio)``; ``info["external"]["safe_stop"]`` and ``["safety_clamped"]``
+carry the flags into the trajectory logs. ``contact_stops`` counts contact stops since the
+wrapper was made. ``joint_speed_ratio`` is the largest ``|true joint velocity| / velocity
+limit`` over the joints after the step (the profile's limits; for a mobile base the true
+wheel speeds over the action bounds, NaN when the env reports none): the measured outcome of
+the velocity limit, 1.0 at the limit.
 
 The wrapper's ``action_space`` is the bare env's (the URDF bounds), but :meth:`step` accepts any
 array of the right shape, NaN and inf included; a command that is not an array of numbers of
@@ -50,6 +56,11 @@ that shape raises ``ValueError``.
 
 For a non-arm env (the mobile bases) the wrapper applies 1 and 2c only, to the env's action
 bounds (wheel speeds), with zero as the stop command.
+
+Wrapper order: the safety wrapper sits directly under the policy, outermost on the action
+path -- around any perturbation wrappers (:func:`blanket.conditions.apply_conditions`), and
+under any wrapper that only rescales or reshapes what a learner sees (RL observation and
+action-scaling wrappers), so the command it checks is the one in physical units.
 """
 
 from __future__ import annotations
@@ -62,22 +73,12 @@ import numpy as np
 from blanket.description import ArmDescription
 from blanket.errors import ConfigError
 from blanket.robot_limits import SafetyProfile, profile_for, profile_named
+from blanket.wrappers.perturbations import number_in_range
 
 __all__ = ["SafetyLimits"]
 
 #: Damping of the tip-Jacobian pseudo-inverse used for the workspace projection (m).
 _WORKSPACE_DAMPING_M = 1e-3
-
-
-def _finite_number(name: str, value: Any, low: float, low_inclusive: bool = True) -> float:
-    ok = isinstance(value, int | float | np.number) and not isinstance(value, bool)
-    if ok:
-        value = float(value)
-        ok = np.isfinite(value) and (value >= low if low_inclusive else value > low)
-    if not ok:
-        rel = ">=" if low_inclusive else ">"
-        raise ConfigError(f"{name}: must be a finite number {rel} {low}, got {value!r}")
-    return float(value)
 
 
 class SafetyLimits(gym.Wrapper, gym.utils.RecordConstructorArgs):
@@ -135,15 +136,15 @@ class SafetyLimits(gym.Wrapper, gym.utils.RecordConstructorArgs):
             brake_gain_1_s=brake_gain_1_s,
         )
         gym.Wrapper.__init__(self, env)
-        self.joint_margin_rad = _finite_number("joint_margin_rad", joint_margin_rad, 0.0)
-        self.divergence_factor = _finite_number(
-            "divergence_factor", divergence_factor, 1.0, low_inclusive=False
+        self.joint_margin_rad = number_in_range("joint_margin_rad", joint_margin_rad, 0.0)
+        self.divergence_factor = number_in_range(
+            "divergence_factor", divergence_factor, 1.0, low_open=True
         )
-        self.brake_gain_1_s = _finite_number("brake_gain_1_s", brake_gain_1_s, 0.0, False)
+        self.brake_gain_1_s = number_in_range("brake_gain_1_s", brake_gain_1_s, 0.0, low_open=True)
         self.tool_speed_cap_m_s = (
             None
             if tool_speed_cap_m_s is None
-            else _finite_number("tool_speed_cap_m_s", tool_speed_cap_m_s, 0.0, False)
+            else number_in_range("tool_speed_cap_m_s", tool_speed_cap_m_s, 0.0, low_open=True)
         )
         self.stop_on_contact = bool(stop_on_contact)
         self.latch_stop = bool(latch_stop)
@@ -157,7 +158,6 @@ class SafetyLimits(gym.Wrapper, gym.utils.RecordConstructorArgs):
                 f"SafetyLimits: needs a 1-D Box action space, got {type(space).__name__}"
             )
         self._shape = space.shape
-        self._arm_model: Any = None
         if self._arm:
             self.control = description.control
             if isinstance(profile, str):
@@ -227,19 +227,24 @@ class SafetyLimits(gym.Wrapper, gym.utils.RecordConstructorArgs):
             )
         return arr
 
-    def _model(self) -> Any:
-        if self._arm_model is None:
-            from blanket.body import ArmModel
-
-            d = self.env.unwrapped.description
-            self._arm_model = ArmModel.from_urdf(
-                d.urdf_path, d.end_effector, joint_names=d.joint_names
-            )
-        return self._arm_model
+    @property
+    def _world(self) -> Any:
+        """The simulator (:class:`blanket.sim.ArmWorld`): the wrapper is part of the world."""
+        return self.env.unwrapped.world
 
     def _state(self) -> tuple[np.ndarray, np.ndarray]:
         """True joint angles and velocities (the wrapper is part of the world, not the agent)."""
-        return self.env.unwrapped.world.joint_state()
+        return self._world.joint_state()
+
+    def _speed_ratio(self, info: dict[str, Any]) -> float:
+        """Largest |true joint (or wheel) speed| / limit over the joints, after a step."""
+        if self._arm:
+            speed = np.abs(self._state()[1])
+            return float(np.max(speed / self.velocity_limit_rad_s))
+        wheels = info.get("external", {}).get("wheel_speed_rad_s")
+        if wheels is None or np.shape(wheels) != self._shape:
+            return float("nan")
+        return float(np.max(np.abs(np.asarray(wheels, dtype=float)) / self.command_limit))
 
     # ------------------------------------------------------------------ gym API
     def reset(
@@ -249,7 +254,7 @@ class SafetyLimits(gym.Wrapper, gym.utils.RecordConstructorArgs):
         self._stop_reason = ""
         self._contact_pending = bool(info.get("contact", False))
         info = dict(info)
-        info["safety"] = self._safety_info(False, "", False, "")
+        info["safety"] = self._safety_info(False, "", False, "", self._speed_ratio(info))
         external = dict(info.get("external", {}))
         external["safe_stop"] = False
         external["safety_clamped"] = False
@@ -265,7 +270,7 @@ class SafetyLimits(gym.Wrapper, gym.utils.RecordConstructorArgs):
         info = dict(info)
         info["action_applied"] = applied.copy()
         info["safety"] = self._safety_info(
-            clamped, "; ".join(reasons), bool(stop_reason), stop_reason
+            clamped, "; ".join(reasons), bool(stop_reason), stop_reason, self._speed_ratio(info)
         )
         external = dict(info.get("external", {}))
         external["safe_stop"] = bool(stop_reason)
@@ -274,7 +279,7 @@ class SafetyLimits(gym.Wrapper, gym.utils.RecordConstructorArgs):
         return obs, reward, terminated, truncated, info
 
     def _safety_info(
-        self, clamped: bool, reason: str, safe_stop: bool, stop_reason: str
+        self, clamped: bool, reason: str, safe_stop: bool, stop_reason: str, speed_ratio: float
     ) -> dict[str, Any]:
         return {
             "clamped": clamped,
@@ -283,6 +288,7 @@ class SafetyLimits(gym.Wrapper, gym.utils.RecordConstructorArgs):
             "safe_stop_reason": stop_reason,
             "contact_stops": self.contact_stops,
             "profile": self._profile_name,
+            "joint_speed_ratio": speed_ratio,
         }
 
     def _parse(self, action: Any) -> np.ndarray:
@@ -348,9 +354,12 @@ class SafetyLimits(gym.Wrapper, gym.utils.RecordConstructorArgs):
         first = contacts[0]
         return f"{first.arm_link} with {first.other}"
 
+    def _bias_torque(self, q: np.ndarray, qd: np.ndarray) -> np.ndarray:
+        """``h(q, q')``: gravity, Coriolis and centrifugal torques (the world's model)."""
+        return self._world.inverse_dynamics(q, qd, np.zeros_like(q))
+
     def _brake(self, q: np.ndarray, qd: np.ndarray) -> np.ndarray:
-        model = self._model()
-        tau = model.nonlinear_effects(q, qd) - self.brake_gain_1_s * (model.mass_matrix(q) @ qd)
+        tau = self._bias_torque(q, qd) - self.brake_gain_1_s * (self._world.mass_matrix(q) @ qd)
         return np.clip(tau, -self.torque_limit_n_m, self.torque_limit_n_m)
 
     @staticmethod
@@ -379,7 +388,7 @@ class SafetyLimits(gym.Wrapper, gym.utils.RecordConstructorArgs):
         J = None
         tip = None
         if self.workspace_box_m is not None:
-            tip, J = self._model().tip_position_and_jacobian(q)
+            tip, J = self._world.tip_position(), self._world.tip_jacobian(q)
             out = self._outward(tip)
             if np.any(out):
                 axes = np.flatnonzero(out)
@@ -413,7 +422,7 @@ class SafetyLimits(gym.Wrapper, gym.utils.RecordConstructorArgs):
         command = self._scale_to_limit(command, self.velocity_limit_rad_s, reasons)
         if self.tool_speed_cap_m_s is not None:
             if J is None:
-                J = self._model().tip_jacobian(q)
+                J = self._world.tip_jacobian(q)
             speed = float(np.linalg.norm(J @ command))
             if speed > self.tool_speed_cap_m_s:
                 command = command * (self.tool_speed_cap_m_s / speed)
@@ -423,7 +432,7 @@ class SafetyLimits(gym.Wrapper, gym.utils.RecordConstructorArgs):
     def _filter_torque(self, command: np.ndarray, reasons: list[str]) -> np.ndarray:
         """Check a torque through the joint velocity it produces one step later.
 
-        ``v+ = q' + dt inv(M) (tau - h)`` (the body model's forward dynamics, semi-implicit
+        ``v+ = q' + dt inv(M) (tau - h)`` (the world model's forward dynamics, semi-implicit
         Euler as pybullet steps) goes through :meth:`_velocity_checks`; a changed ``v+`` is
         turned back into a torque by inverse dynamics, ``tau = M (v+ - q') / dt + h``, and
         the result is clipped to the profile torque (always the last step).
@@ -433,9 +442,8 @@ class SafetyLimits(gym.Wrapper, gym.utils.RecordConstructorArgs):
         clipped = np.clip(command, -limit, limit)
         if not np.array_equal(clipped, command):
             reasons.append("joint torque limit")
-        model = self._model()
-        M = model.mass_matrix(q)
-        h = model.nonlinear_effects(q, qd)
+        M = self._world.mass_matrix(q)
+        h = self._bias_torque(q, qd)
         v_next = qd + self._dt * np.linalg.solve(M, clipped - h)
         n_reasons = len(reasons)
         v_safe = self._velocity_checks(v_next, q, reasons)
