@@ -396,6 +396,12 @@ def _control_hz(env: Any) -> float:
     return float(hz)
 
 
+def _mean_known(values: list[float]) -> float | None:
+    """Mean over the steps that reported a value; None when none did."""
+    array = np.asarray(values, dtype=float)
+    return float(np.nanmean(array)) if (~np.isnan(array)).any() else None
+
+
 def _episode(
     env: Any, policy: PolicyAdapter, seed: int | None, episode: int, observers: list[Observer]
 ) -> EpisodeResult:
@@ -491,7 +497,7 @@ def _episode(
         steps=step,
         agent_step_us=float(np.median(agent_us)),
         sim_step_us=float(np.median(env_us)),
-        mean_free_energy=float(np.nanmean(energy)) if energy else None,
+        mean_free_energy=_mean_known(energy),
         final_heading_error_rad=None if final_heading is None else abs(float(final_heading)),
         contact=contact,
         safe_stop=safe_stop,
