@@ -767,7 +767,8 @@ def test_summary_without_distance_or_success_columns_uses_positions_and_toleranc
     table = summarize_run(tmp_path / "r")
     assert table.loc[0, "final_error_m"] == pytest.approx(0.02)
     # inside from row 9 on (0.3 - 0.27 <= 0.05) and held: entered at 9 x 0.05 s
-    assert bool(table.loc[0, "success"]) and table.loc[0, "time_to_success_s"] == pytest.approx(0.45)
+    assert bool(table.loc[0, "success"])
+    assert table.loc[0, "time_to_success_s"] == pytest.approx(0.45)
     assert not bool(table.loc[1, "success"]) and np.isnan(table.loc[1, "time_to_success_s"])
     assert np.isnan(table.loc[0, "mean_free_energy"])
 
