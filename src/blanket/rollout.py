@@ -30,15 +30,13 @@ import math
 import time
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
-from typing import Any, Protocol, runtime_checkable
+from typing import Any
 
 import numpy as np
 
 from blanket.errors import ConfigError
 
 __all__ = [
-    "ActPolicy",
-    "PredictPolicy",
     "PolicyAdapter",
     "EpisodeStart",
     "StepView",
@@ -52,26 +50,6 @@ __all__ = [
 
 #: Upper bound of the episode count of one rollout.
 MAX_EPISODES = 100_000
-
-
-@runtime_checkable
-class ActPolicy(Protocol):
-    """``act(obs) -> action``; an optional ``reset()`` is called at each episode start."""
-
-    def act(self, obs: Any) -> Any: ...
-
-
-@runtime_checkable
-class PredictPolicy(Protocol):
-    """stable-baselines3's ``predict(obs, state, episode_start, deterministic)``."""
-
-    def predict(
-        self,
-        observation: Any,
-        state: Any = None,
-        episode_start: Any = None,
-        deterministic: bool = True,
-    ) -> tuple[Any, Any]: ...
 
 
 class PolicyAdapter:
