@@ -251,3 +251,17 @@ def test_run_log_and_recorder_write_the_same_columns(tmp_path):
     )
     # the loop's t is step * dt, the Recorder's the env's time_s (step / rate)
     np.testing.assert_allclose(loop["t"], wrapped["t"].iloc[:-1], rtol=1e-12)
+
+
+def test_held_inside_reports_the_entry_time_as_envs_count_time():
+    # entry after step 11, held 60 further steps (0.25 s at 240 Hz): time 11 / 240 exactly,
+    # the env's time_s convention (step / control rate)
+    rule = HeldInside(1.0 / 240.0)
+    inside = [False] * 10 + [True] * 61 + [False] * 5
+    reached = [rule.update(ok) for ok in inside]
+    assert reached.index(True) == 70 and rule.time_to_success_s == 11 / 240.0
+    assert not rule.held and rule.success  # left again; success stays
+    from blanket.success import time_to_success
+
+    assert time_to_success(inside, 1.0 / 240.0) == 11 / 240.0
+    assert time_to_success(inside[:70], 1.0 / 240.0) is None  # one step short of the hold
