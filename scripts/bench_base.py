@@ -20,6 +20,7 @@ import numpy as np
 
 import blanket  # noqa: F401  (registers the env ids)
 from blanket.agent.mobile_base import BaseAgent, run_base_episode
+from blanket.rollout import Observer, rollout
 from blanket.sensors.wheel_odometry import dead_reckoning
 from blanket_envs.base_goto import calibrate_effective_track
 
@@ -47,6 +48,52 @@ def docking(robot: str, starts: int) -> dict[str, float]:
     }
 
 
+class Patrol:
+    """The base agent as a patrol policy: its goal moves on to the next post once it believes
+    it has arrived (aligning within 10 cm of the goal)."""
+
+    def __init__(self, agent: BaseAgent) -> None:
+        self.agent = agent
+        self.goal_k = 0
+
+    def reset(self) -> None:
+        self.agent.reset()
+        self.goal_k = 0
+        self.agent.set_goal(PATROL_GOALS[0])
+
+    def act(self, obs: dict) -> np.ndarray:
+        action = self.agent.act(obs)
+        goal = PATROL_GOALS[self.goal_k % len(PATROL_GOALS)]
+        if self.agent.stage == "align" and np.hypot(*(self.agent.mu[0, :2] - goal[:2])) < 0.1:
+            self.goal_k += 1
+            self.agent.set_goal(PATROL_GOALS[self.goal_k % len(PATROL_GOALS)])
+        return action
+
+
+class PatrolTrace(Observer):
+    """Wheel speeds, gyro, true pose and the agent's belief, step by step."""
+
+    def __init__(self, agent: BaseAgent, use_gyro: bool) -> None:
+        self.agent = agent
+        self.use_gyro = use_gyro
+        self.wheels: list[np.ndarray] = []
+        self.gyro: list[float] = []
+        self.truth: list[np.ndarray] = []
+        self.belief: list[np.ndarray] = []
+        self.localised: list[bool] = []
+
+    def on_episode_start(self, start) -> None:
+        self.start = start.info["external"]["base_pose"].copy()
+
+    def on_step(self, step) -> None:
+        self.wheels.append(np.asarray(step.next_obs["wheel_speed_rad_s"], dtype=float))
+        if self.use_gyro:
+            self.gyro.append(float(step.next_obs["yaw_rate_rad_s"][0]))
+        self.truth.append(step.info["external"]["base_pose"].copy())
+        self.belief.append(self.agent.mu[0].copy())
+        self.localised.append(self.agent.localised)
+
+
 def patrol_rmse(robot: str, seed: int = 0, duration_s: float = 60.0) -> dict[str, float]:
     """Belief and dead-reckoning position RMSE over a patrol of ``duration_s`` seconds."""
     env = gym.make(
@@ -54,26 +101,11 @@ def patrol_rmse(robot: str, seed: int = 0, duration_s: float = 60.0) -> dict[str
     )
     desc = env.unwrapped.description
     agent = BaseAgent.from_env(env)
-    obs, info = env.reset(seed=seed)
-    agent.reset()
-    start = info["external"]["base_pose"].copy()
-    goal_k = 0
-    agent.set_goal(PATROL_GOALS[goal_k])
-    wheels, gyro, truth, belief, localised = [], [], [], [], []
-    while True:
-        action = agent.act(obs)
-        if agent.stage == "align" and np.hypot(*(agent.mu[0, :2] - PATROL_GOALS[goal_k][:2])) < 0.1:
-            goal_k = (goal_k + 1) % len(PATROL_GOALS)
-            agent.set_goal(PATROL_GOALS[goal_k])
-        obs, _, terminated, truncated, info = env.step(action)
-        wheels.append(np.asarray(obs["wheel_speed_rad_s"], dtype=float))
-        if desc.use_gyro:
-            gyro.append(float(obs["yaw_rate_rad_s"][0]))
-        truth.append(info["external"]["base_pose"].copy())
-        belief.append(agent.mu[0].copy())
-        localised.append(agent.localised)
-        if terminated or truncated:
-            break
+    patrol = Patrol(agent)
+    trace = PatrolTrace(agent, desc.use_gyro)
+    rollout(env, patrol, seeds=[seed], observers=[trace])
+    start, wheels, gyro, localised = trace.start, trace.wheels, trace.gyro, trace.localised
+    truth, belief, goal_k = trace.truth, trace.belief, patrol.goal_k
     env.close()
     truth = np.array(truth)
     belief = np.array(belief)

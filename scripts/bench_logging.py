@@ -46,6 +46,7 @@ import numpy as np
 
 import blanket  # noqa: F401  (registers the env ids)
 from blanket.logs import RunWriter, read_run
+from blanket.logs.groups import active_group, external_group
 
 L1_M, L2_M = 0.4, 0.3  # link lengths of planar_2link.urdf
 GAIN = 6.0
@@ -77,19 +78,18 @@ def run_loop(env: gym.Env, steps: int, writer: RunWriter | None, seed: int) -> t
     for _ in range(steps):
         action = policy(obs, low, high)
         if writer is not None:
-            external = {
-                **info["external"],
-                "distance_m": info["distance_m"],
-                "success": info["success"],
-            }
+            external = external_group(info)
+        obs_before = obs
+        obs, _reward, terminated, truncated, info = env.step(action)
+        if writer is not None:
+            # the rows of the loop's log (blanket.logs.groups), written by this bare loop
             writer.record(
                 step,
-                info["time_s"],
+                step / env.unwrapped.control_hz,
                 external=external,
-                sensory=obs,
-                active={"joint_velocity_rad_s": action},
+                sensory=obs_before,
+                active=active_group(action, info),
             )
-        obs, _reward, terminated, truncated, info = env.step(action)
         step += 1
         if terminated or truncated:
             if writer is not None:
@@ -187,15 +187,16 @@ def runner_loop(rounds: int, episodes: int) -> bool:
 
     Acceptance holds when both put logging at <= 10 % of the loop with recording on.
     """
+    import blanket.logs.groups as groups
     import blanket.logs.writer as writer_module
-    import blanket.runner as runner
     from blanket.runner import run_episodes
 
     env, agent, meta = _iiwa_loop("bench-logging-runner")
     plain, plain_2, logged, shares = [], [], [], []
     parts: dict[str, int] = {}
     calls = [0]
-    original = (runner._external_group, runner.active_group, agent.diagnostics)
+    # the loop's log observer (blanket.rollout.RunLog) takes the group builders when it is made
+    original = (groups.external_group, groups.active_group, agent.diagnostics)
     background_s = [0.0]  # CPU time of the encoder process (Parquet encoding, fsync)
 
     def timed(seed: int, run_dir: Path | None, watched: bool = True) -> float:
@@ -209,8 +210,8 @@ def runner_loop(rounds: int, episodes: int) -> bool:
                 run_episodes(env, agent, episodes, seed, writer=writer, progress=False)
                 return time.perf_counter() - t0
         watch = _Stopwatch()
-        runner._external_group = watch.wrap(original[0])
-        runner.active_group = watch.wrap(original[1])
+        groups.external_group = watch.wrap(original[0])
+        groups.active_group = watch.wrap(original[1])
         agent.diagnostics = watch.wrap(original[2])
         try:
             with RunWriter(run_dir, meta) as writer:
@@ -220,7 +221,7 @@ def runner_loop(rounds: int, episodes: int) -> bool:
                 )
                 total = time.perf_counter() - t0
         finally:
-            runner._external_group, runner.active_group = original[:2]
+            groups.external_group, groups.active_group = original[:2]
             del agent.diagnostics
         shares.append((watch.ns * 1e-9, total))
         for name, ns in watch.by_name.items():

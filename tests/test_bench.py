@@ -59,6 +59,77 @@ def test_time_to_success_matches_the_env_rule():
         env.close()
 
 
+def test_env_tolerance_comes_from_the_env_and_the_other_radius_from_the_rule():
+    from blanket.bench.evaluate import EpisodeTrace
+    from blanket.bench.metrics import aggregate, episode_metrics
+
+    dt = 1.0 / 240.0
+    d = np.full(200, 0.03)  # inside 5 cm from the first step on, never inside 1 cm
+    trace = EpisodeTrace(
+        seed=0,
+        dt=dt,
+        distance_m=d,
+        tip_m=np.zeros((200, 3)),
+        q_rad=np.zeros((200, 2)),
+        action=np.zeros((200, 2)),
+        q_start_rad=np.zeros(2),
+        tip_start_m=np.ones(3),
+        target_start_m=np.zeros(3),
+        q_seen_rad=np.zeros((0, 2)),
+        belief_q_rad=None,
+        policy_us=np.ones(200),
+        perturbation_digest="",
+        contact=False,
+        env_success=True,  # the env's own report for its 1 cm tolerance (e.g. a moving target)
+        env_time_to_success_s=0.5,
+        env_tolerance_m=0.01,
+        peak_joint_speed_ratio=0.8,
+    )
+    row = episode_metrics(trace)
+    assert row["success_1cm"] and row["time_to_success_1cm_s"] == 0.5
+    assert row["success_5cm"] and row["time_to_success_5cm_s"] == pytest.approx(dt)
+    assert row["peak_joint_speed_ratio"] == 0.8
+    trace.env_tolerance_m = None  # no report of the env: the rule on the trace for both
+    row_rule = episode_metrics(trace)
+    assert not row_rule["success_1cm"] and row_rule["time_to_success_1cm_s"] is None
+    trace.peak_joint_speed_ratio = None
+    assert episode_metrics(trace)["peak_joint_speed_ratio"] is None
+    assert aggregate([row, row_rule, {**row, "peak_joint_speed_ratio": 1.2}])[
+        "peak_joint_speed_ratio"
+    ] == pytest.approx(1.2)
+    assert aggregate([episode_metrics(trace)])["peak_joint_speed_ratio"] is None
+
+
+def test_peak_joint_speed_ratio_is_the_episode_maximum_of_the_safety_report():
+    import gymnasium
+
+    from blanket.bench.evaluate import run_policy_episode
+
+    class SpeedReport(gymnasium.Wrapper):
+        """Reports |true joint velocity| / limit, max over joints (as the safety wrapper)."""
+
+        def __init__(self, env):
+            super().__init__(env)
+            self.ratios = []
+
+        def step(self, action):
+            obs, r, term, trunc, info = self.env.step(action)
+            limit = self.env.unwrapped.description.velocity_limit_rad_s
+            ratio = float(np.max(np.abs(info["external"]["joint_velocity_rad_s"]) / limit))
+            self.ratios.append(ratio)
+            info = {**info, "safety": {"joint_speed_ratio": ratio}}
+            return obs, r, term, trunc, info
+
+    env = SpeedReport(gymnasium.make("blanket/planar-2link-v0", episode_s=0.5))
+    try:
+        trace = run_policy_episode(env, ClassicalReach.from_env(env), seed=2)
+        assert trace.peak_joint_speed_ratio == max(env.ratios) > 0.0
+        bare = run_policy_episode(env.env, ClassicalReach.from_env(env), seed=2)
+        assert bare.peak_joint_speed_ratio is None
+    finally:
+        env.close()
+
+
 def test_joint_jerk_of_a_cubic_is_its_third_derivative():
     # q = c t^3 has q''' = 6 c; the third difference is exact for cubics
     # (Abramowitz & Stegun 1964, eq. 25.1.2).

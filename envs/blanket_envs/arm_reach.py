@@ -12,7 +12,6 @@ from __future__ import annotations
 import dataclasses
 import os
 import sys
-import time
 import weakref
 from pathlib import Path
 from typing import Any
@@ -28,6 +27,7 @@ from blanket.sensors.encoders import JointEncoders
 from blanket.sim.arm_world import CONTROL_MODES, ArmWorld
 from blanket.sim.robots import builtin_robot, default_home
 from blanket.sim.urdf_limits import read_joint_limits
+from blanket.success import HOLD_S, HeldInside
 from blanket_envs.greenhouse import (
     TARGET_ABOVE_CELL_M,
     TRAY_HEIGHT_M,
@@ -43,8 +43,9 @@ __all__ = ["ArmReachEnv", "PlanarReachEnv", "PLANAR_URDF", "SUCCESS_HOLD_S"]
 PLANAR_URDF = str(Path(__file__).resolve().parent / "assets" / "planar_2link.urdf")
 #: Random targets come from joint configurations within this distance of home (rad).
 RANDOM_TARGET_SPREAD_RAD = 1.2
-#: The tip must stay inside the tolerance ball this long for success (s).
-SUCCESS_HOLD_S = 0.25
+#: The tip must stay inside the tolerance ball this long for success (s): the one rule of
+#: :mod:`blanket.success`.
+SUCCESS_HOLD_S = HOLD_S
 #: Half-width of the uniform noise added to the home posture at reset (rad).
 HOME_NOISE_RAD = 0.1
 #: Reward added on each step the tip has been held inside the tolerance for SUCCESS_HOLD_S.
@@ -326,12 +327,10 @@ class ArmReachEnv(gym.Env):
             }
         )
         self.max_steps = max(1, int(round(self.episode_s * self.control_hz)))
-        self._hold_steps = max(1, int(round(SUCCESS_HOLD_S * self.control_hz)))
+        self._success = HeldInside(1.0 / self.control_hz, SUCCESS_HOLD_S)
         self._target_velocity = np.zeros(3)
         self._target = self._reach_samples[0].copy()
         self._step_count = 0
-        self._inside_since: int | None = None
-        self._success_step: int | None = None
         self._last_action = np.zeros(n)
         self._last_obs: dict[str, Any] | None = None
 
@@ -455,13 +454,12 @@ class ArmReachEnv(gym.Env):
         self._last_action = np.zeros(len(world.joint_names))
         world.send_command(self.control, self._last_action)
         self._step_count = 0
-        self._inside_since = None
-        self._success_step = None
+        self._success.reset()
         angle, velocity = world.joint_state()
         tip = world.tip_position()
         frame = self._camera.reset({"tip": tip, "target": self._target}, self.np_random)
         obs = self._observation(angle, velocity, frame)
-        info = self._info(angle, velocity, tip, elapsed_us=0.0)
+        info = self._info(angle, velocity, tip)
         return obs, info
 
     def step(self, action: np.ndarray) -> tuple[dict[str, Any], float, bool, bool, dict[str, Any]]:
@@ -482,7 +480,6 @@ class ArmReachEnv(gym.Env):
         command = np.clip(command, self.action_space.low, self.action_space.high)
         self._last_action = command
 
-        start = time.perf_counter_ns()
         world.send_command(self.control, command)
         world.step()
         if np.any(self._target_velocity):
@@ -492,23 +489,12 @@ class ArmReachEnv(gym.Env):
         tip = world.tip_position()
         frame = self._camera.observe({"tip": tip, "target": self._target}, self.np_random)
         obs = self._observation(angle, velocity, frame)
-        elapsed_us = (time.perf_counter_ns() - start) / 1e3
 
         self._step_count += 1
         distance = float(np.linalg.norm(tip - self._target))
-        if distance <= self.tolerance_m:
-            if self._inside_since is None:
-                self._inside_since = self._step_count
-        else:
-            self._inside_since = None
-        held = (
-            self._inside_since is not None
-            and self._step_count - self._inside_since >= self._hold_steps
-        )
-        if held and self._success_step is None:
-            self._success_step = self._inside_since
-        reward = -distance + (SUCCESS_BONUS if held else 0.0)
-        info = self._info(angle, velocity, tip, elapsed_us)
+        self._success.update(distance <= self.tolerance_m)
+        reward = -distance + (SUCCESS_BONUS if self._success.held else 0.0)
+        info = self._info(angle, velocity, tip)
         truncated = self._step_count >= self.max_steps
         return obs, float(reward), False, bool(truncated), info
 
@@ -573,19 +559,15 @@ class ArmReachEnv(gym.Env):
             "camera_fresh": int(frame.fresh),
         }
 
-    def _info(
-        self, angle: np.ndarray, velocity: np.ndarray, tip: np.ndarray, elapsed_us: float
-    ) -> dict[str, Any]:
+    def _info(self, angle: np.ndarray, velocity: np.ndarray, tip: np.ndarray) -> dict[str, Any]:
         world = self._world()
         distance = float(np.linalg.norm(tip - self._target))
-        success = self._success_step is not None
         return {
             "distance_m": distance,
             "inside_tolerance": distance <= self.tolerance_m,
-            "success": success,
-            "time_to_success_s": (self._success_step / self.control_hz) if success else None,
+            "success": self._success.success,
+            "time_to_success_s": self._success.time_to_success_s,
             "time_s": self._step_count / self.control_hz,
-            "sim_step_us": WallTimeUs(elapsed_us),
             "contact": bool(world.contacts()),
             "external": {
                 "joint_angle_rad": angle.copy(),
@@ -598,29 +580,6 @@ class ArmReachEnv(gym.Env):
                 "target_velocity_m_s": self._target_velocity.copy(),
             },
         }
-
-
-class WallTimeUs(float):
-    """A wall-clock duration in microseconds (a float).
-
-    Two wall-time readings compare equal to each other: wall time is not part of the simulated
-    state, so comparisons of whole ``info`` dicts (e.g. gymnasium's determinism checks) look
-    at the simulation only. Against a plain number it compares as a float.
-    """
-
-    def __eq__(self, other: object) -> bool:
-        if isinstance(other, WallTimeUs):
-            return True
-        return float(self) == other
-
-    def __ne__(self, other: object) -> bool:
-        return not self.__eq__(other)
-
-    def __hash__(self) -> int:
-        return hash(WallTimeUs)
-
-    def __repr__(self) -> str:
-        return f"WallTimeUs({float(self)!r})"
 
 
 class PlanarReachEnv(ArmReachEnv):

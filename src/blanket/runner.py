@@ -1,20 +1,18 @@
-"""The loop that owns an env and an agent: episodes, timing, summary, logs and figures."""
+"""Scenarios end to end: env, agent, episodes (through :mod:`blanket.rollout`), summary, logs
+and figures."""
 
 from __future__ import annotations
 
-import functools
-import inspect
 import json
-import math
 import time
 from collections.abc import Callable, Mapping
-from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
 from blanket.errors import ConfigError
+from blanket.rollout import EpisodeResult, Observer, ProgressBar, RunLog, StepView, rollout
 from blanket.scenario import Scenario, env_option_names, load_object, make_env
 
 __all__ = [
@@ -23,6 +21,7 @@ __all__ = [
     "run_episodes",
     "summarize",
     "build_agent",
+    "agent_options_under",
     "run_scenario",
     "prepare_out_dir",
     "with_safety",
@@ -39,49 +38,6 @@ SUMMARY_KEYS = (
 )
 
 
-@dataclass
-class EpisodeResult:
-    """Outcome of one episode."""
-
-    episode: int
-    seed: int
-    success: bool
-    time_to_success_s: float | None
-    final_error_m: float
-    steps: int
-    agent_step_us: float
-    sim_step_us: float
-    mean_free_energy: float | None
-    final_heading_error_rad: float | None = None
-    contact: bool = False
-    safe_stop: bool = False
-    trace: dict[str, np.ndarray] = field(default_factory=dict, repr=False)
-
-    def to_dict(self) -> dict[str, Any]:
-        return {
-            "episode": self.episode,
-            "seed": self.seed,
-            "success": self.success,
-            "time_to_success_s": self.time_to_success_s,
-            "final_error_m": self.final_error_m,
-            "final_heading_error_rad": self.final_heading_error_rad,
-            "steps": self.steps,
-            "agent_step_us": self.agent_step_us,
-            "sim_step_us": self.sim_step_us,
-            "mean_free_energy": self.mean_free_energy,
-            "contact": self.contact,
-            "safe_stop": self.safe_stop,
-        }
-
-
-def _act(agent: Any) -> Callable[[Any], np.ndarray]:
-    if hasattr(agent, "act"):
-        return agent.act
-    if hasattr(agent, "predict"):
-        return lambda obs: agent.predict(obs, deterministic=True)[0]
-    raise ConfigError(f"agent {type(agent).__name__} has neither act(obs) nor predict(obs)")
-
-
 def run_episode(
     env: Any,
     agent: Any,
@@ -90,154 +46,22 @@ def run_episode(
     writer: Any = None,
     on_step: Callable[[], None] | None = None,
 ) -> EpisodeResult:
-    """Run one episode from ``env.reset(seed=seed)`` to truncation or termination."""
-    obs, info = env.reset(seed=int(seed))
-    if hasattr(agent, "reset"):
-        agent.reset()
-    act = _act(agent)
-    diagnostics = getattr(agent, "diagnostics", None)
-    # Without a log, only the free energy and the safe-stop flag are needed, and agents that
-    # expose them as properties (ArmAgent) skip building the full diagnostics.
-    light = writer is None and hasattr(agent, "free_energy") and hasattr(agent, "safe_stop")
-    numbers_only = False
-    if writer is not None and diagnostics is not None:
-        # The writer copies every value, so an agent that can hand out views saves a copy;
-        # such views hold numbers only, so they skip the filtering of strings too.
-        try:
-            if "copy" in inspect.signature(diagnostics).parameters:
-                diagnostics = functools.partial(diagnostics, copy=False)
-                numbers_only = True
-        except (TypeError, ValueError):
-            pass
-    dt = 1.0 / float(env.unwrapped.metadata.get("control_hz", 0) or _control_hz(env))
-    max_steps = getattr(env.unwrapped, "max_steps", None)
+    """One episode from ``env.reset(seed=seed)`` through :func:`blanket.rollout.rollout`,
+    logged to ``writer`` when given; ``on_step()`` is called after every step."""
+    observers: list[Observer] = []
     if writer is not None:
-        writer.begin_episode(episode, max_steps=max_steps)
-    agent_us: list[float] = []
-    sim_us: list[float] = []
-    distance: list[float] = []
-    energy: list[float] = []
-    step = 0
-    success_time: float | None = None
-    ever_success = False
-    contact = False
-    safe_stop = False
-    while True:
-        t0 = time.perf_counter_ns()
-        action = act(obs)
-        agent_us.append((time.perf_counter_ns() - t0) / 1e3)
-        if light:
-            diag = {"free_energy": agent.free_energy, "safe_stop": agent.safe_stop}
-        else:
-            diag = diagnostics() if diagnostics is not None else None
-        if diag is not None:
-            fe = diag.get("free_energy")
-            energy.append(float(fe) if fe is not None else math.nan)
-            safe_stop = safe_stop or bool(diag.get("safe_stop", False))
-        if writer is not None:
-            external = _external_group(info)
-        next_obs, _reward, terminated, truncated, info = env.step(action)
-        sim_us.append(float(info.get("sim_step_us", math.nan)))
-        distance.append(float(info.get("distance_m", math.nan)))
-        contact = contact or bool(info.get("contact", False))
-        safe_stop = safe_stop or bool(info.get("safety", {}).get("safe_stop", False))
-        if info.get("success") and not ever_success:
-            ever_success = True
-            tts = info.get("time_to_success_s")
-            success_time = float(tts) if tts is not None else (step + 1) * dt
-        if writer is not None:
-            # One row per control step: the truth and the sensations at the time the agent
-            # acted, the command it sent (and what a safety wrapper let through), and its
-            # belief after that update.
-            writer.record(
-                step,
-                step * dt,
-                external=external,
-                sensory=obs if type(obs) is dict else _sensory_group(obs),
-                active=active_group(action, info),
-                internal=None if diag is None else diag if numbers_only else _loggable(diag),
-            )
-        obs = next_obs
-        step += 1
-        if on_step is not None:
-            on_step()
-        if terminated or truncated:
-            break
-    final_heading = info.get("heading_error_rad")
-    result = EpisodeResult(
-        episode=episode,
-        seed=int(seed),
-        success=ever_success,
-        time_to_success_s=success_time,
-        final_error_m=float(info.get("distance_m", math.nan)),
-        steps=step,
-        agent_step_us=float(np.median(agent_us)),
-        sim_step_us=float(np.nanmedian(sim_us)) if np.isfinite(sim_us).any() else math.nan,
-        mean_free_energy=float(np.nanmean(energy)) if energy else None,
-        final_heading_error_rad=None if final_heading is None else abs(float(final_heading)),
-        contact=contact,
-        safe_stop=safe_stop,
-        trace={
-            "t": np.arange(step) * dt,
-            "distance_m": np.asarray(distance),
-            "free_energy": np.asarray(energy) if energy else np.full(step, np.nan),
-        },
-    )
-    if writer is not None:
-        writer.end_episode(extra=result.to_dict())
-    return result
+        observers.append(RunLog(writer))
+    if on_step is not None:
+        observers.append(_Callback(on_step))
+    return rollout(env, agent, seeds=[seed], observers=observers, first_episode=episode)[0]
 
 
-def active_group(action: Any, info: Mapping[str, Any]) -> dict[str, Any]:
-    """The ``active.*`` log group: the command sent and, behind a safety wrapper, the command
-    it let through (``info["action_applied"]`` of the step that executed it)."""
-    group: dict[str, Any] = {"action": _as_float_array(action)}
-    applied = info.get("action_applied")
-    if applied is not None:
-        group["action_applied"] = _as_float_array(applied)
-    return group
+class _Callback(Observer):
+    def __init__(self, fn: Callable[[], None]) -> None:
+        self.fn = fn
 
-
-def _as_float_array(value: Any) -> np.ndarray:
-    # the usual case, a float64 array, as it is (the log writer copies it)
-    if type(value) is np.ndarray and value.dtype is _FLOAT64:
-        return value
-    return np.asarray(value, dtype=float)
-
-
-_FLOAT64 = np.dtype(np.float64)
-
-
-_INFO_TRUTH_KEYS = ("distance_m", "success", "inside_tolerance", "contact", "heading_error_rad")
-
-
-def _external_group(info: Mapping[str, Any]) -> dict[str, Any]:
-    """The ``external.*`` log group from an env's ``info``: its truth plus task status."""
-    external = dict(info.get("external", {}))
-    for key in _INFO_TRUTH_KEYS:
-        if key in info:
-            external[key] = info[key]
-    return external
-
-
-def _sensory_group(obs: Any) -> dict[str, Any]:
-    """The ``sensory.*`` group of an observation that is not a plain dict."""
-    if isinstance(obs, Mapping):
-        return dict(obs)
-    return {"observation": np.asarray(obs)}
-
-
-def _control_hz(env: Any) -> float:
-    d = getattr(env.unwrapped, "description", None)
-    hz = getattr(d, "control_hz", None)
-    if hz is None:
-        raise ConfigError("env does not report its control rate (description.control_hz)")
-    return float(hz)
-
-
-def _loggable(diag: Mapping[str, Any]) -> dict[str, Any]:
-    """The numeric part of an agent's diagnostics (strings stay out of the data columns)."""
-    return {k: v for k, v in diag.items() if not isinstance(v, str)}
+    def on_step(self, step: StepView) -> None:
+        self.fn()
 
 
 def run_episodes(
@@ -249,42 +73,23 @@ def run_episodes(
     progress: bool = True,
     description: str = "episodes",
 ) -> list[EpisodeResult]:
-    """Run ``episodes`` episodes with seeds ``seed, seed + 1, ...``, with a progress bar."""
-    if not 1 <= episodes <= 100_000:
-        raise ConfigError(f"episodes must be in 1..100000, got {episodes}")
-    bar = None
+    """``episodes`` episodes with seeds ``seed, seed + 1, ...`` through
+    :func:`blanket.rollout.rollout`, logged to ``writer`` when given, with a progress bar."""
+    observers: list[Observer] = []
+    if writer is not None:
+        observers.append(RunLog(writer))
     if progress:
-        from tqdm import tqdm
+        observers.append(ProgressBar(description))
+    return rollout(env, agent, episodes, seed=seed, observers=observers)
 
-        steps = getattr(env.unwrapped, "max_steps", None)
-        bar = tqdm(
-            total=episodes * steps if steps else None,
-            desc=description,
-            unit="step",
-            unit_scale=True,
-            leave=False,
-            dynamic_ncols=True,
-        )
-    results = []
-    try:
-        for i in range(episodes):
-            results.append(
-                run_episode(
-                    env,
-                    agent,
-                    seed + i,
-                    episode=i,
-                    writer=writer,
-                    on_step=bar.update if bar is not None else None,
-                )
-            )
-            if bar is not None:
-                ok = sum(r.success for r in results)
-                bar.set_postfix_str(f"reached {ok}/{len(results)}")
-    finally:
-        if bar is not None:
-            bar.close()
-    return results
+
+def __getattr__(name: str) -> Any:
+    # the log-group builder used to live here (blanket.logs.groups, imported on demand)
+    if name == "active_group":
+        from blanket.logs.groups import active_group
+
+        return active_group
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
 
 
 def _median(values: list[float]) -> float | None:
@@ -468,11 +273,15 @@ def run_scenario(
     safety: bool = True,
 ) -> dict[str, Any]:
     """Run a scenario end to end: env, agent, episodes, logs, ``summary.json``, figure."""
-    env = make_env(scenario.env, scenario.env_options)
+    from blanket.conditions import apply_conditions, condition_env_options
+
+    conditions = getattr(scenario, "conditions", None) or {}
+    env = make_env(scenario.env, {**scenario.env_options, **condition_env_options(conditions)})
     try:
+        env, model_options = apply_conditions(env, conditions)
         if safety:
             env = with_safety(env)
-        agent = build_agent(env, scenario.agent)
+        agent = build_agent(env, agent_options_under(scenario.agent, model_options, env))
         writer = None
         if record and out_dir is not None:
             from blanket.logs import RunWriter
@@ -506,6 +315,23 @@ def run_scenario(
         return summary
     finally:
         env.close()
+
+
+def agent_options_under(
+    agent_options: Mapping[str, Any], model_options: Mapping[str, Any], env: Any
+) -> dict[str, Any]:
+    """The ``[agent]`` options with a condition's body-model options (``length_scale``) added.
+
+    Only the built-in arm agent has the body model they change; an agent of your own
+    (``class = ...``) and the mobile bases get their options as written.
+    """
+    from blanket.description import ArmDescription
+
+    out = dict(agent_options)
+    arm = isinstance(getattr(env.unwrapped, "description", None), ArmDescription)
+    if model_options and arm and "class" not in out:
+        out.update(model_options)
+    return out
 
 
 def with_safety(env: Any) -> Any:

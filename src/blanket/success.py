@@ -40,6 +40,8 @@ class HeldInside:
         if not hold_s >= 0:
             raise ValueError(f"hold_s must be >= 0 s, got {hold_s!r}")
         self.dt = float(dt)
+        # times are step / rate, as envs count ``time_s`` (step * dt can differ in the last bit)
+        self._rate_hz = 1.0 / self.dt
         self.hold_steps = max(1, int(round(hold_s / dt)))
         self.reset()
 
@@ -57,13 +59,14 @@ class HeldInside:
                 self._inside_since = self.steps
         else:
             self._inside_since = None
-        if (
-            self._entry_step is None
-            and self._inside_since is not None
-            and self.steps - self._inside_since >= self.hold_steps
-        ):
+        if self._entry_step is None and self.held:
             self._entry_step = self._inside_since
         return self._entry_step is not None
+
+    @property
+    def held(self) -> bool:
+        """Whether the current stay inside has lasted the hold (drops when the task leaves)."""
+        return self._inside_since is not None and self.steps - self._inside_since >= self.hold_steps
 
     @property
     def success(self) -> bool:
@@ -73,7 +76,7 @@ class HeldInside:
     @property
     def time_to_success_s(self) -> float | None:
         """Entry time of the first stay that was held (s), or None."""
-        return None if self._entry_step is None else self._entry_step * self.dt
+        return None if self._entry_step is None else self._entry_step / self._rate_hz
 
 
 def time_to_success(inside: Iterable[bool], dt: float, hold_s: float = HOLD_S) -> float | None:

@@ -672,31 +672,24 @@ class BaseAgent(PredictMixin):
 
 
 def run_base_episode(env: Any, agent: BaseAgent, seed: int | None = None) -> dict[str, Any]:
-    """Run one episode with the standard gymnasium API; summary of the outcome.
+    """One episode through :func:`blanket.rollout.rollout`; summary of the outcome.
 
     Returns
     -------
     dict
-        ``success``, ``time_to_success_s``, ``final_error_m``, ``final_heading_error_rad``,
-        ``contact`` (any bench contact), ``steps``.
+        ``success``, ``time_to_success_s``, ``final_error_m``, ``final_heading_error_rad``
+        (absolute), ``contact`` (any bench contact), ``steps``.
     """
-    obs, info = env.reset(seed=seed)
-    agent.reset()
-    contact = False
-    steps = 0
-    while True:
-        obs, _, terminated, truncated, info = env.step(agent.act(obs))
-        contact = contact or bool(info["contact"])
-        steps += 1
-        if terminated or truncated:
-            break
+    from blanket.rollout import rollout
+
+    result = rollout(env, agent, seeds=[seed])[0]
     return {
-        "success": bool(info["success"]),
-        "time_to_success_s": info["time_to_success_s"],
-        "final_error_m": float(info["distance_m"]),
-        "final_heading_error_rad": float(info["heading_error_rad"]),
-        "contact": contact,
-        "steps": steps,
+        "success": result.success,
+        "time_to_success_s": result.time_to_success_s,
+        "final_error_m": result.final_error_m,
+        "final_heading_error_rad": result.final_heading_error_rad,
+        "contact": result.contact,
+        "steps": result.steps,
     }
 
 

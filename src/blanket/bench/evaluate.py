@@ -1,26 +1,41 @@
-"""The benchmark's episode loop: any policy, one seeded episode, full traces for scoring."""
+"""The benchmark's traces: any policy, seeded episodes through :func:`blanket.rollout.rollout`,
+and an observer that keeps what the metrics need."""
 
 from __future__ import annotations
 
 import hashlib
-import time
 from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
-from blanket.errors import ConfigError
+from blanket.rollout import EpisodeStart, Observer, PolicyAdapter, StepView, rollout
 
-__all__ = ["EpisodeTrace", "PolicyDriver", "run_policy_episode"]
+__all__ = [
+    "EpisodeTrace",
+    "PolicyDriver",
+    "BenchTrace",
+    "run_policy_episode",
+    "run_policy_episodes",
+]
 
 #: ``info["external"]`` keys written by perturbation wrappers start with these.
 PERTURBATION_PREFIXES = ("fault_", "disturbance_")
 
+#: The one policy adapter of the rollout loop, under the benchmark's older name.
+PolicyDriver = PolicyAdapter
+
 
 @dataclass
 class EpisodeTrace:
-    """What one episode did, step by step (row ``k`` = after control step ``k + 1``)."""
+    """What one episode did, step by step (row ``k`` = after control step ``k + 1``).
+
+    ``env_tolerance_m``, ``env_success`` and ``env_time_to_success_s`` are the env's own
+    success report (``info``) for its own tolerance; ``peak_joint_speed_ratio`` is the highest
+    ``info["safety"]["joint_speed_ratio"]`` of the episode (None without a safety wrapper that
+    reports it).
+    """
 
     seed: int
     dt: float
@@ -37,50 +52,9 @@ class EpisodeTrace:
     perturbation_digest: str
     contact: bool
     env_success: bool
-
-
-class PolicyDriver:
-    """Calls a policy the same way every step: ``predict`` (SB3 style) or ``act``.
-
-    ``predict(obs, state, episode_start, deterministic=True)`` gets ``episode_start=True`` on
-    the first step of each episode and its returned state back on the next; an ``act``-only
-    policy has ``reset()`` called at each episode start when it has one.
-    """
-
-    def __init__(self, policy: Any) -> None:
-        if not (hasattr(policy, "predict") or hasattr(policy, "act")):
-            raise ConfigError(
-                f"policy {type(policy).__name__} has neither act(obs) nor "
-                "predict(obs, state, episode_start, deterministic)"
-            )
-        self.policy = policy
-        self._state: Any = None
-        self._first = True
-        self._diagnostics = getattr(policy, "diagnostics", None)
-
-    def begin_episode(self) -> None:
-        self._state = None
-        self._first = True
-        if not hasattr(self.policy, "predict") and hasattr(self.policy, "reset"):
-            self.policy.reset()
-
-    def __call__(self, obs: Mapping[str, Any]) -> np.ndarray:
-        if hasattr(self.policy, "predict"):
-            action, self._state = self.policy.predict(
-                obs, state=self._state, episode_start=np.array([self._first]), deterministic=True
-            )
-        else:
-            action = self.policy.act(obs)
-        self._first = False
-        return np.asarray(action, dtype=float)
-
-    def believed_angles(self) -> np.ndarray | None:
-        if self._diagnostics is None:
-            return None
-        belief = self._diagnostics().get("belief")
-        if belief is None:
-            return None
-        return np.asarray(belief, dtype=float)[0]
+    env_time_to_success_s: float | None = None
+    env_tolerance_m: float | None = None
+    peak_joint_speed_ratio: float | None = None
 
 
 def _digest_update(h: Any, external: Mapping[str, Any]) -> None:
@@ -90,61 +64,103 @@ def _digest_update(h: Any, external: Mapping[str, Any]) -> None:
             h.update(np.ascontiguousarray(np.asarray(external[key], dtype=float)).tobytes())
 
 
-def run_policy_episode(env: Any, policy: Any, seed: int) -> EpisodeTrace:
-    """Run one episode from ``env.reset(seed=seed)``; return its traces.
+class BenchTrace(Observer):
+    """Keeps an :class:`EpisodeTrace` of every episode (in :attr:`traces`).
 
     ``perturbation_digest`` hashes every injected perturbation (the ``fault_*`` and
     ``disturbance_*`` keys of ``info["external"]``) of the whole episode, so two policies can
     be checked to have met the same draws.
     """
-    driver = policy if isinstance(policy, PolicyDriver) else PolicyDriver(policy)
-    obs, info = env.reset(seed=int(seed))
-    driver.begin_episode()
-    dt = 1.0 / float(env.unwrapped.description.control_hz)
-    ext = info["external"]
-    q_start = np.asarray(ext["joint_angle_rad"], float).copy()
-    tip_start = np.asarray(ext["tip_position_m"], float).copy()
-    target_start = np.asarray(ext["target_position_m"], float).copy()
-    h = hashlib.sha1()
-    _digest_update(h, ext)
-    distance, tips, qs, actions, seen, beliefs, us = [], [], [], [], [], [], []
-    contact = False
-    success = False
-    q_now = q_start
-    while True:
-        t0 = time.perf_counter_ns()
-        action = driver(obs)
-        us.append((time.perf_counter_ns() - t0) / 1e3)
-        belief = driver.believed_angles()
+
+    wants_diagnostics = True
+
+    def __init__(self) -> None:
+        self.traces: list[EpisodeTrace] = []
+
+    def on_episode_start(self, start: EpisodeStart) -> None:
+        ext = start.info["external"]
+        self._seed = start.seed
+        self._dt = start.dt
+        self._q_start = np.asarray(ext["joint_angle_rad"], float).copy()
+        self._tip_start = np.asarray(ext["tip_position_m"], float).copy()
+        self._target_start = np.asarray(ext["target_position_m"], float).copy()
+        self._hash = hashlib.sha1()
+        _digest_update(self._hash, ext)
+        d = getattr(start.env.unwrapped, "description", None)
+        tolerance = getattr(d, "tolerance_m", None)
+        self._tolerance = None if tolerance is None else float(tolerance)
+        self._q_now = self._q_start
+        self._distance: list[float] = []
+        self._tips: list[np.ndarray] = []
+        self._qs: list[np.ndarray] = []
+        self._actions: list[np.ndarray] = []
+        self._seen: list[np.ndarray] = []
+        self._beliefs: list[np.ndarray] = []
+        self._us: list[float] = []
+        self._contact = False
+        self._success = False
+        self._success_time: float | None = None
+        self._peak: float | None = None
+
+    def on_step(self, step: StepView) -> None:
+        diag = step.diagnostics
+        belief = None if diag is None else diag.get("belief")
         if belief is not None:
-            beliefs.append(belief)
-            seen.append(q_now)
-        obs, _r, terminated, truncated, info = env.step(action)
+            # a copy: the diagnostics may be views of the agent's buffers
+            self._beliefs.append(np.array(np.asarray(belief, dtype=float)[0]))
+            self._seen.append(self._q_now)
+        info = step.info
         ext = info["external"]
-        q_now = np.asarray(ext["joint_angle_rad"], float).copy()
-        distance.append(float(info["distance_m"]))
-        tips.append(np.asarray(ext["tip_position_m"], float).copy())
-        qs.append(q_now)
-        actions.append(action)
-        contact = contact or bool(info.get("contact", False))
-        success = success or bool(info.get("success", False))
-        _digest_update(h, ext)
-        if terminated or truncated:
-            break
-    return EpisodeTrace(
-        seed=int(seed),
-        dt=dt,
-        distance_m=np.asarray(distance),
-        tip_m=np.asarray(tips),
-        q_rad=np.asarray(qs),
-        action=np.asarray(actions),
-        q_start_rad=q_start,
-        tip_start_m=tip_start,
-        target_start_m=target_start,
-        q_seen_rad=np.asarray(seen) if seen else np.zeros((0, q_start.size)),
-        belief_q_rad=np.asarray(beliefs) if beliefs else None,
-        policy_us=np.asarray(us),
-        perturbation_digest=h.hexdigest()[:16],
-        contact=contact,
-        env_success=success,
-    )
+        self._q_now = np.asarray(ext["joint_angle_rad"], float).copy()
+        self._distance.append(float(info["distance_m"]))
+        self._tips.append(np.asarray(ext["tip_position_m"], float).copy())
+        self._qs.append(self._q_now)
+        self._actions.append(np.asarray(step.action, dtype=float))
+        self._us.append(step.agent_us)
+        self._contact = self._contact or bool(info.get("contact", False))
+        if not self._success and info.get("success", False):
+            self._success = True
+            tts = info.get("time_to_success_s")
+            self._success_time = None if tts is None else float(tts)
+        ratio = info.get("safety", {}).get("joint_speed_ratio")
+        if ratio is not None:
+            ratio = float(ratio)
+            self._peak = ratio if self._peak is None else max(self._peak, ratio)
+        _digest_update(self._hash, ext)
+
+    def on_episode_end(self, result: Any) -> None:
+        seen = self._seen
+        self.traces.append(
+            EpisodeTrace(
+                seed=self._seed,
+                dt=self._dt,
+                distance_m=np.asarray(self._distance),
+                tip_m=np.asarray(self._tips),
+                q_rad=np.asarray(self._qs),
+                action=np.asarray(self._actions),
+                q_start_rad=self._q_start,
+                tip_start_m=self._tip_start,
+                target_start_m=self._target_start,
+                q_seen_rad=np.asarray(seen) if seen else np.zeros((0, self._q_start.size)),
+                belief_q_rad=np.asarray(self._beliefs) if self._beliefs else None,
+                policy_us=np.asarray(self._us),
+                perturbation_digest=self._hash.hexdigest()[:16],
+                contact=self._contact,
+                env_success=self._success,
+                env_time_to_success_s=self._success_time,
+                env_tolerance_m=self._tolerance,
+                peak_joint_speed_ratio=self._peak,
+            )
+        )
+
+
+def run_policy_episodes(env: Any, policy: Any, seeds: list[int]) -> list[EpisodeTrace]:
+    """One :class:`EpisodeTrace` per seed (``env.reset(seed=s)``), through the rollout loop."""
+    observer = BenchTrace()
+    rollout(env, policy, seeds=seeds, observers=[observer])
+    return observer.traces
+
+
+def run_policy_episode(env: Any, policy: Any, seed: int) -> EpisodeTrace:
+    """Run one episode from ``env.reset(seed=seed)``; return its traces."""
+    return run_policy_episodes(env, policy, [int(seed)])[0]

@@ -12,7 +12,9 @@ from typing import Any
 
 import numpy as np
 
+from blanket import success as _success
 from blanket.errors import ConfigError
+from blanket.success import HOLD_S  # how long success needs the tip inside (s), re-exported
 
 __all__ = [
     "HOLD_S",
@@ -27,8 +29,6 @@ __all__ = [
     "aggregate",
 ]
 
-#: Success needs the tip inside the tolerance ball for this long (s), as the env's own test.
-HOLD_S = 0.25
 #: Success radii reported by the benchmark (m).
 SUCCESS_TOLERANCES_M = (0.01, 0.05)
 
@@ -36,23 +36,15 @@ SUCCESS_TOLERANCES_M = (0.01, 0.05)
 def time_to_success(
     distance_m: np.ndarray, dt: float, tolerance_m: float, hold_s: float = HOLD_S
 ) -> float | None:
-    """Time the tip entered the tolerance ball for the first stay of at least ``hold_s``.
+    """Time the tip entered the tolerance ball for the first stay of at least ``hold_s``: the
+    rule of :mod:`blanket.success` on ``distance_m <= tolerance_m``.
 
-    ``distance_m[k]`` is the distance after control step ``k + 1`` (time ``(k + 1) dt``). A stay
-    counts once the tip has been inside for ``round(hold_s / dt)`` further steps (the env's rule:
-    entered at step ``s``, held at step ``s + hold``). Returns None when never reached.
+    ``distance_m[k]`` is the distance after control step ``k + 1`` (time ``(k + 1) dt``).
+    Returns None when never reached.
     """
-    d = np.asarray(distance_m, dtype=float)
     if dt <= 0 or tolerance_m <= 0:
         raise ConfigError(f"dt and tolerance_m must be > 0, got {dt}, {tolerance_m}")
-    hold = max(1, int(round(hold_s / dt)))
-    inside = d <= tolerance_m
-    run = 0
-    for k, ok in enumerate(inside):
-        run = run + 1 if ok else 0
-        if run == hold + 1:
-            return (k - hold + 1) * dt
-    return None
+    return _success.time_to_success(np.asarray(distance_m, dtype=float) <= tolerance_m, dt, hold_s)
 
 
 def path_length_ratio(tip_m: np.ndarray, target_m: np.ndarray) -> float:
@@ -133,10 +125,17 @@ def episode_metrics(trace: Any) -> dict[str, Any]:
     """Every per-episode metric of an :class:`~blanket.bench.evaluate.EpisodeTrace`."""
     dt = trace.dt
     out: dict[str, Any] = {"seed": trace.seed}
+    env_tolerance = getattr(trace, "env_tolerance_m", None)
     for tol in SUCCESS_TOLERANCES_M:
         tag = f"{round(tol * 100)}cm"
-        t = time_to_success(trace.distance_m, dt, tol)
-        out[f"success_{tag}"] = t is not None
+        if env_tolerance is not None and math.isclose(tol, env_tolerance):
+            # the env's own report for its own tolerance (the same rule, applied by the env)
+            reached = bool(trace.env_success)
+            t = trace.env_time_to_success_s if reached else None
+        else:
+            t = time_to_success(trace.distance_m, dt, tol)
+            reached = t is not None
+        out[f"success_{tag}"] = reached
         out[f"time_to_success_{tag}_s"] = t
     out["final_error_m"] = float(trace.distance_m[-1])
     tip = np.vstack([trace.tip_start_m[None, :], trace.tip_m])
@@ -153,6 +152,8 @@ def episode_metrics(trace: Any) -> dict[str, Any]:
     out["target_start_m"] = [float(v) for v in trace.target_start_m]
     out["perturbation_digest"] = trace.perturbation_digest
     out["contact"] = bool(trace.contact)
+    peak = getattr(trace, "peak_joint_speed_ratio", None)
+    out["peak_joint_speed_ratio"] = None if peak is None else float(peak)
     return out
 
 
@@ -183,4 +184,7 @@ def aggregate(rows: Sequence[Mapping[str, Any]], seed: int = 0) -> dict[str, Any
     out["final_error_m_mean"] = float(np.mean([r["final_error_m"] for r in rows]))
     out["control_effort"] = float(np.mean([r["control_effort"] for r in rows]))
     out["contact_rate"] = float(np.mean([r["contact"] for r in rows]))
+    peaks = [r.get("peak_joint_speed_ratio") for r in rows]
+    peaks = [float(p) for p in peaks if p is not None]
+    out["peak_joint_speed_ratio"] = max(peaks) if peaks else None
     return out

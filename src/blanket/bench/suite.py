@@ -9,7 +9,7 @@ from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
 
-from blanket.bench.evaluate import run_policy_episode
+from blanket.bench.evaluate import run_policy_episodes
 from blanket.bench.metrics import aggregate, episode_metrics
 from blanket.bench.policies import POLICIES, PolicySpec, resolve_policy
 from blanket.conditions import PRESETS, Condition, resolve_conditions
@@ -158,10 +158,8 @@ def run_benchmark(
                     model_options = dict(condition.model_options) if spec.model_based else {}
                     policy = spec.build(env, model_options, context)
                     t0 = time.perf_counter()
-                    rows = [
-                        episode_metrics(run_policy_episode(env, policy, settings.seed + i))
-                        for i in range(settings.episodes)
-                    ]
+                    seeds = [settings.seed + i for i in range(settings.episodes)]
+                    rows = [episode_metrics(t) for t in run_policy_episodes(env, policy, seeds)]
                     record: dict[str, Any] = {
                         "policy": spec.name,
                         "condition": condition.name,

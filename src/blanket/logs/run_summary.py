@@ -3,10 +3,12 @@
 For each episode:
 
 - ``steps`` rows and ``duration_s`` (last ``t`` minus first);
-- ``success``: any true value in ``external.success`` (or ``sensory.success``); without
-  such a column, whether the tool-tip distance ever came within ``tolerance_m`` of the
-  run metadata; else unknown (``<NA>``);
-- ``time_to_success_s``: time from the first row to the first success;
+- ``success`` and ``time_to_success_s``: the env's own report, never re-derived by another
+  rule. In order: the episode metadata the rollout loop and the Recorder write (``success``,
+  ``time_to_success_s``: the ``info`` of the first step that reported success); else a
+  true value in ``external.success`` (or ``sensory.success``), timed by the first such row;
+  else the rule of :mod:`blanket.success` (held inside ``tolerance_m`` of the run metadata
+  for ``blanket.success.HOLD_S``) applied to the logged distance; else unknown (``<NA>``);
 - ``final_error_m``: the last logged distance to the target, from
   ``external.distance_m`` or computed as the Euclidean norm of
   ``external.tip_position_m - external.target_position_m`` (for a base: base position
@@ -24,8 +26,9 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from blanket.logs.reader import read_metadata, read_run
+from blanket.logs.reader import episode_files, read_episode_info, read_metadata, read_run
 from blanket.logs.schema import LogError
+from blanket.success import time_to_success
 
 __all__ = ["summarize_run", "format_summary", "inspect_text", "episode_distance"]
 
@@ -60,24 +63,44 @@ def _success(frame: pd.DataFrame) -> np.ndarray | None:
     return None
 
 
-def _summarize_episode(frame: pd.DataFrame, tolerance_m: float | None) -> dict[str, Any]:
+def _reported_success(
+    frame: pd.DataFrame,
+    t: np.ndarray,
+    distance: np.ndarray | None,
+    tolerance_m: float | None,
+    extra: Mapping[str, Any],
+) -> tuple[Any, float]:
+    """``(success, time_to_success_s)`` of one episode, see the module docstring."""
+    if isinstance(extra.get("success"), bool):
+        tts = extra.get("time_to_success_s")
+        return extra["success"], float(tts) if isinstance(tts, (int, float)) else np.nan
+    success = _success(frame)
+    if success is not None and len(success):
+        if success.any():
+            return True, float(t[int(np.argmax(success))] - t[0])
+        return False, np.nan
+    if distance is not None and tolerance_m is not None and len(t) > 1:
+        # row 0 is the state at reset, row k the state after control step k
+        inside = np.nan_to_num(distance[1:], nan=np.inf) <= tolerance_m
+        tts = time_to_success(inside, float(np.median(np.diff(t))))
+        return tts is not None, np.nan if tts is None else float(tts)
+    return pd.NA, np.nan
+
+
+def _summarize_episode(
+    frame: pd.DataFrame, tolerance_m: float | None, extra: Mapping[str, Any]
+) -> dict[str, Any]:
     t = frame["t"].to_numpy(dtype=float)
     distance = episode_distance(frame)
-    success = _success(frame)
-    if success is None and distance is not None and tolerance_m is not None:
-        success = np.nan_to_num(distance, nan=np.inf) <= tolerance_m
+    success, time_to_success_s = _reported_success(frame, t, distance, tolerance_m, extra)
     row: dict[str, Any] = {
         "steps": int(len(frame)),
         "duration_s": float(t[-1] - t[0]) if len(t) else 0.0,
-        "success": pd.NA,
-        "time_to_success_s": np.nan,
+        "success": success,
+        "time_to_success_s": time_to_success_s,
         "final_error_m": np.nan,
         "mean_free_energy": np.nan,
     }
-    if success is not None and len(success):
-        row["success"] = bool(success.any())
-        if success.any():
-            row["time_to_success_s"] = float(t[int(np.argmax(success))] - t[0])
     if distance is not None:
         finite = distance[np.isfinite(distance)]
         if finite.size:
@@ -87,6 +110,16 @@ def _summarize_episode(frame: pd.DataFrame, tolerance_m: float | None) -> dict[s
         if values.notna().any():
             row["mean_free_energy"] = float(values.mean())
     return row
+
+
+def _episode_extras(run_dir: str | os.PathLike[str]) -> dict[int, Mapping[str, Any]]:
+    """The ``extra`` metadata of every episode file, by episode number."""
+    extras: dict[int, Mapping[str, Any]] = {}
+    for path in episode_files(run_dir):
+        info = read_episode_info(path)
+        if isinstance(info.get("episode"), int) and isinstance(info.get("extra"), Mapping):
+            extras[info["episode"]] = info["extra"]
+    return extras
 
 
 def summarize_run(run_dir: str | os.PathLike[str]) -> pd.DataFrame:
@@ -106,8 +139,9 @@ def summarize_run(run_dir: str | os.PathLike[str]) -> pd.DataFrame:
         frame = read_run(run_dir)
     tolerance = metadata.get("tolerance_m")
     tolerance = float(tolerance) if isinstance(tolerance, (int, float)) else None
+    extras = _episode_extras(run_dir)
     rows = {
-        int(episode): _summarize_episode(group, tolerance)
+        int(episode): _summarize_episode(group, tolerance, extras.get(int(episode), {}))
         for episode, group in frame.groupby("episode", sort=True)
     }
     table = pd.DataFrame.from_dict(rows, orient="index")

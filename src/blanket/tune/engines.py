@@ -174,7 +174,8 @@ def evaluate_trial(payload: Mapping[str, Any]) -> dict[str, Any]:
         timings, plus ``mean_free_energy``), ``per_seed`` (lists over seeds), ``timing``
         (wall time and step medians, not reproducible) and ``error`` (a message or None).
     """
-    from blanket.runner import build_agent, run_episodes, summarize
+    from blanket.rollout import rollout
+    from blanket.runner import agent_options_under, build_agent, summarize
     from blanket.scenario import Scenario
     from blanket.tune.space import apply_overrides
 
@@ -201,17 +202,8 @@ def evaluate_trial(payload: Mapping[str, Any]) -> dict[str, Any]:
         )
         raw = _cached_env(scenario.env, {**scenario.env_options, **extra_env})
         env = with_safety(wrap(raw))
-        agent_options = dict(scenario.agent)
-        from blanket.description import ArmDescription
-
-        arm = isinstance(getattr(raw.unwrapped, "description", None), ArmDescription)
-        if model_options and arm and "class" not in agent_options:
-            # a body-model perturbation (e.g. miscalibrated link lengths) of the built-in agent
-            agent_options.update(model_options)
-        agent = build_agent(env, agent_options)
-        results = []
-        for seed in payload["seeds"]:
-            results.extend(run_episodes(env, agent, episodes=1, seed=int(seed), progress=False))
+        agent = build_agent(env, agent_options_under(scenario.agent, model_options, raw))
+        results = rollout(env, agent, seeds=[int(s) for s in payload["seeds"]])
     except ValueError as exc:  # ConfigError included: a bad value for this trial
         out["error"] = str(exc).strip().splitlines()[0] if str(exc).strip() else repr(exc)
         return out

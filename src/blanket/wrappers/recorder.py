@@ -1,18 +1,23 @@
 """Record any gymnasium loop into a blanket run folder.
 
-:class:`Recorder` writes the same Parquet format as the runner (see
-:mod:`blanket.logs.schema`) from the three groups an env wrapper can see:
+:class:`Recorder` writes the same Parquet format and the same columns as the rollout loop's
+log (see :mod:`blanket.logs.schema`; both build their rows with :mod:`blanket.logs.groups`)
+from the three groups an env wrapper can see:
 
-- ``external.*`` from ``info["external"]`` (plus ``info`` scalars ``distance_m``,
-  ``inside_tolerance`` and ``success`` when the env gives them),
-- ``sensory.*`` from the observation (a Dict observation keeps its keys, any other
-  observation is logged as ``sensory.observation``),
-- ``active.*`` from the action (``active.joint_velocity_rad_s`` or
-  ``active.joint_torque_n_m`` when the env's description names the control mode, else
-  ``active.command``) and, when a safety wrapper reports it in ``info["action_applied"]``,
-  the applied action as ``active.applied_<same key>``.
+- ``external.*`` from ``info["external"]`` (plus the ``info`` scalars ``distance_m``,
+  ``success``, ``inside_tolerance``, ``contact`` and ``heading_error_rad`` when the env gives
+  them),
+- ``sensory.*`` from the observation (a Dict observation keeps its keys, a tuple becomes
+  ``item0``, ``item1``, ..., any other observation ``sensory.observation``),
+- ``active.action``, the action, and, when a safety wrapper reports it in
+  ``info["action_applied"]``, ``active.action_applied``.
 
-There is no ``internal.*`` group: a wrapper cannot see an agent's beliefs.
+There is no ``internal.*`` group: a wrapper cannot see an agent's beliefs. Values the format
+cannot hold (strings, objects) are left out, with one warning naming them.
+
+Each episode's metadata holds the seed, the number of actions, whether the episode was
+terminated or truncated, and the env's own success report: ``success`` (reported at any step)
+and ``time_to_success_s`` (the ``info`` value of the first step that reported success, or None).
 
 Row ``k`` holds the state and sensation the policy saw before its ``k``-th action, and that
 action. When the episode ends (next ``reset`` or ``close``) one last row holds the final
@@ -31,11 +36,11 @@ from typing import Any, SupportsFloat
 import gymnasium as gym
 import numpy as np
 
+from blanket.logs.groups import active_group, external_group, numeric_only, sensory_group
 from blanket.logs.writer import RunWriter
 
 __all__ = ["Recorder"]
 
-_INFO_SCALARS = ("distance_m", "inside_tolerance", "success")
 _LIFTED_FIELDS = (
     "joint_names",
     "urdf_path",
@@ -45,36 +50,6 @@ _LIFTED_FIELDS = (
     "tolerance_m",
     "episode_s",
 )
-
-
-def _loggable(value: Any) -> bool:
-    if isinstance(value, (bool, int, float, np.bool_, np.integer, np.floating)):
-        return True
-    if isinstance(value, np.ndarray):
-        return value.ndim <= 2 and value.dtype.kind in "biuf"
-    return False
-
-
-def _filter(values: Mapping[str, Any], dropped: list[str], prefix: str) -> dict[str, Any]:
-    out: dict[str, Any] = {}
-    for key, value in values.items():
-        if isinstance(value, Mapping):
-            out[str(key)] = _filter(value, dropped, f"{prefix}.{key}")
-        elif _loggable(value):
-            out[str(key)] = value
-        elif isinstance(value, (list, tuple)) and _loggable(np.asarray(value)):
-            out[str(key)] = np.asarray(value)
-        else:
-            dropped.append(f"{prefix}.{key}")
-    return out
-
-
-def _as_group(value: Any, default_key: str, dropped: list[str], prefix: str) -> dict[str, Any]:
-    if isinstance(value, Mapping):
-        return _filter(value, dropped, prefix)
-    if isinstance(value, tuple):
-        return _filter({f"item{i}": v for i, v in enumerate(value)}, dropped, prefix)
-    return _filter({default_key: np.asarray(value)}, dropped, prefix)
 
 
 class Recorder(gym.Wrapper, gym.utils.RecordConstructorArgs):
@@ -116,11 +91,6 @@ class Recorder(gym.Wrapper, gym.utils.RecordConstructorArgs):
         description = getattr(env.unwrapped, "description", None)
         derived = self._metadata_from_env(env, description)
         derived.update(dict(metadata or {}))
-        control = getattr(description, "control", None)
-        self._action_key = {
-            "velocity": "joint_velocity_rad_s",
-            "torque": "joint_torque_n_m",
-        }.get(control, "command")
         control_hz = getattr(description, "control_hz", None)
         self._dt: float | None = 1.0 / float(control_hz) if control_hz else None
         if self._dt is None and getattr(env.unwrapped, "dt", None):
@@ -139,6 +109,8 @@ class Recorder(gym.Wrapper, gym.utils.RecordConstructorArgs):
         self._last_obs: Any = None
         self._last_info: dict[str, Any] = {}
         self._ended: dict[str, bool] = {}
+        self._success = False
+        self._success_time: float | None = None
         self._warned = False
         self._closed = False
 
@@ -178,6 +150,7 @@ class Recorder(gym.Wrapper, gym.utils.RecordConstructorArgs):
         self._step = 0
         self._seed = seed
         self._ended = {"terminated": False, "truncated": False}
+        self._success, self._success_time = False, None
         self._last_obs, self._last_info = obs, info
         return obs, info
 
@@ -186,12 +159,13 @@ class Recorder(gym.Wrapper, gym.utils.RecordConstructorArgs):
         obs, reward, terminated, truncated, info = self.env.step(action)
         if self._open:
             dropped: list[str] = []
-            active = _as_group(action, self._action_key, dropped, "active")
-            applied = info.get("action_applied") if isinstance(info, Mapping) else None
-            if applied is not None:
-                applied_group = _as_group(applied, self._action_key, dropped, "active")
-                active.update({f"applied_{k}": v for k, v in applied_group.items()})
+            info_map = info if isinstance(info, Mapping) else {}
+            active = numeric_only(active_group(action, info_map), dropped, "active")
             self._record_row(active, dropped)
+            if not self._success and info_map.get("success"):
+                self._success = True
+                tts = info_map.get("time_to_success_s")
+                self._success_time = None if tts is None else float(tts)
             self._step += 1
             self._last_obs, self._last_info = obs, info
             self._ended = {"terminated": bool(terminated), "truncated": bool(truncated)}
@@ -208,13 +182,9 @@ class Recorder(gym.Wrapper, gym.utils.RecordConstructorArgs):
     # ------------------------------------------------------------------ internals
     def _record_row(self, active: dict[str, Any], dropped: list[str]) -> None:
         info = self._last_info if isinstance(self._last_info, Mapping) else {}
-        external_raw = dict(info.get("external", {}) or {})
-        for key in _INFO_SCALARS:
-            if key in info and key not in external_raw:
-                external_raw[key] = info[key]
-        external = _filter(external_raw, dropped, "external")
-        sensory = _as_group(self._last_obs, "observation", dropped, "sensory")
-        if "time_s" in info and _loggable(info["time_s"]):
+        external = numeric_only(external_group(info), dropped, "external")
+        sensory = numeric_only(sensory_group(self._last_obs), dropped, "sensory")
+        if isinstance(info.get("time_s"), (int, float, np.integer, np.floating)):
             t = float(info["time_s"])
         else:
             t = self._step * (self._dt if self._dt else 1.0)
@@ -230,7 +200,13 @@ class Recorder(gym.Wrapper, gym.utils.RecordConstructorArgs):
         if not self._open:
             return
         self._record_row({}, [])
-        extra = {"seed": self._seed, "actions": self._step, **self._ended}
+        extra = {
+            "seed": self._seed,
+            "actions": self._step,
+            **self._ended,
+            "success": self._success,
+            "time_to_success_s": self._success_time,
+        }
         self._writer.end_episode(extra)
         self._open = False
         self._episode += 1
