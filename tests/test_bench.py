@@ -446,3 +446,43 @@ def test_sb3_check_env_and_a_tiny_training_run(tmp_path):
     # Held for action_repeat steps between decisions.
     assert np.all(trace.action[1:8] == trace.action[0])
     assert np.all(np.abs(trace.action) <= bench_env.unwrapped.action_space.high + 1e-12)
+
+
+def test_bench_reports_the_beliefs_consistency():
+    # an agent whose sd is honest scores a worst-joint mean NEES near 1 and "consistent"; the
+    # same errors reported with a tenth of the sd score ~100 and are not consistent
+    # (blanket.consistency: Bar-Shalom, Li & Kirubarajan 2001, sec. 5.4.2)
+    from blanket.bench.evaluate import EpisodeTrace
+    from blanket.bench.metrics import aggregate, episode_metrics
+
+    rng = np.random.default_rng(0)
+    k, n = 960, 3
+    truth = rng.normal(size=(k, n))
+    sd = np.full((k, n), 0.01)
+    belief = truth + sd * rng.normal(size=(k, n))
+    trace = EpisodeTrace(
+        seed=0,
+        dt=1.0 / 240.0,
+        distance_m=np.full(k, 0.1),
+        tip_m=np.zeros((k, 3)),
+        q_rad=truth,
+        action=np.zeros((k, n)),
+        q_start_rad=np.zeros(n),
+        tip_start_m=np.ones(3),
+        target_start_m=np.zeros(3),
+        q_seen_rad=truth,
+        belief_q_rad=belief,
+        policy_us=np.ones(k),
+        perturbation_digest="",
+        contact=False,
+        env_success=False,
+        belief_sd_q_rad=sd,
+    )
+    honest = episode_metrics(trace)
+    assert 0.8 < honest["belief_nees"] < 1.25 and honest["belief_consistent"]
+    trace.belief_sd_q_rad = sd / 10
+    shrunk = episode_metrics(trace)
+    assert shrunk["belief_nees"] > 80 and not shrunk["belief_consistent"]
+    agg = aggregate([honest, shrunk])
+    assert agg["belief_nees_max"] == pytest.approx(shrunk["belief_nees"])
+    assert agg["belief_consistent_rate"] == 0.5

@@ -99,3 +99,18 @@ def test_summary_line_and_bad_input():
         check_consistency(np.array([np.nan]))
     with pytest.raises(ValueError, match="dof"):
         chi_square_mean_bounds(0, 10)
+
+
+def test_worst_component_check_skips_the_settling_time_and_names_the_worst_joint():
+    from blanket.consistency import worst_component_check
+
+    rng = np.random.default_rng(3)
+    t = np.arange(480) / 240.0
+    truth = np.zeros((480, 2))
+    sd = np.ones((480, 2))
+    belief = rng.normal(size=(480, 2))
+    belief[:, 1] *= 3.0  # joint 1: errors 3x its sd -> mean NEES ~9
+    belief[:60, 0] = 1e3  # a huge start on joint 0, inside the first 0.25 s: not judged
+    check = worst_component_check(belief, truth, sd, t)
+    assert check.mean == pytest.approx(9.0, rel=0.15) and check.verdict == "overconfident"
+    assert check.samples == 480 - 60

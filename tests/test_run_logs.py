@@ -104,3 +104,14 @@ def test_scenario_conditions_are_applied_and_logged(tmp_path):
     dry = read_run(tmp_path / "dry")
     dry = dry[dry["episode"] == 0]
     assert wet["sensory.camera_fresh"].sum() < 0.75 * dry["sensory.camera_fresh"].sum()
+
+
+def test_inspect_judges_the_beliefs_consistency(tmp_path):
+    from blanket.logs.run_summary import inspect_text, summarize_run
+
+    _run(tmp_path / "a")
+    table = summarize_run(tmp_path / "a")
+    assert set(table["belief"]) <= {"consistent", "overconfident", "underconfident"}
+    assert (table["belief_nees"] > 0).all()
+    line = [x for x in inspect_text(tmp_path / "a").splitlines() if x.startswith("belief")]
+    assert len(line) == 1 and "of 2 episodes" in line[0] and "expected 1" in line[0]

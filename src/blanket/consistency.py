@@ -189,3 +189,50 @@ def check_consistency(values: np.ndarray, dof: int = 1, level: float = 0.95) -> 
         upper=hi,
         level=float(level),
     )
+
+
+#: The start of an episode the belief consistency is not judged on (s): the belief meets its
+#: first sensations there (common practice, no source).
+SETTLE_S = 0.25
+
+
+def worst_component_check(
+    belief: np.ndarray,
+    truth: np.ndarray,
+    sd: np.ndarray,
+    t: np.ndarray,
+    settle_s: float = SETTLE_S,
+    level: float = 0.95,
+) -> ConsistencyCheck | None:
+    """The NEES test of the component (joint) whose mean NEES is highest, after ``settle_s``.
+
+    Parameters
+    ----------
+    belief, truth, sd : numpy.ndarray
+        Believed values, true values and the belief's standard deviations, shape ``(K, n)``.
+    t : numpy.ndarray
+        Time of each row (s), shape ``(K,)``; rows before ``t[0] + settle_s`` are left out.
+
+    Returns
+    -------
+    ConsistencyCheck or None
+        None when no row after ``settle_s`` holds a finite value.
+    """
+    b, x, s = (np.asarray(a, dtype=float) for a in (belief, truth, sd))
+    if b.ndim == 1:
+        b, x, s = b[:, None], x[:, None], s[:, None]
+    t = np.asarray(t, dtype=float)
+    keep = t >= t[0] + settle_s - 1e-9 if t.size else np.zeros(0, bool)
+    values = nees_per_component(b[keep] - x[keep], s[keep])
+    best: ConsistencyCheck | None = None
+    for j in range(values.shape[1]):
+        column = values[:, j]
+        if not np.isfinite(column).any():
+            continue
+        check = check_consistency(column, dof=1, level=level)
+        if best is None or check.mean > best.mean:
+            best = check
+    return best
+
+
+__all__ += ["SETTLE_S", "worst_component_check"]

@@ -55,6 +55,7 @@ class EpisodeTrace:
     env_time_to_success_s: float | None = None
     env_tolerance_m: float | None = None
     peak_joint_speed_ratio: float | None = None
+    belief_sd_q_rad: np.ndarray | None = None
 
 
 def _digest_update(h: Any, external: Mapping[str, Any]) -> None:
@@ -96,6 +97,7 @@ class BenchTrace(Observer):
         self._actions: list[np.ndarray] = []
         self._seen: list[np.ndarray] = []
         self._beliefs: list[np.ndarray] = []
+        self._sds: list[np.ndarray] = []
         self._us: list[float] = []
         self._contact = False
         self._success = False
@@ -109,6 +111,9 @@ class BenchTrace(Observer):
             # a copy: the diagnostics may be views of the agent's buffers
             self._beliefs.append(np.array(np.asarray(belief, dtype=float)[0]))
             self._seen.append(self._q_now)
+            sd = diag.get("belief_sd")
+            if sd is not None:
+                self._sds.append(np.array(np.asarray(sd, dtype=float)[0]))
         info = step.info
         ext = info["external"]
         self._q_now = np.asarray(ext["joint_angle_rad"], float).copy()
@@ -143,6 +148,11 @@ class BenchTrace(Observer):
                 target_start_m=self._target_start,
                 q_seen_rad=np.asarray(seen) if seen else np.zeros((0, self._q_start.size)),
                 belief_q_rad=np.asarray(self._beliefs) if self._beliefs else None,
+                belief_sd_q_rad=(
+                    np.asarray(self._sds)
+                    if self._sds and len(self._sds) == len(self._beliefs)
+                    else None
+                ),
                 policy_us=np.asarray(self._us),
                 perturbation_digest=self._hash.hexdigest()[:16],
                 contact=self._contact,

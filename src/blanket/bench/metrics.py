@@ -13,6 +13,7 @@ from typing import Any
 import numpy as np
 
 from blanket import success as _success
+from blanket.consistency import worst_component_check
 from blanket.errors import ConfigError
 from blanket.success import HOLD_S  # how long success needs the tip inside (s), re-exported
 
@@ -148,6 +149,18 @@ def episode_metrics(trace: Any) -> dict[str, Any]:
         if trace.belief_q_rad is not None
         else None
     )
+    # how honest the belief was: the worst joint's mean NEES after the first 0.25 s
+    # (expected 1; blanket.consistency)
+    check = None
+    if trace.belief_q_rad is not None and trace.belief_sd_q_rad is not None:
+        check = worst_component_check(
+            trace.belief_q_rad,
+            trace.q_seen_rad,
+            trace.belief_sd_q_rad,
+            np.arange(len(trace.belief_q_rad)) * dt,
+        )
+    out["belief_nees"] = None if check is None else check.mean
+    out["belief_consistent"] = None if check is None else check.verdict == "consistent"
     out["policy_step_us"] = float(np.median(trace.policy_us)) if len(trace.policy_us) else None
     out["target_start_m"] = [float(v) for v in trace.target_start_m]
     out["perturbation_digest"] = trace.perturbation_digest
@@ -178,9 +191,14 @@ def aggregate(rows: Sequence[Mapping[str, Any]], seed: int = 0) -> dict[str, Any
         "path_length_ratio",
         "joint_jerk_rad_s3",
         "belief_rmse_rad",
+        "belief_nees",
         "policy_step_us",
     ):
-        out[key] = _median([r[key] for r in rows])
+        out[key] = _median([r.get(key) for r in rows])
+    nees = [float(r["belief_nees"]) for r in rows if r.get("belief_nees") is not None]
+    out["belief_nees_max"] = max(nees) if nees else None
+    judged = [r["belief_consistent"] for r in rows if r.get("belief_consistent") is not None]
+    out["belief_consistent_rate"] = float(np.mean(judged)) if judged else None
     out["final_error_m_mean"] = float(np.mean([r["final_error_m"] for r in rows]))
     out["control_effort"] = float(np.mean([r["control_effort"] for r in rows]))
     out["contact_rate"] = float(np.mean([r["contact"] for r in rows]))

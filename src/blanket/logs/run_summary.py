@@ -13,7 +13,13 @@ For each episode:
   ``external.distance_m`` or computed as the Euclidean norm of
   ``external.tip_position_m - external.target_position_m`` (for a base: base position
   against the dock, in the x-y plane);
-- ``mean_free_energy``: mean of ``internal.free_energy`` (NaN without an agent).
+- ``mean_free_energy``: mean of ``internal.free_energy`` (NaN without an agent);
+- ``belief_nees`` and ``belief``: how honest the agent's joint-angle belief was -- the mean
+  normalized estimation error squared ``((belief - truth) / belief_sd)^2`` of the worst joint
+  after the first :data:`blanket.consistency.SETTLE_S` (expected 1), and its verdict against
+  the chi-square region (``consistent``, ``overconfident``, ``underconfident``; see
+  :mod:`blanket.consistency`), from ``internal.belief.order0.*``, ``internal.belief_sd.order0.*``
+  and ``external.joint_angle_rad.*`` (absent columns: NaN and ``-``).
 """
 
 from __future__ import annotations
@@ -26,7 +32,14 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from blanket.logs.reader import episode_files, read_episode_info, read_metadata, read_run
+from blanket.consistency import SETTLE_S, worst_component_check
+from blanket.logs.reader import (
+    check_file,
+    episode_files,
+    read_episode_info,
+    read_metadata,
+    read_run,
+)
 from blanket.logs.schema import LogError
 from blanket.success import time_to_success
 
@@ -109,7 +122,35 @@ def _summarize_episode(
         values = pd.to_numeric(frame["internal.free_energy"], errors="coerce")
         if values.notna().any():
             row["mean_free_energy"] = float(values.mean())
+    row["belief_nees"], row["belief"] = np.nan, "-"
+    joints = _belief_joints(frame.columns)
+    if joints and len(t):
+        check = worst_component_check(
+            frame[[f"{_BELIEF}{j}" for j in joints]].to_numpy(float),
+            frame[[f"{_TRUTH}{j}" for j in joints]].to_numpy(float),
+            frame[[f"{_BELIEF_SD}{j}" for j in joints]].to_numpy(float),
+            t,
+        )
+        if check is not None:
+            row["belief_nees"], row["belief"] = check.mean, check.verdict
     return row
+
+
+_BELIEF = "internal.belief.order0."
+_BELIEF_SD = "internal.belief_sd.order0."
+_TRUTH = "external.joint_angle_rad."
+
+
+def _belief_joints(columns: Any) -> list[str]:
+    """Joints with a believed angle, its standard deviation and the true angle logged."""
+    names = set(columns)
+    return [
+        c[len(_BELIEF) :]
+        for c in columns
+        if c.startswith(_BELIEF)
+        and f"{_BELIEF_SD}{c[len(_BELIEF) :]}" in names
+        and f"{_TRUTH}{c[len(_BELIEF) :]}" in names
+    ]
 
 
 def _episode_extras(run_dir: str | os.PathLike[str]) -> dict[int, Mapping[str, Any]]:
@@ -133,6 +174,10 @@ def summarize_run(run_dir: str | os.PathLike[str]) -> pd.DataFrame:
         *(f"external.tip_position_m.{c}" for c in _COMPONENTS),
         *(f"external.target_position_m.{c}" for c in _COMPONENTS),
     ]
+    files = episode_files(run_dir)
+    if files:  # the belief's columns are named by joint: take them from the first file
+        names = check_file(files[0]).schema_arrow.names
+        wanted += [c for c in names if c.startswith((_BELIEF, _BELIEF_SD, _TRUTH))]
     frame = read_run(run_dir, columns=wanted)
     if not any(c in frame.columns for c in wanted):
         # A base run or a custom env: fall back to every column (distance heuristics).
@@ -186,7 +231,29 @@ def format_summary(table: pd.DataFrame, metadata: Mapping[str, Any], run_dir: Pa
     errors = table["final_error_m"].dropna()
     if len(errors):
         totals += f"; median final error {errors.median():.3g} m"
+    totals += _belief_line(table)
     return "\n".join(header) + body + totals
+
+
+def _belief_line(table: pd.DataFrame) -> str:
+    """One line: in how many episodes the joint-angle belief was consistent, and if not, how."""
+    if "belief" not in table.columns:
+        return ""
+    judged = table[table["belief"] != "-"]
+    if judged.empty:
+        return ""
+    counts = judged["belief"].value_counts()
+    worst = judged["belief_nees"]
+    line = (
+        f"\nbelief (joint angles, after {SETTLE_S:g} s): consistent in "
+        f"{int(counts.get('consistent', 0))} of {len(judged)} episodes"
+    )
+    for verdict in ("overconfident", "underconfident"):
+        if counts.get(verdict, 0):
+            line += f", {verdict} in {int(counts[verdict])}"
+    return line + (
+        f"; worst-joint mean NEES median {worst.median():.3g}, max {worst.max():.3g} (expected 1)"
+    )
 
 
 def inspect_text(run_dir: str | os.PathLike[str]) -> str:
