@@ -208,17 +208,9 @@ def evaluate_trial(payload: Mapping[str, Any]) -> dict[str, Any]:
         out["error"] = str(exc).strip().splitlines()[0] if str(exc).strip() else repr(exc)
         return out
     summary = summarize(results)
-    metrics = {
-        k: summary.get(k)
-        for k in (
-            "success_rate",
-            "final_error_m",
-            "time_to_success_s",
-            "contact_rate",
-            "safe_stops",
-            "final_heading_error_rad",
-        )
-    }
+    from blanket.tune.search import METRICS
+
+    metrics = {k: summary.get(k) for k in METRICS if k != "mean_free_energy"}
     metrics["mean_free_energy"] = _median([r.mean_free_energy for r in results])
     out["metrics"] = metrics
     out["per_seed"] = {
