@@ -30,6 +30,9 @@ __all__ = [
     "belief_gradient",
     "belief_curvature",
     "action_gradient",
+    "free_energy_diagonal",
+    "belief_gradient_diagonal",
+    "belief_curvature_diagonal",
     "log_precision_gradient",
     "log_precision_gradient_diagonal",
     "normalized_error",
@@ -193,6 +196,82 @@ def action_gradient(
     if not Js:
         raise ValueError("error_action_jacobians must hold at least one term")
     return np.sum([J.T @ (P @ e) for J, (e, P) in zip(Js, terms, strict=True)], axis=0)
+
+
+def _diagonal_terms(
+    errors: Sequence[np.ndarray], precisions: Sequence[np.ndarray]
+) -> list[tuple[np.ndarray, np.ndarray]]:
+    if len(errors) != len(precisions):
+        raise ValueError(
+            f"errors and precisions must have the same length, got {len(errors)} and "
+            f"{len(precisions)}"
+        )
+    out = []
+    for i, (e, p) in enumerate(zip(errors, precisions, strict=True)):
+        e = np.atleast_1d(np.asarray(e, dtype=float)).ravel()
+        p = np.atleast_1d(np.asarray(p, dtype=float)).ravel()
+        if p.shape != e.shape:
+            raise ValueError(
+                f"precisions[{i}] must hold {e.size} diagonal entries to match errors[{i}], "
+                f"got shape {p.shape}"
+            )
+        out.append((e, p))
+    return out
+
+
+def free_energy_diagonal(errors: Sequence[np.ndarray], precisions: Sequence[np.ndarray]) -> float:
+    """:func:`free_energy` for diagonal precisions ``P_i = diag(p_i)``, given as vectors.
+
+    ``F = 1/2 sum_i sum_j p_ij e_ij^2 - 1/2 sum_i sum_(p_ij > 0) ln p_ij`` (Friston 2008, PLoS
+    Comput Biol, eq. 9, with the pseudo-determinant of :func:`log_pseudo_determinant`).
+    """
+    F = 0.0
+    for e, p in _diagonal_terms(errors, precisions):
+        F += 0.5 * float(e @ (p * e)) - 0.5 * float(np.log(p[p > 0]).sum())
+    return F
+
+
+def belief_gradient_diagonal(
+    errors: Sequence[np.ndarray],
+    error_jacobians: Sequence[np.ndarray],
+    precisions: Sequence[np.ndarray],
+) -> np.ndarray:
+    """:func:`belief_gradient` for diagonal precisions: ``sum_i J_i' (p_i * e_i)``.
+
+    ``J_i = d e_i / d mu`` (Friston 2008, eq. 10), shape ``(k_i, n)``; ``p_i`` shape ``(k_i,)``.
+    """
+    terms = _diagonal_terms(errors, precisions)
+    Js = _jacobians(error_jacobians, terms, "error_jacobians")
+    if not Js:
+        raise ValueError("error_jacobians must hold at least one term")
+    return np.sum([J.T @ (p * e) for J, (e, p) in zip(Js, terms, strict=True)], axis=0)
+
+
+def belief_curvature_diagonal(
+    error_jacobians: Sequence[np.ndarray], precisions: Sequence[np.ndarray]
+) -> np.ndarray:
+    """:func:`belief_curvature` for diagonal precisions: ``sum_i J_i' diag(p_i) J_i``.
+
+    The Gauss-Newton curvature (the Laplace conditional precision, Friston 2008, eq. 9).
+    """
+    if len(error_jacobians) != len(precisions):
+        raise ValueError("error_jacobians and precisions must have the same length")
+    H = None
+    for i, (J, p) in enumerate(zip(error_jacobians, precisions, strict=True)):
+        J = np.atleast_2d(np.asarray(J, dtype=float))
+        p = np.atleast_1d(np.asarray(p, dtype=float)).ravel()
+        if p.shape != (J.shape[0],):
+            raise ValueError(f"precisions[{i}] must hold {J.shape[0]} entries, got {p.shape}")
+        term = (J.T * p) @ J
+        if H is None:
+            H = term
+        elif H.shape != term.shape:
+            raise ValueError("error_jacobians must all have the same number of columns")
+        else:
+            H = H + term
+    if H is None:
+        raise ValueError("error_jacobians must hold at least one term")
+    return H
 
 
 def log_precision_gradient(error: np.ndarray, precision: np.ndarray) -> float:
