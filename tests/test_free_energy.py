@@ -140,3 +140,38 @@ def test_bad_inputs_raise_value_error():
         fe.chi_square_threshold(0)
     with pytest.raises(ValueError, match="false_alarm"):
         fe.chi_square_threshold(2, 1.5)
+
+
+def test_diagonal_forms_equal_the_full_forms_and_match_finite_differences():
+    # The diagonal-precision forms are the full ones with P = diag(p); the gradient and the
+    # Gauss-Newton curvature of a linear error e = y - G mu are checked by central
+    # differences (common practice, no source).
+    rng = np.random.default_rng(7)
+    n = 4
+    G1, G2 = rng.standard_normal((3, n)), rng.standard_normal((2, n))
+    y1, y2 = rng.standard_normal(3), rng.standard_normal(2)
+    p1, p2 = rng.uniform(0.5, 3.0, 3), np.array([2.0, 0.0])  # a zero-precision component
+
+    def errors(mu):
+        return [y1 - G1 @ mu, y2 - G2 @ mu]
+
+    mu = rng.standard_normal(n)
+    e = errors(mu)
+    full = [np.diag(p1), np.diag(p2)]
+    assert fe.free_energy_diagonal(e, [p1, p2]) == pytest.approx(fe.free_energy(e, full))
+    grad = fe.belief_gradient_diagonal(e, [-G1, -G2], [p1, p2])
+    np.testing.assert_allclose(grad, fe.belief_gradient(e, [-G1, -G2], full), rtol=1e-12)
+    fd = _fd_grad(lambda m: fe.free_energy_diagonal(errors(m), [p1, p2]), mu)
+    np.testing.assert_allclose(grad, fd, rtol=1e-6, atol=1e-8)
+    H = fe.belief_curvature_diagonal([-G1, -G2], [p1, p2])
+    fd_H = np.stack(
+        [
+            _fd_grad(
+                lambda m, i=i: fe.belief_gradient_diagonal(errors(m), [-G1, -G2], [p1, p2])[i], mu
+            )
+            for i in range(n)
+        ]
+    )
+    np.testing.assert_allclose(H, fd_H, rtol=1e-6, atol=1e-8)
+    with pytest.raises(ValueError, match="precisions\\[1\\] must hold 2"):
+        fe.free_energy_diagonal(e, [p1, np.ones(3)])

@@ -93,10 +93,10 @@ def pinhole_projection(
     x = T[0, 0] * d0 + T[1, 0] * d1 + T[2, 0] * d2
     y = T[0, 1] * d0 + T[1, 1] * d1 + T[2, 1] * d2
     z = T[0, 2] * d0 + T[1, 2] * d1 + T[2, 2] * d2
-    iz = 1.0 / z
     pixel = np.empty(2)
-    pixel[0] = fx * x * iz + cx
-    pixel[1] = fy * y * iz + cy
+    pixel[0] = fx * x / z + cx
+    pixel[1] = fy * y / z + cy
+    iz = 1.0 / z
     a = fx * iz  # d u / d x_c
     b = -fx * x * iz * iz  # d u / d z_c
     c = fy * iz  # d v / d y_c
