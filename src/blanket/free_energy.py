@@ -14,7 +14,9 @@ under white noise -- are allowed and simply contribute nothing in those directio
 
 Every function accepts a sequence of error terms: ``errors[i]`` of shape ``(k_i,)`` and
 ``precisions[i]`` of shape ``(k_i, k_i)``, with Jacobians ``(k_i, n)`` with respect to the
-belief (or action) of length ``n``.
+belief (or action) of length ``n``. A precision given as a vector of shape ``(k_i,)`` is the
+diagonal of a diagonal precision: the fast form, with no ``k_i x k_i`` products (the agent's
+channels all have diagonal precisions).
 """
 
 from __future__ import annotations
@@ -30,9 +32,6 @@ __all__ = [
     "belief_gradient",
     "belief_curvature",
     "action_gradient",
-    "free_energy_diagonal",
-    "belief_gradient_diagonal",
-    "belief_curvature_diagonal",
     "log_precision_gradient",
     "log_precision_gradient_diagonal",
     "normalized_error",
@@ -51,14 +50,25 @@ def _as_terms(
     out = []
     for i, (e, P) in enumerate(zip(errors, precisions, strict=True)):
         e = np.atleast_1d(np.asarray(e, dtype=float)).ravel()
-        P = np.atleast_2d(np.asarray(P, dtype=float))
-        if P.shape != (e.size, e.size):
-            raise ValueError(
-                f"precisions[{i}] must have shape {(e.size, e.size)} to match errors[{i}], "
-                f"got {P.shape}"
-            )
+        P = _precision(P, e.size, f"precisions[{i}]", f" to match errors[{i}]")
         out.append((e, P))
     return out
+
+
+def _precision(P: np.ndarray, k: int, name: str, context: str = "") -> np.ndarray:
+    """``P`` as a (k, k) matrix, or as a (k,) vector (the diagonal of a diagonal precision)."""
+    P = np.asarray(P, dtype=float)
+    if P.ndim == 1 and P.shape == (k,):
+        return P
+    P = np.atleast_2d(P)
+    if P.shape != (k, k):
+        raise ValueError(f"{name} must have shape {(k, k)} or {(k,)}{context}, got {P.shape}")
+    return P
+
+
+def _weigh(P: np.ndarray, x: np.ndarray) -> np.ndarray:
+    """``P x`` for a full precision or the diagonal vector of a diagonal one."""
+    return P * x if P.ndim == 1 else P @ x
 
 
 def _jacobians(jacobians: Sequence[np.ndarray], terms: list, name: str) -> list[np.ndarray]:
@@ -77,15 +87,33 @@ def _jacobians(jacobians: Sequence[np.ndarray], terms: list, name: str) -> list[
     return out
 
 
+def _weighted_errors(
+    errors: Sequence[np.ndarray],
+    jacobians: Sequence[np.ndarray],
+    precisions: Sequence[np.ndarray],
+    name: str,
+) -> np.ndarray:
+    """``sum_i J_i' P_i e_i``."""
+    terms = _as_terms(errors, precisions)
+    Js = _jacobians(jacobians, terms, name)
+    if not Js:
+        raise ValueError(f"{name} must hold at least one term")
+    return np.sum([J.T @ _weigh(P, e) for J, (e, P) in zip(Js, terms, strict=True)], axis=0)
+
+
 def log_pseudo_determinant(precision: np.ndarray, rtol: float = 1e-12) -> float:
     """Log pseudo-determinant: sum of ``ln`` of the eigenvalues above ``rtol * max``.
 
-    For a symmetric positive semi-definite matrix. Zero eigenvalues (precision-free directions)
-    are skipped; a full-rank matrix gives ``ln|P|``.
+    For a symmetric positive semi-definite matrix, or the vector of a diagonal one. Zero
+    eigenvalues (precision-free directions) are skipped; a full-rank matrix gives ``ln|P|``.
     """
-    P = np.atleast_2d(np.asarray(precision, dtype=float))
+    P = np.asarray(precision, dtype=float)
     if P.size == 0:
         return 0.0
+    if P.ndim == 1:  # the diagonal of a diagonal precision
+        top = float(np.max(P))
+        return float(np.sum(np.log(P[P > rtol * top]))) if top > 0 else 0.0
+    P = np.atleast_2d(P)
     w = np.linalg.eigvalsh(0.5 * (P + P.T))
     top = float(np.max(w))
     if top <= 0:
@@ -106,7 +134,8 @@ def free_energy(errors: Sequence[np.ndarray], precisions: Sequence[np.ndarray]) 
     errors : sequence of numpy.ndarray
         Prediction errors ``e_i``, each of shape ``(k_i,)``.
     precisions : sequence of numpy.ndarray
-        Precisions ``P_i``, each symmetric PSD of shape ``(k_i, k_i)``.
+        Precisions ``P_i``, each symmetric PSD of shape ``(k_i, k_i)``, or ``(k_i,)`` for a
+        diagonal one.
 
     Returns
     -------
@@ -114,7 +143,7 @@ def free_energy(errors: Sequence[np.ndarray], precisions: Sequence[np.ndarray]) 
     """
     F = 0.0
     for e, P in _as_terms(errors, precisions):
-        F += 0.5 * float(e @ P @ e) - 0.5 * log_pseudo_determinant(P)
+        F += 0.5 * float(e @ _weigh(P, e)) - 0.5 * log_pseudo_determinant(P)
     return F
 
 
@@ -133,11 +162,7 @@ def belief_gradient(
     numpy.ndarray
         Shape ``(n,)``.
     """
-    terms = _as_terms(errors, precisions)
-    Js = _jacobians(error_jacobians, terms, "error_jacobians")
-    if not Js:
-        raise ValueError("error_jacobians must hold at least one term")
-    return np.sum([J.T @ (P @ e) for J, (e, P) in zip(Js, terms, strict=True)], axis=0)
+    return _weighted_errors(errors, error_jacobians, precisions, "error_jacobians")
 
 
 def belief_curvature(
@@ -159,12 +184,8 @@ def belief_curvature(
     H = None
     for i, (J, P) in enumerate(zip(error_jacobians, precisions, strict=True)):
         J = np.atleast_2d(np.asarray(J, dtype=float))
-        P = np.atleast_2d(np.asarray(P, dtype=float))
-        if P.shape != (J.shape[0], J.shape[0]):
-            raise ValueError(
-                f"precisions[{i}] must have shape {(J.shape[0], J.shape[0])}, got {P.shape}"
-            )
-        term = J.T @ P @ J
+        P = _precision(P, J.shape[0], f"precisions[{i}]")
+        term = (J.T * P) @ J if P.ndim == 1 else J.T @ P @ J
         if H is None:
             H = term
         elif H.shape != term.shape:
@@ -191,87 +212,7 @@ def action_gradient(
     numpy.ndarray
         Shape ``(n_actions,)``.
     """
-    terms = _as_terms(errors, precisions)
-    Js = _jacobians(error_action_jacobians, terms, "error_action_jacobians")
-    if not Js:
-        raise ValueError("error_action_jacobians must hold at least one term")
-    return np.sum([J.T @ (P @ e) for J, (e, P) in zip(Js, terms, strict=True)], axis=0)
-
-
-def _diagonal_terms(
-    errors: Sequence[np.ndarray], precisions: Sequence[np.ndarray]
-) -> list[tuple[np.ndarray, np.ndarray]]:
-    if len(errors) != len(precisions):
-        raise ValueError(
-            f"errors and precisions must have the same length, got {len(errors)} and "
-            f"{len(precisions)}"
-        )
-    out = []
-    for i, (e, p) in enumerate(zip(errors, precisions, strict=True)):
-        e = np.atleast_1d(np.asarray(e, dtype=float)).ravel()
-        p = np.atleast_1d(np.asarray(p, dtype=float)).ravel()
-        if p.shape != e.shape:
-            raise ValueError(
-                f"precisions[{i}] must hold {e.size} diagonal entries to match errors[{i}], "
-                f"got shape {p.shape}"
-            )
-        out.append((e, p))
-    return out
-
-
-def free_energy_diagonal(errors: Sequence[np.ndarray], precisions: Sequence[np.ndarray]) -> float:
-    """:func:`free_energy` for diagonal precisions ``P_i = diag(p_i)``, given as vectors.
-
-    ``F = 1/2 sum_i sum_j p_ij e_ij^2 - 1/2 sum_i sum_(p_ij > 0) ln p_ij`` (Friston 2008, PLoS
-    Comput Biol, eq. 9, with the pseudo-determinant of :func:`log_pseudo_determinant`).
-    """
-    F = 0.0
-    for e, p in _diagonal_terms(errors, precisions):
-        F += 0.5 * float(e @ (p * e)) - 0.5 * float(np.log(p[p > 0]).sum())
-    return F
-
-
-def belief_gradient_diagonal(
-    errors: Sequence[np.ndarray],
-    error_jacobians: Sequence[np.ndarray],
-    precisions: Sequence[np.ndarray],
-) -> np.ndarray:
-    """:func:`belief_gradient` for diagonal precisions: ``sum_i J_i' (p_i * e_i)``.
-
-    ``J_i = d e_i / d mu`` (Friston 2008, eq. 10), shape ``(k_i, n)``; ``p_i`` shape ``(k_i,)``.
-    """
-    terms = _diagonal_terms(errors, precisions)
-    Js = _jacobians(error_jacobians, terms, "error_jacobians")
-    if not Js:
-        raise ValueError("error_jacobians must hold at least one term")
-    return np.sum([J.T @ (p * e) for J, (e, p) in zip(Js, terms, strict=True)], axis=0)
-
-
-def belief_curvature_diagonal(
-    error_jacobians: Sequence[np.ndarray], precisions: Sequence[np.ndarray]
-) -> np.ndarray:
-    """:func:`belief_curvature` for diagonal precisions: ``sum_i J_i' diag(p_i) J_i``.
-
-    The Gauss-Newton curvature (the Laplace conditional precision, Friston 2008, eq. 9).
-    """
-    if len(error_jacobians) != len(precisions):
-        raise ValueError("error_jacobians and precisions must have the same length")
-    H = None
-    for i, (J, p) in enumerate(zip(error_jacobians, precisions, strict=True)):
-        J = np.atleast_2d(np.asarray(J, dtype=float))
-        p = np.atleast_1d(np.asarray(p, dtype=float)).ravel()
-        if p.shape != (J.shape[0],):
-            raise ValueError(f"precisions[{i}] must hold {J.shape[0]} entries, got {p.shape}")
-        term = (J.T * p) @ J
-        if H is None:
-            H = term
-        elif H.shape != term.shape:
-            raise ValueError("error_jacobians must all have the same number of columns")
-        else:
-            H = H + term
-    if H is None:
-        raise ValueError("error_jacobians must hold at least one term")
-    return H
+    return _weighted_errors(errors, error_action_jacobians, precisions, "error_action_jacobians")
 
 
 def log_precision_gradient(error: np.ndarray, precision: np.ndarray) -> float:

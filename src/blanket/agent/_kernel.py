@@ -2,14 +2,15 @@
 
 The perception step of :func:`blanket.agent.step.step` in two pure functions:
 
-* :func:`assemble` -- predict the belief by generalized motion, invert the prior covariance
-  into the Laplace prior precision, and add every built-in term's precision-weighted
-  prediction error to the gradient ``dF/dz`` and its ``G' P G`` to the curvature;
+* :func:`perception_step` -- predict the belief by generalized motion, invert the prior
+  covariance into the Laplace prior precision, and add every built-in term's
+  precision-weighted prediction error to the gradient ``dF/dz`` and its ``G' P G`` to the
+  curvature; then, without user terms, :func:`solve` in the same call;
 * :func:`solve` -- the Gauss-Newton step ``Sigma = inv(H)``, ``z = z- - Sigma dF/dz``.
 
-:func:`perception_step` runs both in one call (the path without user terms). With user terms
-the step calls :func:`assemble`, adds the terms' gradient and curvature in Python at the
-predicted belief, and calls :func:`solve`: the same compiled solve follows. Results go to the
+With user terms the step stops :func:`perception_step` after the assembly, adds the terms'
+gradient and curvature in Python at the predicted belief, and calls :func:`solve`: the same
+compiled solve follows. Results go to the
 ``*_out`` buffers; the equations are those of :mod:`blanket.agent.step` (checked equal there).
 
 Buffer layouts: ``err`` (4n + 2) holds the errors of ``joint_angle | joint_velocity | motor |
@@ -40,7 +41,41 @@ pinhole_projection = njit(cache=True)(_pinhole_projection)
 
 
 @njit(cache=True)
-def assemble(  # pragma: no cover - compiled
+def solve(work, vec, n, energy, velocity_limit, z_out, cov_out, sd_out):  # pragma: no cover
+    """Gauss-Newton step on the assembled free energy; returns a status.
+
+    ``Sigma = inv(H)``, ``z = z- - Sigma dF/dz``, ``sd_out = sqrt(diag(Sigma))`` (for the logs).
+    A belief velocity above ``velocity_limit`` returns ``EXPLODED``; a non-finite belief or
+    energy ``NOT_FINITE``.
+    """
+    N = vec.shape[1]
+    H = work[:, 0:N]
+    L = work[:, N : 2 * N]
+    Linv = work[:, 2 * N : 3 * N]
+    zp = vec[0]
+    grad = vec[1]
+    if not spd_inverse(H, cov_out, L, Linv):
+        return CURVATURE_NOT_PD
+    vmax_belief = 0.0
+    for i in range(N):
+        s = 0.0
+        for j in range(N):
+            s += cov_out[i, j] * grad[j]
+        z_out[i] = zp[i] - s
+        sd_out[i] = np.sqrt(cov_out[i, i])
+        if not np.isfinite(z_out[i]):
+            return NOT_FINITE
+        if n <= i < 2 * n and abs(z_out[i]) > vmax_belief:
+            vmax_belief = abs(z_out[i])
+    if not np.isfinite(energy):
+        return NOT_FINITE
+    if vmax_belief > velocity_limit:
+        return EXPLODED
+    return OK
+
+
+@njit(cache=True)
+def perception_step(  # pragma: no cover - compiled
     z,
     cov,
     phi_t,
@@ -70,11 +105,18 @@ def assemble(  # pragma: no cover - compiled
     err,
     vec,
     work,
+    solve_now,
+    z_out,
+    cov_out,
+    sd_out,
 ):
-    """Prediction, prior precision and the built-in terms; returns ``(status, energy)``.
+    """Prediction, prior precision and the built-in terms, then (``solve_now``) :func:`solve`.
 
-    ``goal_mode``: 0 no goal in the belief, 1 velocity attractor prior, 2 acceleration
-    attractor prior (torque control). ``energy`` is the quadratic part ``sum 1/2 e' P e``.
+    Returns ``(status, energy)``, ``energy`` the quadratic part ``sum 1/2 e' P e``. With
+    ``solve_now`` False it stops after the assembly (the curvature in ``work[:, :N]``, the
+    gradient in ``vec[1]``, ``z-`` in ``vec[0]``) so the caller can add terms and call
+    :func:`solve`. ``goal_mode``: 0 no goal in the belief, 1 velocity attractor prior,
+    2 acceleration attractor prior (torque control).
     """
     n = yq.shape[0]
     p1 = phi_t.shape[0]
@@ -211,84 +253,6 @@ def assemble(  # pragma: no cover - compiled
                 for r in range(2):
                     s += gcam_out[r, i] * pc[r] * gcam_out[r, j]
                 H[i, j] += s
-    return OK, energy
-
-
-@njit(cache=True)
-def solve(work, vec, n, energy, velocity_limit, z_out, cov_out, sd_out):  # pragma: no cover
-    """Gauss-Newton step on the assembled free energy; returns a status.
-
-    ``Sigma = inv(H)``, ``z = z- - Sigma dF/dz``, ``sd_out = sqrt(diag(Sigma))`` (for the logs).
-    A belief velocity above ``velocity_limit`` returns ``EXPLODED``; a non-finite belief or
-    energy ``NOT_FINITE``.
-    """
-    N = vec.shape[1]
-    H = work[:, 0:N]
-    L = work[:, N : 2 * N]
-    Linv = work[:, 2 * N : 3 * N]
-    zp = vec[0]
-    grad = vec[1]
-    if not spd_inverse(H, cov_out, L, Linv):
-        return CURVATURE_NOT_PD
-    vmax_belief = 0.0
-    for i in range(N):
-        s = 0.0
-        for j in range(N):
-            s += cov_out[i, j] * grad[j]
-        z_out[i] = zp[i] - s
-        sd_out[i] = np.sqrt(cov_out[i, i])
-        if not np.isfinite(z_out[i]):
-            return NOT_FINITE
-        if n <= i < 2 * n and abs(z_out[i]) > vmax_belief:
-            vmax_belief = abs(z_out[i])
-    if not np.isfinite(energy):
-        return NOT_FINITE
-    if vmax_belief > velocity_limit:
-        return EXPLODED
-    return OK
-
-
-@njit(cache=True)
-def perception_step(  # pragma: no cover - compiled
-    z,
-    cov,
-    phi_t,
-    W,
-    yq,
-    yv,
-    command,
-    pq,
-    pv,
-    pc,
-    tip,
-    J,
-    cam_on,
-    ypx,
-    target,
-    target_velocity,
-    home,
-    camera_pose,
-    intrinsics,
-    limits,
-    goal_mode,
-    constants,
-    cov_prior_out,
-    f_out,
-    F_out,
-    gcam_out,
-    err,
-    vec,
-    work,
-    z_out,
-    cov_out,
-    sd_out,
-):
-    """:func:`assemble` then :func:`solve` in one call; returns ``(status, energy)``."""
-    status, energy = assemble(
-        z, cov, phi_t, W, yq, yv, command, pq, pv, pc, tip, J, cam_on, ypx, target,
-        target_velocity, home, camera_pose, intrinsics, limits, goal_mode, constants,
-        cov_prior_out, f_out, F_out, gcam_out, err, vec, work,
-    )  # fmt: skip
-    if status != OK:
-        return status, energy
-    return solve(work, vec, yq.shape[0], energy, constants[3], z_out, cov_out, sd_out), energy
+    if not solve_now:
+        return OK, energy
+    return solve(work, vec, n, energy, constants[3], z_out, cov_out, sd_out), energy

@@ -14,14 +14,21 @@ from __future__ import annotations
 
 from collections.abc import Mapping
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 from scipy.special import chdtri
 
 from blanket.agent.generative_model import MONITORED_CHANNELS, GenerativeModel
 
-__all__ = ["Belief", "CommandState", "TargetTrack", "ChannelMonitor", "EpisodeState"]
+__all__ = [
+    "Belief",
+    "CommandState",
+    "TargetTrack",
+    "ChannelMonitor",
+    "Innovations",
+    "EpisodeState",
+]
 
 #: Samples a channel averages before its learned precision is applied.
 _LEARNING_BURN_IN = 20
@@ -157,6 +164,17 @@ class TargetTrack:
         self.velocity = self._steps.sum(axis=0) / (min(self._count, w) * self.dt)
 
 
+class Innovations(NamedTuple):
+    """What a step saw, for the channel tests: the prediction errors of the active terms,
+    the prior covariance ``Sigma-``, the camera's Jacobian ``G`` (None without a frame) and
+    the belief before the step (its prediction is what the errors were measured against)."""
+
+    errors: Mapping[str, np.ndarray]
+    cov_prior: np.ndarray
+    g_cam: np.ndarray | None
+    belief: Belief
+
+
 class ChannelMonitor:
     """Learned precisions and fault flags of the monitored channels, for one episode.
 
@@ -225,17 +243,15 @@ class ChannelMonitor:
         sel = slice(0, n) if name == "joint_angle" else slice(n, 2 * n)
         return np.diagonal(cov_prior)[sel]
 
-    def detect_faults(
-        self,
-        errors: Mapping[str, np.ndarray],
-        cov_prior: np.ndarray,
-        g_cam: np.ndarray | None,
-        belief: Belief,
-    ) -> None:
-        """Two-sided tests per channel (per joint for the encoders); flags in ``fault``.
+    def update(self, seen: Innovations) -> None:
+        """After a step: test for faults and learn precisions, as the options ask."""
+        if self.model.options["fault_detection"]:
+            self.detect_faults(seen)
+        if self.model.options["learn_precision"]:
+            self.learn_precisions(seen)
 
-        ``belief`` is the belief before the step (its prediction is what the errors were
-        measured against).
+    def detect_faults(self, seen: Innovations) -> None:
+        """Two-sided tests per channel (per joint for the encoders); flags in ``fault``.
 
         Each test averages a normalized squared residual ``x`` over an exponential window of
         ``fault_window_s`` (``w`` effective samples); under no fault the average is close to
@@ -263,6 +279,7 @@ class ChannelMonitor:
         A flagged channel's precision is cut to 1e-6 of its value (:meth:`effective`) and
         returns when the tests pass again.
         """
+        errors, cov_prior, g_cam, belief = seen
         model = self.model
         alpha = model.fault_alpha
         motor = errors.get("motor")
@@ -316,17 +333,11 @@ class ChannelMonitor:
                 self.pending_inflation = np.flatnonzero(rising)
             self.fault[name] = new
 
-    def learn_precisions(
-        self,
-        errors: Mapping[str, np.ndarray],
-        cov_prior: np.ndarray,
-        g_cam: np.ndarray | None,
-        belief: Belief,
-    ) -> None:
+    def learn_precisions(self, seen: Innovations) -> None:
         """Covariance matching of each channel's noise variance on its innovations.
 
-        ``belief`` is the belief before the step. Under a consistent filter the innovation
-        ``nu = y - g(mu-)`` has variance ``S = G Sigma- G' + R``, so
+        Under a consistent filter the innovation ``nu = y - g(mu-)`` has variance
+        ``S = G Sigma- G' + R``, so
         ``R = E[nu^2] - G Sigma- G'`` per component (diagonal ``R``): the innovation-based
         adaptive estimate of Mehra 1970 (IEEE Trans Autom Control 15(2), sec. IV) in the
         sample form of Myers & Tapley 1976 (IEEE Trans Autom Control 21(4), eq. 29). Under
@@ -351,6 +362,7 @@ class ChannelMonitor:
         innovation variances (an outlier guard, common practice, no source). Samples a
         channel takes while flagged by :meth:`detect_faults` are skipped.
         """
+        errors, cov_prior, g_cam, belief = seen
         model = self.model
         rate = float(model.options["precision_learning_rate"])
         for name in MONITORED_CHANNELS:

@@ -11,7 +11,7 @@ the episode state of :mod:`blanket.agent.belief`.
 Terms (``e = y - g(z)``, ``G = dg/dz`` with respect to the flattened belief, order-major):
 
 * ``joint_angle``: ``y = q + noise`` (order 0); ``joint_velocity``: ``y = q' + noise``
-  (order 1);
+  (order 1) (:class:`EncoderChannel`);
 * ``camera``: the tool tip's pixel ``y = pi(fk(q))`` on fresh frames in which it is visible,
   ``G = d pi / d x . J(q)`` (:func:`blanket.description.pinhole_projection`);
 * ``motor`` (velocity control): the efference copy, the motors track the last command,
@@ -40,8 +40,7 @@ __all__ = [
     "AgentOptions",
     "GenerativeModel",
     "StepContext",
-    "JointAngleChannel",
-    "JointVelocityChannel",
+    "EncoderChannel",
     "CameraChannel",
     "EfferenceCopy",
     "AttractorPrior",
@@ -223,33 +222,23 @@ def _selection(n: int, size: int, order: int) -> np.ndarray:
 
 
 @dataclass(frozen=True)
-class JointAngleChannel:
-    """Encoder angles, ``y = q + noise``: ``G`` selects order 0."""
+class EncoderChannel:
+    """Encoder readings of one generalized order: ``y = q^(order) + noise``.
 
+    ``joint_angle`` observes order 0, ``joint_velocity`` order 1; ``G`` selects that order.
+    """
+
+    name: str
+    observation: str
+    order: int
     size: int
     jacobian: np.ndarray
-    name: str = "joint_angle"
 
     def evaluate(
         self, obs: Mapping[str, Any], belief: np.ndarray, body: BodyState, context: StepContext
     ) -> Term:
-        y = np.asarray(obs["joint_angle_rad"], dtype=float)
-        return Term(y - belief[0], self.jacobian, context.precision[self.name])
-
-
-@dataclass(frozen=True)
-class JointVelocityChannel:
-    """Encoder velocities, ``y = q' + noise``: ``G`` selects order 1."""
-
-    size: int
-    jacobian: np.ndarray
-    name: str = "joint_velocity"
-
-    def evaluate(
-        self, obs: Mapping[str, Any], belief: np.ndarray, body: BodyState, context: StepContext
-    ) -> Term:
-        y = np.asarray(obs["joint_velocity_rad_s"], dtype=float)
-        return Term(y - belief[1], self.jacobian, context.precision[self.name])
+        y = np.asarray(obs[self.observation], dtype=float)
+        return Term(y - belief[self.order], self.jacobian, context.precision[self.name])
 
 
 @dataclass(frozen=True)
@@ -436,8 +425,8 @@ class GenerativeModel:
 
         kv = float(opts["velocity_gain_1_s"])
         channels: list[Any] = [
-            JointAngleChannel(n, _selection(n, N, 0)),
-            JointVelocityChannel(n, _selection(n, N, 1)),
+            EncoderChannel("joint_angle", "joint_angle_rad", 0, n, _selection(n, N, 0)),
+            EncoderChannel("joint_velocity", "joint_velocity_rad_s", 1, n, _selection(n, N, 1)),
         ]
         if camera is not None:
             channels.append(CameraChannel(camera, N))

@@ -31,13 +31,9 @@ from scipy.linalg.lapack import dpotrf, dpotrs
 
 from blanket.agent import _kernel
 from blanket.agent.attractor import damped_least_squares_attractor
-from blanket.agent.belief import Belief, CommandState, EpisodeState
+from blanket.agent.belief import Belief, CommandState, EpisodeState, Innovations
 from blanket.agent.generative_model import GenerativeModel, StepContext
-from blanket.free_energy import (
-    belief_curvature_diagonal,
-    belief_gradient_diagonal,
-    free_energy_diagonal,
-)
+from blanket.free_energy import belief_curvature, belief_gradient, free_energy
 from blanket.model import BodyState, Term
 
 __all__ = [
@@ -155,9 +151,10 @@ def _laplace(
     errors = [t.error for _, t in terms]
     jacobians = [-t.jacobian for _, t in terms]  # d e / d z = -dg/dz
     precisions = [np.asarray(t.precision, dtype=float) for _, t in terms]
-    energy = free_energy_diagonal(errors, precisions)  # sum 1/2 e'Pe - 1/2 ln|P|   (eq. 9)
-    grad = belief_gradient_diagonal(errors, jacobians, precisions)  # sum J'Pe   (eq. 10)
-    curvature = belief_curvature_diagonal(jacobians, precisions)  # sum J'PJ  (Gauss-Newton)
+    # diagonal precisions, given as vectors (the fast form of free_energy.py)
+    energy = free_energy(errors, precisions)  # sum 1/2 e'Pe - 1/2 ln|P|      (eq. 9)
+    grad = belief_gradient(errors, jacobians, precisions)  # sum J'Pe         (eq. 10)
+    curvature = belief_curvature(jacobians, precisions)  # sum J'PJ  (Gauss-Newton)
     if prior_mean is not None and prior_precision is not None:
         dz = z - np.asarray(prior_mean, dtype=float).reshape(-1)
         energy += 0.5 * float(dz @ prior_precision @ dz)  # 1/2 dz' Pi- dz
@@ -321,39 +318,31 @@ def _perceive_compiled(model, belief, obs, episode, ws: CompiledWorkspace) -> di
     log_errors = ws.log_errors[cam_on]
     errors = ws.active_errors[cam_on]
     log_det_extra = 0.0
-    if not model.extra_terms:
-        status, energy = _kernel.perception_step(*args, ws.z_out, ws.cov_out, ws.sd_out)
-    else:
-        status, energy = _kernel.assemble(*args)
-        if status == _kernel.OK:
-            # User terms at the predicted belief z-, added to the kernel's gradient and
-            # curvature before the same compiled solve.
-            H = ws.work[:, :N]
-            grad = ws.vec[1]
-            body = BodyState(tip, J)
-            zg = ws.vec[0].reshape(belief.shape).copy()
-            errors, log_errors = dict(errors), dict(log_errors)
-            for term in model.extra_terms:
-                t = term.evaluate(obs, zg, body)
-                if t is None:
-                    continue
-                P = np.asarray(t.precision, dtype=float)
-                gtp = t.jacobian.T * P
-                H += gtp @ t.jacobian  # G' P G
-                grad -= gtp @ t.error  # -G' P e
-                energy += 0.5 * float(t.error @ (P * t.error))
-                log_det_extra += float(np.log(P).sum())
-                errors[term.name] = log_errors[term.name] = t.error
-            status = _kernel.solve(
-                ws.work,
-                ws.vec,
-                n,
-                energy,
-                model.kernel_constants[3],
-                ws.z_out,
-                ws.cov_out,
-                ws.sd_out,
-            )
+    status, energy = _kernel.perception_step(
+        *args, not model.extra_terms, ws.z_out, ws.cov_out, ws.sd_out
+    )
+    if model.extra_terms and status == _kernel.OK:
+        # User terms at the predicted belief z-, added to the kernel's gradient and
+        # curvature before the same compiled solve.
+        H = ws.work[:, :N]
+        grad = ws.vec[1]
+        body = BodyState(tip, J)
+        zg = ws.vec[0].reshape(belief.shape).copy()
+        errors, log_errors = dict(errors), dict(log_errors)
+        for term in model.extra_terms:
+            t = term.evaluate(obs, zg, body)
+            if t is None:
+                continue
+            P = np.asarray(t.precision, dtype=float)
+            gtp = t.jacobian.T * P
+            H += gtp @ t.jacobian  # G' P G
+            grad -= gtp @ t.error  # -G' P e
+            energy += 0.5 * float(t.error @ (P * t.error))
+            log_det_extra += float(np.log(P).sum())
+            errors[term.name] = log_errors[term.name] = t.error
+        status = _kernel.solve(
+            ws.work, ws.vec, n, energy, model.kernel_constants[3], ws.z_out, ws.cov_out, ws.sd_out
+        )
     if status not in (_kernel.OK, _kernel.NOT_FINITE, _kernel.EXPLODED):
         raise np.linalg.LinAlgError(f"{_NOT_PD[status - 1]} is not positive definite")
     energy -= 0.5 * (_log_det(model, ws, cam_on, pq, pv, pc) + log_det_extra)
@@ -472,7 +461,6 @@ def step(
         belief = Belief.from_observation(model, obs, episode.channels.precision)
         episode.command.start(model, obs)
     episode.target.update(obs["target_position_m"])
-    opts = model.options
     try:
         episode.channels.inflate(belief)
         out = perceive(model, belief, obs, episode, workspace)
@@ -486,10 +474,8 @@ def step(
     if status == _kernel.EXPLODED:
         action, diag = safe_stop(model, episode, "belief velocity exploded")
         return belief, action, diag
-    if opts["fault_detection"]:
-        episode.channels.detect_faults(out["errors"], out["cov_prior"], out["g_cam"], belief)
-    if opts["learn_precision"]:
-        episode.channels.learn_precisions(out["errors"], out["cov_prior"], out["g_cam"], belief)
+    if model.precision_changing:
+        episode.channels.update(Innovations(out["errors"], out["cov_prior"], out["g_cam"], belief))
     new = out["belief"]
     command = episode.command
     command.attractor_velocity = out["attractor_velocity"].copy()
