@@ -343,6 +343,11 @@ class GenerativeModel:
         The built-in terms (:class:`~blanket.model.ModelTerm`), in assembly order.
     extra_terms : tuple
         The user's terms, assembled after the built-in ones.
+    goal_mode : int
+        0 no goal in the belief (``goal="reference"``), 1 velocity attractor prior, 2
+        acceleration attractor prior (torque control).
+    precision_changing : bool
+        Whether precisions change during an episode (learning or fault down-weighting).
     """
 
     description: ArmDescription
@@ -363,6 +368,7 @@ class GenerativeModel:
     channels: tuple[Any, ...]
     extra_terms: tuple[ModelTerm, ...]
     goal_mode: int
+    precision_changing: bool
     fault_threshold: dict[str, float]
     fault_alpha: float
     kernel_constants: np.ndarray = field(repr=False)
@@ -497,6 +503,7 @@ class GenerativeModel:
             channels=tuple(channels),
             extra_terms=tuple(extra_terms),
             goal_mode=goal_mode,
+            precision_changing=bool(opts["learn_precision"] or opts["fault_detection"]),
             fault_threshold=fault_threshold,
             fault_alpha=float(fault_alpha),
             kernel_constants=constants,
@@ -509,11 +516,6 @@ class GenerativeModel:
     def terms(self) -> tuple[Any, ...]:
         """Every term, built-in channels first, then the user's."""
         return self.channels + self.extra_terms
-
-    @property
-    def precision_changing(self) -> bool:
-        """Whether precisions change during an episode (learning or fault down-weighting)."""
-        return bool(self.options["learn_precision"] or self.options["fault_detection"])
 
     @property
     def channel_names(self) -> tuple[str, ...]:

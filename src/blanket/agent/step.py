@@ -39,7 +39,6 @@ from blanket.model import BodyState, Term
 __all__ = [
     "step",
     "predict",
-    "perceive",
     "act",
     "attractor",
     "evaluate_terms",
@@ -206,29 +205,17 @@ class CompiledWorkspace:
             cam_on: {k: views[k] for k in names if k != "camera" or cam_on}
             for cam_on in (False, True)
         }
-        self._log_det: dict[bool, float] = {}
-
-
-def perceive(
-    model: GenerativeModel,
-    belief: Belief,
-    obs: Mapping[str, Any],
-    episode: EpisodeState,
-    workspace: CompiledWorkspace | None = None,
-) -> dict[str, Any]:
-    """Prediction and one Gauss-Newton step on F; see the module docstring.
-
-    Returns a dict: ``status`` (a :mod:`blanket.agent._kernel` code), ``belief`` (the new one,
-    when ``status`` is OK), ``free_energy`` (at ``z-``), ``errors`` (active terms),
-    ``log_errors`` (the logs' stable layout), ``cov_prior``, ``g_cam`` (camera Jacobian or
-    None), ``attractor_velocity``.
-    """
-    if workspace is None:
-        return _perceive_reference(model, belief, obs, episode)
-    return _perceive_compiled(model, belief, obs, episode, workspace)
+        self._log_det: dict[str, float] = {}
 
 
 def _perceive_reference(model, belief, obs, episode) -> dict[str, Any]:
+    """Prediction and one Gauss-Newton step on F, every term assembled generically.
+
+    Returns a dict (the compiled backend returns the same): ``status`` (a
+    :mod:`blanket.agent._kernel` code), ``belief`` (the new one, when ``status`` is OK),
+    ``free_energy`` (at ``z-``), ``errors`` (active terms), ``log_errors`` (the logs' stable
+    layout), ``cov_prior``, ``g_cam`` (camera Jacobian or None), ``attractor_velocity``.
+    """
     n = model.n
     z_prior, cov_prior = predict(model, belief)  # z- = Phi z ; Sigma- = Phi Sigma Phi' + W
     chol, info = dpotrf(cov_prior, lower=1, clean=0)
@@ -366,8 +353,8 @@ def _perceive_compiled(model, belief, obs, episode, ws: CompiledWorkspace) -> di
 
 def _log_det(model, ws, cam_on, pq, pv, pc) -> float:
     """``sum ln P`` of the built-in terms (cached while the precisions are fixed)."""
-    value = ws._log_det.get(cam_on)
-    if value is None or model.precision_changing:
+    cached = ws._log_det
+    if not cached or model.precision_changing:
         n = model.n
         value = float(np.log(pq).sum() + np.log(pv).sum())
         pm, pg = model.kernel_constants[0], model.kernel_constants[1]
@@ -375,10 +362,9 @@ def _log_det(model, ws, cam_on, pq, pv, pc) -> float:
             value += n * np.log(pm)
         if model.goal_mode:
             value += n * np.log(pg)
-        if cam_on:
-            value += float(np.log(pc).sum())
-        ws._log_det[cam_on] = value
-    return value
+        cached["encoders, motor, goal"] = value
+        cached["camera"] = float(np.log(pc).sum()) if model.camera is not None else 0.0
+    return cached["encoders, motor, goal"] + (cached["camera"] if cam_on else 0.0)
 
 
 def act(model: GenerativeModel, belief: Belief, command: CommandState) -> np.ndarray:
@@ -463,7 +449,10 @@ def step(
     episode.target.update(obs["target_position_m"])
     try:
         episode.channels.inflate(belief)
-        out = perceive(model, belief, obs, episode, workspace)
+        if workspace is None:
+            out = _perceive_reference(model, belief, obs, episode)
+        else:
+            out = _perceive_compiled(model, belief, obs, episode, workspace)
     except (np.linalg.LinAlgError, FloatingPointError, ValueError) as exc:
         action, diag = safe_stop(model, episode, f"numerical failure: {exc}")
         return belief, action, diag
