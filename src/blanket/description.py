@@ -8,10 +8,18 @@ life of the env (targets and true states travel in observations and ``info``).
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 
-__all__ = ["CameraDescription", "ArmDescription", "pinhole_projection"]
+__all__ = [
+    "CameraDescription",
+    "ArmDescription",
+    "pinhole_projection",
+    "compiled_pinhole_projection",
+]
+
+_COMPILED: dict[str, Any] = {}
 
 
 @dataclass(frozen=True)
@@ -48,7 +56,7 @@ class CameraDescription:
 
     def project_with_jacobian(self, point_base: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Pixel ``(u, v)`` of a base-frame point and ``d(u, v)/d(point)``, shape (2, 3)."""
-        return pinhole_projection(
+        return compiled_pinhole_projection()(
             self.base_from_camera,
             self.fx_px,
             self.fy_px,
@@ -76,8 +84,8 @@ def pinhole_projection(
     ``p_c = R' (x - t)`` and its pixel ``u = fx x_c / z_c + cx``, ``v = fy y_c / z_c + cy``
     (Hartley & Zisserman 2004, *Multiple View Geometry*, 2nd ed., eq. 6.1 and sec. 6.1); the
     Jacobian is ``d(u, v)/dx = [[fx / z_c, 0, -fx x_c / z_c^2], [0, fy / z_c, -fy y_c / z_c^2]]
-    R'``. Written with scalars only, so the same source runs in Python (the camera sensor)
-    and compiled inside the agent's kernel (:mod:`blanket.agent._kernel`).
+    R'``. Written with scalars only so that numba compiles it: the camera sensor and the
+    agent (its kernel and its numpy step) all call :func:`compiled_pinhole_projection`.
 
     Returns
     -------
@@ -106,6 +114,20 @@ def pinhole_projection(
         jacobian[0, col] = a * T[col, 0] + b * T[col, 2]
         jacobian[1, col] = c * T[col, 1] + d * T[col, 2]
     return pixel, jacobian
+
+
+def compiled_pinhole_projection() -> Any:
+    """:func:`pinhole_projection` compiled by numba (on first use; cached on disk).
+
+    One compiled function for the camera sensor and the agent: about 1 us a call from
+    Python, and callable from other compiled code. numba is imported only here, so an env
+    without a camera never loads it.
+    """
+    if "pinhole" not in _COMPILED:
+        from numba import njit
+
+        _COMPILED["pinhole"] = njit(cache=True)(pinhole_projection)
+    return _COMPILED["pinhole"]
 
 
 @dataclass(frozen=True)

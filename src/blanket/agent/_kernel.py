@@ -27,7 +27,7 @@ from numba import njit
 
 from blanket.agent._linalg import spd_inverse
 from blanket.agent.attractor import damped_least_squares_attractor
-from blanket.description import pinhole_projection as _pinhole_projection
+from blanket.description import compiled_pinhole_projection
 
 OK = 0
 PRIOR_NOT_PD = 1
@@ -36,8 +36,8 @@ JACOBIAN_NOT_PD = 3
 NOT_FINITE = 4
 EXPLODED = 5
 
-#: The camera model of :mod:`blanket.description`, compiled (one source for both).
-pinhole_projection = njit(cache=True)(_pinhole_projection)
+#: The camera model of :mod:`blanket.description`, compiled (the one the sensor uses).
+pinhole_projection = compiled_pinhole_projection()
 
 
 @njit(cache=True)
