@@ -207,3 +207,33 @@ def test_a_bad_backend_or_term_is_refused(planar_env):
         agent.backend = "compild"
     with pytest.raises(ConfigError, match="is not a ModelTerm"):
         ArmAgent.from_env(planar_env, extra_terms=[object()])
+
+
+def test_backends_agree_with_precision_learning_and_fault_tests():
+    # The channel monitor reads the step's errors, prior covariance and camera Jacobian;
+    # both backends must hand it the same, so learned precisions and flags agree too.
+    from blanket.wrappers.perturbations import FrozenEncoder
+
+    env = FrozenEncoder(
+        gymnasium.make("blanket/planar-2link-v0", episode_s=1.5), joint=1, start_s=0.5
+    )
+    try:
+        opts = {"learn_precision": True, "fault_detection": True}
+        fast, slow = ArmAgent.from_env(env, **opts), ArmAgent.from_env(env, **opts)
+        slow.backend = "numpy"
+        obs, _ = env.reset(seed=6)
+        flagged = False
+        for _ in range(300):
+            a = fast.act(obs)
+            np.testing.assert_allclose(slow.act(obs), a, rtol=1e-8, atol=1e-8)
+            d_fast, d_slow = fast.diagnostics(), slow.diagnostics()
+            for name in ("joint_angle", "joint_velocity", "camera"):
+                np.testing.assert_allclose(
+                    d_fast["precision"][name], d_slow["precision"][name], rtol=1e-8
+                )
+                np.testing.assert_array_equal(d_fast["fault"][name], d_slow["fault"][name])
+            flagged |= bool(d_fast["fault"]["joint_angle"].any())
+            obs, *_ = env.step(a)
+        assert flagged  # the frozen encoder was caught, on both backends alike
+    finally:
+        env.close()
