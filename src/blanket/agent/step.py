@@ -271,7 +271,10 @@ def _perceive_compiled(model, belief, obs, episode, ws: CompiledWorkspace) -> di
     pq = channels.effective("joint_angle")
     pv = channels.effective("joint_velocity")
     pc = channels.effective("camera")
-    args = (
+    log_errors = ws.log_errors[cam_on]
+    errors = ws.active_errors[cam_on]
+    log_det_extra = 0.0
+    status, energy = _kernel.perception_step(
         z,
         belief.covariance,
         model.transition,
@@ -301,12 +304,10 @@ def _perceive_compiled(model, belief, obs, episode, ws: CompiledWorkspace) -> di
         ws.err,
         ws.vec,
         ws.work,
-    )
-    log_errors = ws.log_errors[cam_on]
-    errors = ws.active_errors[cam_on]
-    log_det_extra = 0.0
-    status, energy = _kernel.perception_step(
-        *args, not model.extra_terms, ws.z_out, ws.cov_out, ws.sd_out
+        not model.extra_terms,
+        ws.z_out,
+        ws.cov_out,
+        ws.sd_out,
     )
     if model.extra_terms and status == _kernel.OK:
         # User terms at the predicted belief z-, added to the kernel's gradient and
@@ -448,7 +449,8 @@ def step(
         episode.command.start(model, obs)
     episode.target.update(obs["target_position_m"])
     try:
-        episode.channels.inflate(belief)
+        if episode.channels.pending_inflation is not None:
+            episode.channels.inflate(belief)
         if workspace is None:
             out = _perceive_reference(model, belief, obs, episode)
         else:
@@ -468,7 +470,8 @@ def step(
     new = out["belief"]
     command = episode.command
     command.attractor_velocity = out["attractor_velocity"].copy()
-    command.last_finite_q = new.mean[: model.n].copy()  # (the buffer is reused)
+    # a view: the compiled backend reuses this buffer only after the next successful step
+    command.last_finite_q = new.mean[: model.n]
     action = act(model, new, command)
     command.command = action
     diag = {
