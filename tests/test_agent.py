@@ -10,7 +10,8 @@ import pytest
 
 import blanket  # noqa: F401  (registers the envs)
 from blanket.agent import ArmAgent
-from blanket.agent.arm import _jerk_covariance, torque_action_free_energy
+from blanket.agent.arm import torque_action_free_energy
+from blanket.agent.generative_model import jerk_covariance
 from blanket.errors import ConfigError
 from blanket.runner import run_episode
 
@@ -58,7 +59,7 @@ def test_goal_prior_gradient_exact_at_rest_on_target(planar_env):
     agent = ArmAgent.from_env(planar_env, goal="prior")
     obs = dict(_obs(planar_env, 5))
     agent.act(obs)
-    q = agent._home.copy()
+    q = agent.episode.command.home.copy()
     tip = agent.body.tip_position(q)
     obs["target_position_m"] = tip
     obs["camera_fresh"] = 0
@@ -117,7 +118,7 @@ def test_jerk_covariance_matches_van_loan():
     E = expm(M * dt)
     Phi = E[n:, n:].T
     W = Phi @ E[:n, n:]
-    np.testing.assert_allclose(_jerk_covariance(order, dt, q), W, rtol=1e-9, atol=1e-16)
+    np.testing.assert_allclose(jerk_covariance(order, dt, q), W, rtol=1e-9, atol=1e-16)
 
 
 def test_planar_arm_reaches_in_velocity_mode(planar_env):
@@ -162,8 +163,10 @@ def test_agent_never_touches_the_simulator(planar_env):
 
 
 def test_unknown_agent_option_is_refused(planar_env):
-    with pytest.raises(ConfigError, match="unknown agent option 'ordr'"):
+    with pytest.raises(ConfigError, match="unknown agent option 'ordr'; did you mean order"):
         ArmAgent.from_env(planar_env, ordr=2)
+    with pytest.raises(ConfigError, match="did you mean goal_precision"):
+        ArmAgent.from_env(planar_env, goal_precison=2.0)
     with pytest.raises(ConfigError, match="order must be"):
         ArmAgent.from_env(planar_env, order=9)
 
@@ -189,7 +192,7 @@ def test_compiled_step_equals_numpy_step(control, goal):
     try:
         fast = ArmAgent.from_env(env, goal=goal)
         slow = ArmAgent.from_env(env, goal=goal)
-        slow._compiled = False
+        slow.backend = "numpy"
         obs, _ = env.reset(seed=4)
         for _ in range(120):
             a_fast = fast.act(obs)
@@ -221,16 +224,17 @@ def test_one_gauss_newton_step_zeroes_the_linearised_gradient(planar_env):
     # After an update the gradient of the (linear) encoder + prior free energy vanishes at
     # the new belief: the step is the exact minimiser of the quadratic (Gauss-Newton).
     agent = ArmAgent.from_env(planar_env, goal="reference")
-    agent._compiled = False
+    agent.backend = "numpy"
     obs = dict(_obs(planar_env, 6), camera_fresh=0)
     agent.act(obs)
-    z_before, cov_before = agent._belief.copy(), agent._cov.copy()
-    action_before = agent._action.copy()
+    z_before, cov_before = agent.state.mean.copy(), agent.state.covariance.copy()
+    action_before = agent.episode.command.command.copy()
     agent.act(obs)
-    z_after = agent._belief.copy()
-    agent._action = action_before  # the efference copy the step used
-    z_prior = agent._phi @ z_before
-    prec_prior = np.linalg.inv(agent._phi @ cov_before @ agent._phi.T + agent._w)
+    z_after = agent.state.mean.copy()
+    agent.episode.command.command = action_before  # the efference copy the step used
+    phi, w = agent.model.transition_full, agent.model.motion_noise
+    z_prior = phi @ z_before
+    prec_prior = np.linalg.inv(phi @ cov_before @ phi.T + w)
     _, grad_prior = agent.free_energy_and_gradient(obs, z_prior, z_prior, prec_prior)
     _, grad = agent.free_energy_and_gradient(obs, z_after, z_prior, prec_prior)
     assert np.abs(grad_prior).max() > 1.0

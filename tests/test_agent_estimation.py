@@ -148,7 +148,7 @@ def test_noise_burst_is_flagged_down_weighted_and_cleared():
     while True:
         action = agent.act(obs)
         flagged.append(bool(agent.diagnostics()["fault"]["joint_angle"].any()))
-        weight.append(float(agent._effective_precision("joint_angle").min()))
+        weight.append(float(agent.episode.channels.effective("joint_angle").min()))
         t.append(len(t) / RATE_HZ)
         obs, _r, terminated, truncated, info = env.step(action)
         if terminated or truncated:

@@ -48,12 +48,15 @@ def test_agent_posterior_precision_adds_encoder_and_camera():
         obs = dict(obs, camera_fresh=1, tip_visible=1)
         with_camera = ArmAgent.from_env(env)
         without = ArmAgent.from_env(env)
-        with_camera._compiled = without._compiled = False
+        with_camera.backend = without.backend = "numpy"
         with_camera.act(obs)
         without.act(dict(obs, camera_fresh=0))
         n = with_camera.n
-        added = np.linalg.inv(with_camera._cov)[:n, :n] - np.linalg.inv(without._cov)[:n, :n]
-        q = with_camera._belief[:n]
+        added = (
+            np.linalg.inv(with_camera.state.covariance)[:n, :n]
+            - np.linalg.inv(without.state.covariance)[:n, :n]
+        )
+        q = with_camera.state.mean[:n]
         tip, J = with_camera.body.tip_position_and_jacobian(q)
         G = with_camera.camera.project_jacobian(tip) @ J
         expected = G.T @ np.diag(with_camera.precision["camera"]) @ G

@@ -8,10 +8,18 @@ life of the env (targets and true states travel in observations and ``info``).
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 
-__all__ = ["CameraDescription", "ArmDescription"]
+__all__ = [
+    "CameraDescription",
+    "ArmDescription",
+    "pinhole_projection",
+    "compiled_pinhole_projection",
+]
+
+_COMPILED: dict[str, Any] = {}
 
 
 @dataclass(frozen=True)
@@ -44,37 +52,82 @@ class CameraDescription:
 
     def project(self, point_base: np.ndarray) -> np.ndarray:
         """Pixel coordinates ``(u, v)`` of a point given in the base frame."""
-        R = self.base_from_camera[:3, :3]
-        t = self.base_from_camera[:3, 3]
-        pc = R.T @ (np.asarray(point_base, dtype=float) - t)
-        return np.array(
-            [self.fx_px * pc[0] / pc[2] + self.cx_px, self.fy_px * pc[1] / pc[2] + self.cy_px]
-        )
+        return self.project_with_jacobian(point_base)[0]
 
     def project_with_jacobian(self, point_base: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Pixel ``(u, v)`` of a base-frame point and ``d(u, v)/d(point)``, shape (2, 3)."""
-        R = self.base_from_camera[:3, :3]
-        pc = (np.asarray(point_base, dtype=float) - self.base_from_camera[:3, 3]) @ R
-        x, y, z = pc
-        iz = 1.0 / z
-        fx, fy = self.fx_px, self.fy_px
-        pixel = np.array([fx * x * iz + self.cx_px, fy * y * iz + self.cy_px])
-        dpix = np.array([[fx * iz, 0.0, -fx * x * iz * iz], [0.0, fy * iz, -fy * y * iz * iz]])
-        return pixel, dpix @ R.T
+        return compiled_pinhole_projection()(
+            self.base_from_camera,
+            self.fx_px,
+            self.fy_px,
+            self.cx_px,
+            self.cy_px,
+            np.asarray(point_base, dtype=float),
+        )
 
     def project_jacobian(self, point_base: np.ndarray) -> np.ndarray:
         """Jacobian ``d(u, v) / d(point_base)``, shape (2, 3), of :meth:`project`."""
-        R = self.base_from_camera[:3, :3]
-        t = self.base_from_camera[:3, 3]
-        pc = R.T @ (np.asarray(point_base, dtype=float) - t)
-        x, y, z = pc
-        dpix_dpc = np.array(
-            [
-                [self.fx_px / z, 0.0, -self.fx_px * x / (z * z)],
-                [0.0, self.fy_px / z, -self.fy_px * y / (z * z)],
-            ]
-        )
-        return dpix_dpc @ R.T
+        return self.project_with_jacobian(point_base)[1]
+
+
+def pinhole_projection(
+    base_from_camera: np.ndarray,
+    fx: float,
+    fy: float,
+    cx: float,
+    cy: float,
+    point: np.ndarray,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Pinhole projection of a base-frame point and its Jacobian (pure; numba-compilable).
+
+    With the camera pose ``(R, t)`` (``base_from_camera``), the point in the camera frame is
+    ``p_c = R' (x - t)`` and its pixel ``u = fx x_c / z_c + cx``, ``v = fy y_c / z_c + cy``
+    (Hartley & Zisserman 2004, *Multiple View Geometry*, 2nd ed., eq. 6.1 and sec. 6.1); the
+    Jacobian is ``d(u, v)/dx = [[fx / z_c, 0, -fx x_c / z_c^2], [0, fy / z_c, -fy y_c / z_c^2]]
+    R'``. Written with scalars only so that numba compiles it: the camera sensor and the
+    agent (its kernel and its numpy step) all call :func:`compiled_pinhole_projection`.
+
+    Returns
+    -------
+    pixel : numpy.ndarray
+        ``(u, v)``, shape (2,).
+    jacobian : numpy.ndarray
+        ``d(u, v) / d(point)``, shape (2, 3).
+    """
+    T = base_from_camera
+    d0 = point[0] - T[0, 3]
+    d1 = point[1] - T[1, 3]
+    d2 = point[2] - T[2, 3]
+    x = T[0, 0] * d0 + T[1, 0] * d1 + T[2, 0] * d2
+    y = T[0, 1] * d0 + T[1, 1] * d1 + T[2, 1] * d2
+    z = T[0, 2] * d0 + T[1, 2] * d1 + T[2, 2] * d2
+    pixel = np.empty(2)
+    pixel[0] = fx * x / z + cx
+    pixel[1] = fy * y / z + cy
+    iz = 1.0 / z
+    a = fx * iz  # d u / d x_c
+    b = -fx * x * iz * iz  # d u / d z_c
+    c = fy * iz  # d v / d y_c
+    d = -fy * y * iz * iz  # d v / d z_c
+    jacobian = np.empty((2, 3))
+    for col in range(3):
+        jacobian[0, col] = a * T[col, 0] + b * T[col, 2]
+        jacobian[1, col] = c * T[col, 1] + d * T[col, 2]
+    return pixel, jacobian
+
+
+def compiled_pinhole_projection() -> Any:
+    """:func:`pinhole_projection` compiled by numba (on first use; cached on disk).
+
+    One compiled function for the camera sensor and the agent: about 1 us a call from
+    Python, and callable from other compiled code. numba is imported only here, so an env
+    without a camera never loads it.
+    """
+    if "pinhole" not in _COMPILED:
+        from numba import njit
+
+        _COMPILED["pinhole"] = njit(cache=True)(pinhole_projection)
+    return _COMPILED["pinhole"]
 
 
 @dataclass(frozen=True)

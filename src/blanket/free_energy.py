@@ -14,7 +14,9 @@ under white noise -- are allowed and simply contribute nothing in those directio
 
 Every function accepts a sequence of error terms: ``errors[i]`` of shape ``(k_i,)`` and
 ``precisions[i]`` of shape ``(k_i, k_i)``, with Jacobians ``(k_i, n)`` with respect to the
-belief (or action) of length ``n``.
+belief (or action) of length ``n``. A precision given as a vector of shape ``(k_i,)`` is the
+diagonal of a diagonal precision: the fast form, with no ``k_i x k_i`` products (the agent's
+channels all have diagonal precisions).
 """
 
 from __future__ import annotations
@@ -48,14 +50,25 @@ def _as_terms(
     out = []
     for i, (e, P) in enumerate(zip(errors, precisions, strict=True)):
         e = np.atleast_1d(np.asarray(e, dtype=float)).ravel()
-        P = np.atleast_2d(np.asarray(P, dtype=float))
-        if P.shape != (e.size, e.size):
-            raise ValueError(
-                f"precisions[{i}] must have shape {(e.size, e.size)} to match errors[{i}], "
-                f"got {P.shape}"
-            )
+        P = _precision(P, e.size, f"precisions[{i}]", f" to match errors[{i}]")
         out.append((e, P))
     return out
+
+
+def _precision(P: np.ndarray, k: int, name: str, context: str = "") -> np.ndarray:
+    """``P`` as a (k, k) matrix, or as a (k,) vector (the diagonal of a diagonal precision)."""
+    P = np.asarray(P, dtype=float)
+    if P.ndim == 1 and P.shape == (k,):
+        return P
+    P = np.atleast_2d(P)
+    if P.shape != (k, k):
+        raise ValueError(f"{name} must have shape {(k, k)} or {(k,)}{context}, got {P.shape}")
+    return P
+
+
+def _weigh(P: np.ndarray, x: np.ndarray) -> np.ndarray:
+    """``P x`` for a full precision or the diagonal vector of a diagonal one."""
+    return P * x if P.ndim == 1 else P @ x
 
 
 def _jacobians(jacobians: Sequence[np.ndarray], terms: list, name: str) -> list[np.ndarray]:
@@ -74,15 +87,33 @@ def _jacobians(jacobians: Sequence[np.ndarray], terms: list, name: str) -> list[
     return out
 
 
+def _weighted_errors(
+    errors: Sequence[np.ndarray],
+    jacobians: Sequence[np.ndarray],
+    precisions: Sequence[np.ndarray],
+    name: str,
+) -> np.ndarray:
+    """``sum_i J_i' P_i e_i``."""
+    terms = _as_terms(errors, precisions)
+    Js = _jacobians(jacobians, terms, name)
+    if not Js:
+        raise ValueError(f"{name} must hold at least one term")
+    return np.sum([J.T @ _weigh(P, e) for J, (e, P) in zip(Js, terms, strict=True)], axis=0)
+
+
 def log_pseudo_determinant(precision: np.ndarray, rtol: float = 1e-12) -> float:
     """Log pseudo-determinant: sum of ``ln`` of the eigenvalues above ``rtol * max``.
 
-    For a symmetric positive semi-definite matrix. Zero eigenvalues (precision-free directions)
-    are skipped; a full-rank matrix gives ``ln|P|``.
+    For a symmetric positive semi-definite matrix, or the vector of a diagonal one. Zero
+    eigenvalues (precision-free directions) are skipped; a full-rank matrix gives ``ln|P|``.
     """
-    P = np.atleast_2d(np.asarray(precision, dtype=float))
+    P = np.asarray(precision, dtype=float)
     if P.size == 0:
         return 0.0
+    if P.ndim == 1:  # the diagonal of a diagonal precision
+        top = float(np.max(P))
+        return float(np.sum(np.log(P[P > rtol * top]))) if top > 0 else 0.0
+    P = np.atleast_2d(P)
     w = np.linalg.eigvalsh(0.5 * (P + P.T))
     top = float(np.max(w))
     if top <= 0:
@@ -103,7 +134,8 @@ def free_energy(errors: Sequence[np.ndarray], precisions: Sequence[np.ndarray]) 
     errors : sequence of numpy.ndarray
         Prediction errors ``e_i``, each of shape ``(k_i,)``.
     precisions : sequence of numpy.ndarray
-        Precisions ``P_i``, each symmetric PSD of shape ``(k_i, k_i)``.
+        Precisions ``P_i``, each symmetric PSD of shape ``(k_i, k_i)``, or ``(k_i,)`` for a
+        diagonal one.
 
     Returns
     -------
@@ -111,7 +143,7 @@ def free_energy(errors: Sequence[np.ndarray], precisions: Sequence[np.ndarray]) 
     """
     F = 0.0
     for e, P in _as_terms(errors, precisions):
-        F += 0.5 * float(e @ P @ e) - 0.5 * log_pseudo_determinant(P)
+        F += 0.5 * float(e @ _weigh(P, e)) - 0.5 * log_pseudo_determinant(P)
     return F
 
 
@@ -130,11 +162,7 @@ def belief_gradient(
     numpy.ndarray
         Shape ``(n,)``.
     """
-    terms = _as_terms(errors, precisions)
-    Js = _jacobians(error_jacobians, terms, "error_jacobians")
-    if not Js:
-        raise ValueError("error_jacobians must hold at least one term")
-    return np.sum([J.T @ (P @ e) for J, (e, P) in zip(Js, terms, strict=True)], axis=0)
+    return _weighted_errors(errors, error_jacobians, precisions, "error_jacobians")
 
 
 def belief_curvature(
@@ -156,12 +184,8 @@ def belief_curvature(
     H = None
     for i, (J, P) in enumerate(zip(error_jacobians, precisions, strict=True)):
         J = np.atleast_2d(np.asarray(J, dtype=float))
-        P = np.atleast_2d(np.asarray(P, dtype=float))
-        if P.shape != (J.shape[0], J.shape[0]):
-            raise ValueError(
-                f"precisions[{i}] must have shape {(J.shape[0], J.shape[0])}, got {P.shape}"
-            )
-        term = J.T @ P @ J
+        P = _precision(P, J.shape[0], f"precisions[{i}]")
+        term = (J.T * P) @ J if P.ndim == 1 else J.T @ P @ J
         if H is None:
             H = term
         elif H.shape != term.shape:
@@ -188,11 +212,7 @@ def action_gradient(
     numpy.ndarray
         Shape ``(n_actions,)``.
     """
-    terms = _as_terms(errors, precisions)
-    Js = _jacobians(error_action_jacobians, terms, "error_action_jacobians")
-    if not Js:
-        raise ValueError("error_action_jacobians must hold at least one term")
-    return np.sum([J.T @ (P @ e) for J, (e, P) in zip(Js, terms, strict=True)], axis=0)
+    return _weighted_errors(errors, error_action_jacobians, precisions, "error_action_jacobians")
 
 
 def log_precision_gradient(error: np.ndarray, precision: np.ndarray) -> float:

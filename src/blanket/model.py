@@ -10,7 +10,10 @@ motion ``D z - f(z)``).
 
 To add a channel or a goal of your own, write a class with ``name``, ``size`` and an
 ``evaluate`` method returning :class:`Term` (or ``None`` when it has nothing this step), and
-pass it to :class:`blanket.agent.ArmAgent` via ``extra_terms``.
+pass it to :class:`blanket.agent.ArmAgent` via ``extra_terms``. The agent's own channels
+(:mod:`blanket.agent.generative_model`) are terms of the same kind, whose ``evaluate`` takes
+one more argument, the step's context (last command, precisions in force, attractor); the
+step assembles all of them alike (:mod:`blanket.agent.step`), on either backend.
 """
 
 from __future__ import annotations

@@ -1,12 +1,26 @@
-"""Active-inference agents: :class:`ArmAgent` for arms, :class:`BaseAgent` for rovers."""
+"""Active-inference agents: :class:`ArmAgent` for arms, :class:`BaseAgent` for rovers.
+
+The arm agent's pieces: :class:`GenerativeModel` (built once), :class:`Belief` and
+:class:`EpisodeState` (what changes), :func:`blanket.agent.step.step` (the one step).
+"""
 
 from __future__ import annotations
 
 from typing import Any
 
 from blanket.agent.arm import AgentOptions, ArmAgent
+from blanket.agent.belief import Belief, EpisodeState
+from blanket.agent.generative_model import GenerativeModel
 
-__all__ = ["ArmAgent", "AgentOptions", "BaseAgent", "agent_for_env"]
+__all__ = [
+    "ArmAgent",
+    "AgentOptions",
+    "BaseAgent",
+    "Belief",
+    "EpisodeState",
+    "GenerativeModel",
+    "agent_for_env",
+]
 
 
 def __getattr__(name: str) -> Any:

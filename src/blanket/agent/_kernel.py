@@ -1,16 +1,33 @@
-"""Compiled kernel of the arm agent's perception step (numba).
+"""Compiled backend (numba) of the arm agent's step: the same numbers as the numpy form.
 
-:func:`perception_step` performs, in one call, exactly the computation documented in
-:mod:`blanket.agent.arm`: the prediction of the belief by generalized motion, the Laplace
-prior precision, the precision-weighted prediction errors of every built-in term, and one
-Gauss-Newton step on the free energy. It is a pure function of its array arguments (results
-go to the ``*_out`` buffers) and is checked against the numpy implementation in the tests.
+The perception step of :func:`blanket.agent.step.step` in two pure functions:
+
+* :func:`perception_step` -- predict the belief by generalized motion, invert the prior
+  covariance into the Laplace prior precision, and add every built-in term's
+  precision-weighted prediction error to the gradient ``dF/dz`` and its ``G' P G`` to the
+  curvature; then, without user terms, :func:`solve` in the same call;
+* :func:`solve` -- the Gauss-Newton step ``Sigma = inv(H)``, ``z = z- - Sigma dF/dz``.
+
+With user terms the step stops :func:`perception_step` after the assembly, adds the terms'
+gradient and curvature in Python at the predicted belief, and calls :func:`solve`: the same
+compiled solve follows. Results go to the
+``*_out`` buffers; the equations are those of :mod:`blanket.agent.step` (checked equal there).
+
+Buffer layouts: ``err`` (4n + 2) holds the errors of ``joint_angle | joint_velocity | motor |
+goal | camera``; ``vec`` (2, N) the predicted belief ``z-`` and the gradient; ``work`` (N, 4N)
+the curvature ``H`` and scratch. ``constants = (motor precision (<= 0: no efference copy), goal
+precision, velocity gain kv, velocity limit of the belief, k, vmax, lambda^2, k_null,
+weighting_on)``; the last five are the attractor's parameters.
 """
 
 from __future__ import annotations
 
 import numpy as np
 from numba import njit
+
+from blanket.agent._linalg import spd_inverse
+from blanket.agent.attractor import damped_least_squares_attractor
+from blanket.description import compiled_pinhole_projection
 
 OK = 0
 PRIOR_NOT_PD = 1
@@ -19,52 +36,42 @@ JACOBIAN_NOT_PD = 3
 NOT_FINITE = 4
 EXPLODED = 5
 
-
-@njit(cache=True)
-def _cholesky(A, L):  # pragma: no cover - compiled
-    """Lower Cholesky factor of SPD ``A`` into ``L``; False if ``A`` is not PD."""
-    m = A.shape[0]
-    for i in range(m):
-        for j in range(i + 1):
-            s = A[i, j]
-            for k in range(j):
-                s -= L[i, k] * L[j, k]
-            if i == j:
-                if s <= 0.0 or not np.isfinite(s):
-                    return False
-                L[i, i] = np.sqrt(s)
-            else:
-                L[i, j] = s / L[j, j]
-        for j in range(i + 1, m):
-            L[i, j] = 0.0
-    return True
+#: The camera model of :mod:`blanket.description`, compiled (the one the sensor uses).
+pinhole_projection = compiled_pinhole_projection()
 
 
 @njit(cache=True)
-def _spd_inverse(A, out, L, Linv):  # pragma: no cover - compiled
-    """``out = inv(A)`` for SPD ``A`` via Cholesky; False if ``A`` is not PD."""
-    m = A.shape[0]
-    if not _cholesky(A, L):
-        return False
-    # Linv = inv(L), lower triangular
-    for i in range(m):
-        Linv[i, i] = 1.0 / L[i, i]
-        for j in range(i):
-            s = 0.0
-            for k in range(j, i):
-                s -= L[i, k] * Linv[k, j]
-            Linv[i, j] = s / L[i, i]
-        for j in range(i + 1, m):
-            Linv[i, j] = 0.0
-    # inv(A) = Linv' Linv
-    for i in range(m):
-        for j in range(i + 1):
-            s = 0.0
-            for k in range(i, m):
-                s += Linv[k, i] * Linv[k, j]
-            out[i, j] = s
-            out[j, i] = s
-    return True
+def solve(work, vec, n, energy, velocity_limit, z_out, cov_out, sd_out):  # pragma: no cover
+    """Gauss-Newton step on the assembled free energy; returns a status.
+
+    ``Sigma = inv(H)``, ``z = z- - Sigma dF/dz``, ``sd_out = sqrt(diag(Sigma))`` (for the logs).
+    A belief velocity above ``velocity_limit`` returns ``EXPLODED``; a non-finite belief or
+    energy ``NOT_FINITE``.
+    """
+    N = vec.shape[1]
+    H = work[:, 0:N]
+    L = work[:, N : 2 * N]
+    Linv = work[:, 2 * N : 3 * N]
+    zp = vec[0]
+    grad = vec[1]
+    if not spd_inverse(H, cov_out, L, Linv):
+        return CURVATURE_NOT_PD
+    vmax_belief = 0.0
+    for i in range(N):
+        s = 0.0
+        for j in range(N):
+            s += cov_out[i, j] * grad[j]
+        z_out[i] = zp[i] - s
+        sd_out[i] = np.sqrt(cov_out[i, i])
+        if not np.isfinite(z_out[i]):
+            return NOT_FINITE
+        if n <= i < 2 * n and abs(z_out[i]) > vmax_belief:
+            vmax_belief = abs(z_out[i])
+    if not np.isfinite(energy):
+        return NOT_FINITE
+    if vmax_belief > velocity_limit:
+        return EXPLODED
+    return OK
 
 
 @njit(cache=True)
@@ -75,51 +82,41 @@ def perception_step(  # pragma: no cover - compiled
     W,
     yq,
     yv,
-    a_prev,
+    command,
     pq,
     pv,
-    pm,
+    pc,
     tip,
     J,
     cam_on,
     ypx,
-    R,
-    t,
-    intrinsics,
-    pc,
     target,
     target_velocity,
     home,
-    attractor_params,
-    lower,
-    upper,
+    camera_pose,
+    intrinsics,
+    limits,
     goal_mode,
-    pg,
-    kv,
-    z_out,
-    cov_out,
+    constants,
     cov_prior_out,
     f_out,
     F_out,
     gcam_out,
-    err_q,
-    err_v,
-    err_m,
-    err_c,
-    err_g,
-    sd_out,
+    err,
+    vec,
     work,
-    velocity_limit,
+    solve_now,
+    z_out,
+    cov_out,
+    sd_out,
 ):
-    """One perception step; returns ``(status, quadratic_energy)``.
+    """Prediction, prior precision and the built-in terms, then (``solve_now``) :func:`solve`.
 
-    ``goal_mode``: 0 no goal in the belief, 1 velocity attractor prior, 2 acceleration
-    attractor prior (torque control).
-    ``attractor_params = (k, vmax, lambda^2, k_null, weighting_on)``.
-    ``intrinsics = (fx, fy, cx, cy)``. ``pm <= 0`` disables the efference-copy term.
-    ``sd_out`` receives the posterior standard deviations ``sqrt(diag(cov_out))`` (for the
-    logs). ``work`` is an (N, 4N) scratch buffer. A belief velocity above ``velocity_limit`` returns
-    ``EXPLODED``; a non-finite belief or energy ``NOT_FINITE``.
+    Returns ``(status, energy)``, ``energy`` the quadratic part ``sum 1/2 e' P e``. With
+    ``solve_now`` False it stops after the assembly (the curvature in ``work[:, :N]``, the
+    gradient in ``vec[1]``, ``z-`` in ``vec[0]``) so the caller can add terms and call
+    :func:`solve`. ``goal_mode``: 0 no goal in the belief, 1 velocity attractor prior,
+    2 acceleration attractor prior (torque control).
     """
     n = yq.shape[0]
     p1 = phi_t.shape[0]
@@ -128,8 +125,17 @@ def perception_step(  # pragma: no cover - compiled
     L = work[:, N : 2 * N]
     Linv = work[:, 2 * N : 3 * N]
     T = work[:, 3 * N : 4 * N]
+    zp = vec[0]
+    grad = vec[1]
+    err_q = err[0:n]
+    err_v = err[n : 2 * n]
+    err_m = err[2 * n : 3 * n]
+    err_g = err[3 * n : 4 * n]
+    err_c = err[4 * n : 4 * n + 2]
+    pm = constants[0]
+    pg = constants[1]
+    kv = constants[2]
     # -- prediction: z- = (phi kron I) z ; Sigma- = Phi Sigma Phi' + W
-    zp = np.empty(N)
     for a in range(p1):
         for i in range(n):
             s = 0.0
@@ -151,9 +157,11 @@ def perception_step(  # pragma: no cover - compiled
                 for d in range(p1):
                     s += T[row, d * n + j] * phi_t[b, d]
                 cov_prior_out[row, b * n + j] = s + W[row, b * n + j]
-    if not _spd_inverse(cov_prior_out, H, L, Linv):
+    # -- Laplace prior precision Pi- = inv(Sigma-)
+    if not spd_inverse(cov_prior_out, H, L, Linv):
         return PRIOR_NOT_PD, 0.0
-    grad = np.zeros(N)
+    for i in range(N):
+        grad[i] = 0.0
     energy = 0.0
     # -- encoders and efference copy (selections of orders 0 and 1)
     for i in range(n):
@@ -168,70 +176,17 @@ def perception_step(  # pragma: no cover - compiled
         grad[n + i] -= pv[i] * e
         energy += 0.5 * pv[i] * e * e
         if pm > 0.0:
-            e = a_prev[i] - zp[n + i]
+            e = command[i] - zp[n + i]
             err_m[i] = e
             H[n + i, n + i] += pm
             grad[n + i] -= pm * e
             energy += 0.5 * pm * e * e
-    # -- attractor: f = J+ k sat(x* - x) + k_null (I - J+ J)(home - q), F = df/dq (Gauss-Newton)
-    k = attractor_params[0]
-    vmax = attractor_params[1]
-    lam2 = attractor_params[2]
-    kn = attractor_params[3]
-    winv = np.ones(n)
-    if attractor_params[4] > 0.0:
-        # weighted least norm near joint limits (see blanket.agent.arm.joint_limit_weights)
-        for j in range(n):
-            span = upper[j] - lower[j]
-            du = max(upper[j] - zp[j], 1e-3)
-            dl = max(zp[j] - lower[j], 1e-3)
-            w = 1.0 + abs(span * span * (du - dl) / (4.0 * du * du * dl * dl))
-            if np.isfinite(w):
-                winv[j] = 1.0 / w
-    A3 = np.empty((3, 3))
-    for r in range(3):
-        for c in range(3):
-            s = 0.0
-            for j in range(n):
-                s += J[r, j] * winv[j] * J[c, j]
-            A3[r, c] = s
-        A3[r, r] += lam2
-    L3 = np.empty((3, 3))
-    I3 = np.empty((3, 3))
-    Li3 = np.empty((3, 3))
-    if not _spd_inverse(A3, I3, L3, Li3):
+    # -- attractor f(q-) and F = df/dq (used by the goal prior and by the action)
+    if not damped_least_squares_attractor(
+        J, tip, target, target_velocity, zp[0:n], home, limits[0], limits[1], constants[4:9],
+        f_out, F_out,
+    ):  # fmt: skip
         return JACOBIAN_NOT_PD, 0.0
-    vel = np.empty(3)
-    speed2 = 0.0
-    for r in range(3):
-        vel[r] = k * (target[r] - tip[r]) + target_velocity[r]
-        speed2 += vel[r] * vel[r]
-    scale = 1.0
-    speed = np.sqrt(speed2)
-    if speed > vmax:
-        scale = vmax / speed
-    Jp = np.empty((n, 3))
-    for j in range(n):
-        for c in range(3):
-            s = 0.0
-            for r in range(3):
-                s += J[r, j] * I3[r, c]
-            Jp[j, c] = winv[j] * s
-    dq_home = np.empty(n)
-    for j in range(n):
-        dq_home[j] = home[j] - zp[j]
-    for i in range(n):
-        fi = 0.0
-        for c in range(3):
-            fi += Jp[i, c] * vel[c] * scale
-        for j in range(n):
-            s = 0.0
-            for c in range(3):
-                s += Jp[i, c] * J[c, j]
-            nullij = (1.0 if i == j else 0.0) - s
-            fi += kn * nullij * dq_home[j]
-            F_out[i, j] = -k * scale * s - kn * nullij
-        f_out[i] = fi
     # -- goal as prior dynamics
     if goal_mode == 1:
         for i in range(n):
@@ -275,40 +230,19 @@ def perception_step(  # pragma: no cover - compiled
                 H[n + i, j] -= kk * F_out[i, j]
                 H[i, s2 + j] -= pg * kv * F_out[j, i]
                 H[s2 + i, j] -= pg * kv * F_out[i, j]
-    # -- camera: pixel of the tool tip
+    # -- camera: pixel of the tool tip, G = d pixel / d tip . J
     if cam_on:
-        pcam = np.empty(3)
-        for r in range(3):
-            s = 0.0
-            for c in range(3):
-                s += R[c, r] * (tip[c] - t[c])
-            pcam[r] = s
-        iz = 1.0 / pcam[2]
-        fx = intrinsics[0]
-        fy = intrinsics[1]
-        u = fx * pcam[0] * iz + intrinsics[2]
-        vv = fy * pcam[1] * iz + intrinsics[3]
-        d = np.zeros((2, 3))
-        d[0, 0] = fx * iz
-        d[0, 2] = -fx * pcam[0] * iz * iz
-        d[1, 1] = fy * iz
-        d[1, 2] = -fy * pcam[1] * iz * iz
-        # dpix/dtip = d R'
-        dR = np.empty((2, 3))
-        for r in range(2):
-            for c in range(3):
-                s = 0.0
-                for m in range(3):
-                    s += d[r, m] * R[c, m]
-                dR[r, c] = s
+        pixel, dpix = pinhole_projection(
+            camera_pose, intrinsics[0], intrinsics[1], intrinsics[2], intrinsics[3], tip
+        )
         for r in range(2):
             for j in range(n):
                 s = 0.0
                 for c in range(3):
-                    s += dR[r, c] * J[c, j]
+                    s += dpix[r, c] * J[c, j]
                 gcam_out[r, j] = s
-        err_c[0] = ypx[0] - u
-        err_c[1] = ypx[1] - vv
+        err_c[0] = ypx[0] - pixel[0]
+        err_c[1] = ypx[1] - pixel[1]
         for r in range(2):
             energy += 0.5 * pc[r] * err_c[r] * err_c[r]
             for j in range(n):
@@ -319,22 +253,6 @@ def perception_step(  # pragma: no cover - compiled
                 for r in range(2):
                     s += gcam_out[r, i] * pc[r] * gcam_out[r, j]
                 H[i, j] += s
-    # -- Gauss-Newton step: Sigma = inv(H); z = z- - Sigma grad
-    if not _spd_inverse(H, cov_out, L, Linv):
-        return CURVATURE_NOT_PD, energy
-    vmax_belief = 0.0
-    for i in range(N):
-        s = 0.0
-        for j in range(N):
-            s += cov_out[i, j] * grad[j]
-        z_out[i] = zp[i] - s
-        sd_out[i] = np.sqrt(cov_out[i, i])
-        if not np.isfinite(z_out[i]):
-            return NOT_FINITE, energy
-        if n <= i < 2 * n and abs(z_out[i]) > vmax_belief:
-            vmax_belief = abs(z_out[i])
-    if not np.isfinite(energy):
-        return NOT_FINITE, energy
-    if vmax_belief > velocity_limit:
-        return EXPLODED, energy
-    return OK, energy
+    if not solve_now:
+        return OK, energy
+    return solve(work, vec, n, energy, constants[3], z_out, cov_out, sd_out), energy

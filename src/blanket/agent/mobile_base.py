@@ -62,6 +62,7 @@ from blanket.agent._policy import PredictMixin
 from blanket.base_description import BaseDescription
 from blanket.body.diff_drive import DiffDriveModel, polar_coordinates, pose_rate, wrap_angle
 from blanket.errors import ConfigError
+from blanket.free_energy import belief_curvature, belief_gradient, free_energy
 from blanket.gcoords import shift_operator
 from blanket.planar_motion import bearing_range, bearing_range_jacobian
 
@@ -564,17 +565,17 @@ class BaseAgent(PredictMixin):
         goal_P = float(self.options["goal_precision"])
         H_evidence = prior_precision
         for _ in range(int(self.options["perception_iterations"])):
-            grad = np.zeros(self.n)
-            H = np.zeros((self.n, self.n))
             terms = self._velocity_terms(m, y)
             if self.localised:
                 for name, e, Jp, p in self._landmark_terms(m[:3], y):
                     J = np.zeros((len(e), self.n))
                     J[:, :3] = Jp
                     terms.append((name, e, J, p))
-            for _, e, J, p in terms:
-                grad -= J.T @ (p * e)
-                H += J.T @ (p[:, None] * J)
+            errors = [e for _, e, _, _ in terms]
+            jacobians = [-J for _, _, J, _ in terms]  # d e / d mu = -dg/dmu
+            precisions = [p for _, _, _, p in terms]  # diagonal, as vectors
+            grad = belief_gradient(errors, jacobians, precisions)  # sum J'Pe
+            H = belief_curvature(jacobians, precisions)  # sum J'PJ (Gauss-Newton)
             dm = m - pred
             dm[2] = wrap_angle(dm[2])
             grad += prior_precision @ dm
@@ -604,8 +605,8 @@ class BaseAgent(PredictMixin):
         for name in ("landmark_bearing", "landmark_range"):
             diag[f"prediction_error.{name}"] = np.full(L, np.nan)
             diag[f"precision.{name}"] = np.zeros(L)
+        F += free_energy([e for _, e, _, _ in terms], [p for _, _, _, p in terms])
         for name, e, _, p in terms:
-            F += 0.5 * float(np.sum(p * e * e)) - 0.5 * float(np.sum(np.log(p)))
             if name.startswith("landmark"):
                 diag[f"prediction_error.{name}"][y["visible"]] = e
                 diag[f"precision.{name}"][y["visible"]] = p

@@ -1,0 +1,435 @@
+"""What changes during an episode: the belief, and small objects for the rest.
+
+* :class:`Belief` -- the generalized-coordinate mean ``(order + 1, n)`` and its covariance;
+* :class:`CommandState` -- the last command (the efference copy), the home posture, the
+  attractor's velocity and the disturbance estimate of torque control;
+* :class:`TargetTrack` -- the believed target velocity from recent target positions;
+* :class:`ChannelMonitor` -- learned precisions and fault statistics of the sensory channels.
+
+:class:`EpisodeState` bundles the last three. None of them is part of the
+:class:`~blanket.agent.generative_model.GenerativeModel`, which a step never changes.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass
+from typing import Any, NamedTuple
+
+import numpy as np
+from scipy.special import chdtri
+
+from blanket.agent.generative_model import MONITORED_CHANNELS, GenerativeModel
+
+__all__ = [
+    "Belief",
+    "CommandState",
+    "TargetTrack",
+    "ChannelMonitor",
+    "Innovations",
+    "EpisodeState",
+]
+
+#: Samples a channel averages before its learned precision is applied.
+_LEARNING_BURN_IN = 20
+
+
+@dataclass
+class Belief:
+    """Generalized-coordinate mean (flattened, order-major) and its covariance.
+
+    Attributes
+    ----------
+    mean : numpy.ndarray
+        ``[q, q', ..., q^(p)]`` flattened, shape ``((p + 1) n,)``.
+    covariance : numpy.ndarray
+        Laplace covariance ``inv(H)`` of the last step, shape ``(N, N)``.
+    shape : tuple of int
+        ``(p + 1, n)``.
+    sd : numpy.ndarray or None
+        ``sqrt(diag(covariance))`` when already known (the compiled step fills it).
+    """
+
+    mean: np.ndarray
+    covariance: np.ndarray
+    shape: tuple[int, int]
+    sd: np.ndarray | None = None
+
+    @property
+    def generalized(self) -> np.ndarray:
+        """The mean as ``(order + 1, n)`` (a view)."""
+        return self.mean.reshape(self.shape)
+
+    def standard_deviation(self) -> np.ndarray:
+        """``sqrt(diag(covariance))``, shape ``(N,)``."""
+        if self.sd is None:
+            self.sd = np.sqrt(np.maximum(self.covariance.diagonal(), 0.0))
+        return self.sd
+
+    @classmethod
+    def from_observation(
+        cls, model: GenerativeModel, obs: Mapping[str, Any], precision: Mapping[str, np.ndarray]
+    ) -> Belief:
+        """The first belief: the encoders' readings, their noise as variance; higher orders
+        zero with variance ``10^(2k)`` (uninformative)."""
+        n, p = model.n, model.order
+        z = np.zeros((p + 1, n))
+        z[0] = np.asarray(obs["joint_angle_rad"], dtype=float)
+        z[1] = np.asarray(obs["joint_velocity_rad_s"], dtype=float)
+        var = np.empty((p + 1, n))
+        var[0] = 1.0 / precision["joint_angle"]
+        var[1] = 1.0 / precision["joint_velocity"]
+        for k in range(2, p + 1):
+            var[k] = 10.0 ** (2 * k)
+        return cls(z.reshape(-1), np.diag(var.reshape(-1)), (p + 1, n))
+
+
+@dataclass
+class CommandState:
+    """The action side of an episode.
+
+    Attributes
+    ----------
+    command : numpy.ndarray
+        The last command sent (the efference copy of the next step).
+    home : numpy.ndarray
+        The posture at the first observation (the attractor's null-space goal).
+    last_finite_q : numpy.ndarray
+        The last believed posture that was finite (a torque safe stop holds it).
+    attractor_velocity : numpy.ndarray
+        ``f(q)`` of the last step.
+    disturbance : numpy.ndarray
+        Believed unmodelled joint torque (torque control).
+    last_velocity_belief : numpy.ndarray or None
+        The believed velocity of the last step (for the disturbance observer).
+    """
+
+    command: np.ndarray
+    home: np.ndarray
+    last_finite_q: np.ndarray
+    attractor_velocity: np.ndarray
+    disturbance: np.ndarray
+    last_velocity_belief: np.ndarray | None = None
+
+    @classmethod
+    def empty(cls, n: int) -> CommandState:
+        z = np.zeros(n)
+        return cls(z.copy(), z.copy(), z.copy(), z.copy(), z.copy())
+
+    def start(self, model: GenerativeModel, obs: Mapping[str, Any]) -> None:
+        """First observation of an episode: home posture, and the command the motors run."""
+        q = np.asarray(obs["joint_angle_rad"], dtype=float)
+        self.home = q.copy()
+        self.last_finite_q = q.copy()
+        if model.control == "velocity":
+            self.command = np.asarray(obs["joint_velocity_rad_s"], dtype=float).copy()
+        else:
+            self.command = np.zeros(model.n)
+
+
+class TargetTrack:
+    """Believed target velocity: the order-1 generalized coordinate of its recent track.
+
+    The backward difference over the last ``target_window_s`` (exact for a target moving at
+    constant velocity; target positions are given, not sensed with noise); a jump of more
+    than 5 cm in one step (a new target) restarts the track. A target carried on a conveyor
+    is then followed without the steady lag ``speed / attractor_gain`` of a pure position
+    attractor.
+    """
+
+    def __init__(self, window: int, dt: float, enabled: bool) -> None:
+        self.window, self.dt, self.enabled = window, dt, enabled
+        self.velocity = np.zeros(3)
+        self._last: np.ndarray | None = None
+        self._steps = np.zeros((window, 3))
+        self._count = 0
+
+    def update(self, position: Any) -> None:
+        if not self.enabled:
+            return
+        x = np.asarray(position, dtype=float)
+        last = self._last
+        self._last = x.copy()
+        if last is None:
+            return
+        step = x - last
+        if np.abs(step).max() > 0.05:
+            self._steps[:] = 0.0
+            self._count = 0
+            self.velocity = np.zeros(3)
+            return
+        w = self.window
+        self._steps[self._count % w] = step
+        self._count += 1
+        self.velocity = self._steps.sum(axis=0) / (min(self._count, w) * self.dt)
+
+
+class Innovations(NamedTuple):
+    """What a step saw, for the channel tests: the prediction errors of the active terms,
+    the prior covariance ``Sigma-``, the camera's Jacobian ``G`` (None without a frame) and
+    the belief before the step (its prediction is what the errors were measured against)."""
+
+    errors: Mapping[str, np.ndarray]
+    cov_prior: np.ndarray
+    g_cam: np.ndarray | None
+    belief: Belief
+
+
+class ChannelMonitor:
+    """Learned precisions and fault flags of the monitored channels, for one episode.
+
+    ``precision`` holds each channel's nominal-or-learned precision; :meth:`effective` the
+    one a step uses (cut to 1e-6 where flagged faulty).
+    """
+
+    def __init__(self, model: GenerativeModel) -> None:
+        self.model = model
+        n = model.n
+        self.precision = {k: v.copy() for k, v in model.precision.items()}
+        self.fault_stat = {k: np.zeros(n if k != "camera" else 1) for k in MONITORED_CHANNELS}
+        self.fault = {k: np.zeros_like(v, dtype=bool) for k, v in self.fault_stat.items()}
+        enc = ("joint_angle", "joint_velocity")
+        self.fault_high = {k: np.zeros_like(v, dtype=bool) for k, v in self.fault_stat.items()}
+        self.fault_low = {k: np.zeros(n, dtype=bool) for k in enc}
+        self.flatline_stat = {k: np.ones(n) for k in enc}
+        self.last_reading: dict[str, np.ndarray] = {}
+        # Reading increments of white noise are MA(1) (lag-1 correlation -1/2): the mean of
+        # their squares over w samples has variance 3/w, not 2/w, so it counts as 2w/3
+        # independent chi-square(1) samples (common practice, no source).
+        w_eff = max(1.0, 2.0 / model.fault_alpha - 1.0) * 2.0 / 3.0
+        pfa = float(model.options["fault_false_alarm"])
+        self.flatline_threshold = chdtri(w_eff, 1.0 - pfa) / w_eff  # lower pfa quantile
+        self.increment_threshold = chdtri(w_eff, pfa) / w_eff  # upper pfa quantile
+        self.noise_variance = {k: 1.0 / v for k, v in model.precision.items() if np.all(v > 0)}
+        self.noise_samples = dict.fromkeys(self.noise_variance, 0)
+        self.last_angle_reading: np.ndarray | None = None
+        self.pending_inflation: np.ndarray | None = None
+
+    def effective(self, name: str) -> np.ndarray:
+        """A channel's precision, down-weighted to 1e-6 of itself where it is flagged."""
+        P = self.precision[name]
+        if self.model.options["fault_detection"]:
+            flags = self.fault[name]
+            if flags.any():
+                return np.where(flags if name != "camera" else flags.repeat(2), P * 1e-6, P)
+        return P
+
+    def inflate(self, belief: Belief) -> None:
+        """Covariance inflation when an encoder angle has just been flagged.
+
+        The belief followed the bad reading for the detection delay (about 3 windows) at the
+        believed speed, so its variance grows by that drift squared and the other channels
+        can correct it (common practice, no source). Only with ``goal="reference"``: under a
+        goal prior the freed variance lets the goal, not the camera, take the joint.
+        """
+        j = self.pending_inflation
+        if j is None or not self.model.options["fault_detection"]:
+            return
+        self.pending_inflation = None
+        n = self.model.n
+        v = belief.mean[n : 2 * n]
+        drift = np.abs(v[j]) * 3.0 * float(self.model.options["fault_window_s"])
+        drift = drift + 1.0 / np.sqrt(self.precision["joint_angle"][j])
+        belief.covariance[j, j] += drift * drift
+        belief.sd = None
+
+    def innovation_variance(
+        self, name: str, cov_prior: np.ndarray, g_cam: np.ndarray | None
+    ) -> np.ndarray:
+        """Diagonal of the predicted innovation covariance ``G Sigma- G'`` (without noise)."""
+        n = self.model.n
+        if name == "camera":
+            return np.einsum("ij,jk,ik->i", g_cam, cov_prior[:n, :n], g_cam)
+        sel = slice(0, n) if name == "joint_angle" else slice(n, 2 * n)
+        return np.diagonal(cov_prior)[sel]
+
+    def update(self, seen: Innovations) -> None:
+        """After a step: test for faults and learn precisions, as the options ask."""
+        if self.model.options["fault_detection"]:
+            self.detect_faults(seen)
+        if self.model.options["learn_precision"]:
+            self.learn_precisions(seen)
+
+    def detect_faults(self, seen: Innovations) -> None:
+        """Two-sided tests per channel (per joint for the encoders); flags in ``fault``.
+
+        Each test averages a normalized squared residual ``x`` over an exponential window of
+        ``fault_window_s`` (``w`` effective samples); under no fault the average is close to
+        ``chi2(w m) / (w m)`` for ``m`` components, and the two-sided acceptance region of
+        the innovation test at ``fault_false_alarm`` (Bar-Shalom, Li & Kirubarajan 2001,
+        *Estimation with Applications to Tracking and Navigation*, sec. 5.4.2) bounds it.
+        Each sample is capped at 16 (4 standard deviations) so that one outlier, such as a
+        motor that lags a jump of command for a step, cannot raise a flag alone.
+
+        * Too much error. Under velocity control the encoders are tested against the
+          efference copy ``a``, which the motors track far closer than the encoder noise, so
+          the test does not depend on the belief (a goal prior biases the belief by design,
+          and a down-weighted channel would otherwise never look healthy again): angles on
+          ``r = y_k - y_(k-1) - dt a`` (variance ``2 / P``; MA(1), so ``w`` shrinks by 2/3),
+          velocities on ``r = y - a`` (variance ``1 / P``). Otherwise, and for the camera,
+          on the innovation, ``x = nu^2 / S``, ``S = G Sigma- G' + inv(P)``. The flag clears
+          below half the threshold. The camera is not flagged while an encoder angle is (the
+          belief it is tested against is then the suspect).
+        * Too little noise (encoders): a stuck reading stops carrying its noise. The squared
+          increment ``(y_k - y_(k-1))^2 P / 2`` has mean >= 1 under white noise of
+          precision ``P`` (motion only adds to it); below the lower quantile the joint is
+          flagged, and the flag clears above twice that quantile.
+
+        ``P`` is the channel's nominal (or learned) precision, never the down-weighted one.
+        A flagged channel's precision is cut to 1e-6 of its value (:meth:`effective`) and
+        returns when the tests pass again.
+        """
+        errors, cov_prior, g_cam, belief = seen
+        model = self.model
+        alpha = model.fault_alpha
+        motor = errors.get("motor")
+        predicted = model.transition[:2] @ belief.generalized
+        command = None if motor is None else motor + predicted[1]
+        for name in MONITORED_CHANNELS:
+            if name not in errors:
+                continue
+            e = errors[name]
+            P = self.precision[name]
+            thr = model.fault_threshold[name]
+            low = None
+            if name == "camera":
+                S = self.innovation_variance(name, cov_prior, g_cam) + 1.0 / P
+                stat = np.array([np.minimum(e * e / S, 16.0).mean()])
+            else:
+                # The raw reading is the error plus the prediction it was measured against.
+                reading = e + predicted[0 if name == "joint_angle" else 1]
+                last = self.last_reading.get(name)
+                self.last_reading[name] = reading
+                if last is None:
+                    continue
+                d = reading - last
+                if command is None:
+                    S = self.innovation_variance(name, cov_prior, g_cam) + 1.0 / P
+                    stat = e * e / S
+                elif name == "joint_angle":
+                    r = d - model.dt * command
+                    stat = 0.5 * r * r * P
+                    thr = self.increment_threshold
+                else:
+                    r = reading - command
+                    stat = r * r * P
+                stat = np.minimum(stat, 16.0)
+                f = self.flatline_stat[name]
+                f += alpha * (0.5 * d * d * P - f)
+                lo = self.flatline_threshold
+                low = self.fault_low[name]
+                low[:] = np.where(low, f < 2.0 * lo, f < lo)
+            m = self.fault_stat[name]
+            m += alpha * (stat - m)
+            high = self.fault_high[name]
+            high[:] = np.where(high, m > 0.5 * thr, m > thr)
+            if name == "camera":
+                # The camera is tested against the belief, which leans on the encoder angles:
+                # while one of those is flagged, the camera is the arbiter and stays in use.
+                high &= not self.fault["joint_angle"].any()
+            new = high.copy() if low is None else high | low
+            rising = new & ~self.fault[name]
+            if name == "joint_angle" and rising.any() and model.options["goal"] == "reference":
+                self.pending_inflation = np.flatnonzero(rising)
+            self.fault[name] = new
+
+    def learn_precisions(self, seen: Innovations) -> None:
+        """Covariance matching of each channel's noise variance on its innovations.
+
+        Under a consistent filter the innovation ``nu = y - g(mu-)`` has variance
+        ``S = G Sigma- G' + R``, so
+        ``R = E[nu^2] - G Sigma- G'`` per component (diagonal ``R``): the innovation-based
+        adaptive estimate of Mehra 1970 (IEEE Trans Autom Control 15(2), sec. IV) in the
+        sample form of Myers & Tapley 1976 (IEEE Trans Autom Control 21(4), eq. 29). Under
+        velocity control two channels use the efference copy ``a`` (the motors track it far
+        closer than the encoder noise) instead of ``Sigma-``, which a goal prior or an
+        unmodelled change of command makes wrong. Encoder angles: the reading's increment
+        less the commanded motion, ``d = y_k - y_(k-1) - dt a``, is ``n_k - n_(k-1)``, so
+        ``R_q = E[d^2] / 2`` (the difference variance estimator, von Neumann et al. 1941, Ann
+        Math Stat 12(2), from memory). The velocity prediction misses every change of
+        command, so ``Sigma-`` understates its error; there the efference copy's error
+        ``e_m = a - q'-`` carries the same prediction error with independent noise, and
+        ``R_v = E[nu_v (nu_v - e_m)]`` is Grubbs' two-instrument estimator (Grubbs 1948, J Am
+        Stat Assoc 43(242), from memory), free of the prediction error whatever its size. The
+        camera's pixel error is likewise predicted by the encoder angles' error through the
+        camera Jacobian ``G``: ``R_px = E[nu_px (nu_px - G nu_q)]`` (while no encoder angle is
+        flagged), which keeps the camera from absorbing an error of ``Sigma-``. Each estimate
+        is averaged with weights ``max(1 / k, 1 - exp(-r dt_m))`` (``k`` the channel's sample
+        count, ``r = precision_learning_rate`` per second, ``dt_m`` the channel's sample
+        interval; ``r = 0`` keeps the full average), and the precision is ``P = 1 / R``,
+        bounded to ``[e^-7, e^7]`` times the starting precision, applied from the
+        ``_LEARNING_BURN_IN``-th sample on; each sample is clipped to ``[-3, 20]`` predicted
+        innovation variances (an outlier guard, common practice, no source). Samples a
+        channel takes while flagged by :meth:`detect_faults` are skipped.
+        """
+        errors, cov_prior, g_cam, belief = seen
+        model = self.model
+        rate = float(model.options["precision_learning_rate"])
+        for name in MONITORED_CHANNELS:
+            if name not in errors or name not in self.noise_variance:
+                continue
+            high = self.fault_high[name]
+            if name != "camera":
+                high = high | self.fault_low[name]
+            if high.all():
+                continue
+            e = errors[name]
+            s = self.innovation_variance(name, cov_prior, g_cam)
+            if name == "joint_angle" and "motor" in errors:
+                # The reading's increment less the commanded motion is n_k - n_(k-1).
+                v_prior = model.transition[1] @ belief.generalized
+                q_prior = model.transition[0] @ belief.generalized
+                reading = e + q_prior
+                last = self.last_angle_reading
+                self.last_angle_reading = reading
+                if last is None:
+                    continue
+                d = reading - last - model.dt * (errors["motor"] + v_prior)
+                sample = 0.5 * d * d
+                s = 0.0
+            elif name == "joint_velocity" and "motor" in errors:
+                # Grubbs' estimator: the efference copy sees the same prediction error.
+                sample = e * (e - errors["motor"])
+            elif name == "camera" and not self.fault["joint_angle"].any():
+                # ... and the encoder angles see the camera's, through its Jacobian.
+                sample = e * (e - g_cam @ errors["joint_angle"])
+            else:
+                sample = e * e - s
+            # Robustness: one sample moves the estimate by at most 20 (up) or 3 (down)
+            # predicted innovation variances (a chi-square(1) draw exceeds 20 with p < 1e-5).
+            S = s + 1.0 / self.precision[name]
+            sample = np.clip(sample, -3.0 * S, 20.0 * S)
+            k = self.noise_samples[name] + 1
+            self.noise_samples[name] = k
+            step_s = model.dt
+            if name == "camera" and model.camera is not None:
+                step_s = max(model.dt, 1.0 / model.camera.rate_hz)
+            a = max(1.0 / k, -np.expm1(-rate * step_s))
+            healthy = ~(high.repeat(2) if name == "camera" else high)
+            R = self.noise_variance[name]
+            R += (a * healthy) * (sample - R)
+            if k < _LEARNING_BURN_IN:
+                continue
+            p0 = model.precision[name]
+            self.precision[name] = np.clip(
+                1.0 / np.maximum(R, 1e-300), p0 * np.exp(-7.0), p0 * np.exp(7.0)
+            )
+
+
+@dataclass
+class EpisodeState:
+    """The per-episode state apart from the belief; a fresh one per episode."""
+
+    command: CommandState
+    target: TargetTrack
+    channels: ChannelMonitor
+    safe_stop_reason: str = ""
+
+    @classmethod
+    def start(cls, model: GenerativeModel) -> EpisodeState:
+        window = max(1, int(round(model.options["target_window_s"] / model.dt)))
+        return cls(
+            CommandState.empty(model.n),
+            TargetTrack(window, model.dt, bool(model.options["track_target_motion"])),
+            ChannelMonitor(model),
+        )

@@ -1,0 +1,530 @@
+"""The arm agent's generative model: built once, never changed by a step.
+
+:class:`GenerativeModel` holds what the agent assumes about its body and its senses: the
+sensory channels and the prior dynamics (every one a :class:`~blanket.model.ModelTerm`, the
+built-in ones and a user's alike), the generalized motion and its noise, the goal and the
+nominal precisions. It is built from an env's static
+:class:`~blanket.description.ArmDescription` and the :class:`AgentOptions`, as pinocchio
+builds a model once and keeps what changes in a separate data object: here the belief and
+the episode state of :mod:`blanket.agent.belief`.
+
+Terms (``e = y - g(z)``, ``G = dg/dz`` with respect to the flattened belief, order-major):
+
+* ``joint_angle``: ``y = q + noise`` (order 0); ``joint_velocity``: ``y = q' + noise``
+  (order 1) (:class:`EncoderChannel`);
+* ``camera``: the tool tip's pixel ``y = pi(fk(q))`` on fresh frames in which it is visible,
+  ``G = d pi / d x . J(q)`` (:func:`blanket.description.pinhole_projection`);
+* ``motor`` (velocity control): the efference copy, the motors track the last command,
+  ``q' ~ a``;
+* ``goal`` (``goal="prior"``): the attractor as prior dynamics, ``q' = f(q)`` under velocity
+  control, ``q'' = k_v (f(q) - q')`` under torque control
+  (:func:`blanket.agent.attractor.damped_least_squares_attractor`).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from math import factorial
+from typing import Any
+
+import numpy as np
+from scipy.linalg import expm
+from scipy.special import chdtri  # chi-square quantiles; scipy.stats costs ~0.5 s to import
+
+from blanket.description import ArmDescription, CameraDescription
+from blanket.errors import ConfigError, did_you_mean, shorten
+from blanket.model import BodyState, ModelTerm, Term
+
+__all__ = [
+    "AgentOptions",
+    "GenerativeModel",
+    "StepContext",
+    "EncoderChannel",
+    "CameraChannel",
+    "EfferenceCopy",
+    "AttractorPrior",
+    "generalized_motion",
+    "jerk_covariance",
+    "MOTOR_TRACKING_SD_RAD_S",
+]
+
+_GOALS = ("prior", "reference")
+_INTEGRATIONS = ("ozaki", "euler")
+#: How closely velocity motors are assumed to track the last command (rad/s): pybullet's
+#: velocity motors tracked to ~2e-4 rad/s on the built-in arms (measured); 5e-3 leaves margin.
+MOTOR_TRACKING_SD_RAD_S = 0.005
+#: Channels whose precision can be learned and whose faults are tested.
+MONITORED_CHANNELS = ("joint_angle", "joint_velocity", "camera")
+
+
+class AgentOptions:
+    """Options of :class:`~blanket.agent.ArmAgent`, with their defaults and allowed ranges.
+
+    Every option is a keyword of :meth:`~blanket.agent.ArmAgent.from_env` and a key of a
+    scenario file's ``[agent]`` table. Unknown names raise :class:`~blanket.errors.ConfigError`.
+    """
+
+    defaults: dict[str, Any] = {
+        "order": 2,
+        "goal": "reference",
+        "integration": "ozaki",
+        "attractor_gain_1_s": 4.0,
+        "max_tip_speed_m_s": 0.6,
+        "damping_m": 0.02,
+        "posture_gain_1_s": 0.5,
+        "joint_limit_weighting": False,
+        "track_target_motion": True,
+        "disturbance_time_constant_s": 0.1,
+        "target_window_s": 0.05,
+        "velocity_gain_1_s": 25.0,
+        "joint_angle_precision": None,
+        "joint_velocity_precision": None,
+        "camera_precision": None,
+        "motor_precision": None,
+        "goal_precision": None,
+        "jerk_intensity": 50.0,
+        "action_fraction": 1.0,
+        "learn_precision": False,
+        "precision_learning_rate": 0.2,
+        "fault_detection": False,
+        "fault_window_s": 0.1,
+        "fault_false_alarm": 1e-7,
+        "length_scale": 1.0,
+        "mass_scale": 1.0,
+        "payload_kg": 0.0,
+        "divergence_limit": 1e3,
+    }
+
+    @classmethod
+    def resolve(cls, options: Mapping[str, Any]) -> dict[str, Any]:
+        """The options with defaults filled in; a one-line ConfigError for any bad value."""
+        unknown = sorted(set(options) - set(cls.defaults))
+        if unknown:
+            hint = did_you_mean(unknown[0], cls.defaults)
+            raise ConfigError(f"unknown agent option {shorten(unknown[0])}; {hint}")
+        out = dict(cls.defaults)
+        out.update(options)
+        order = out["order"]
+        if not isinstance(order, int | np.integer) or not 0 < int(order) <= 6:
+            raise ConfigError(
+                f"agent option order must be a whole number in 1..6, got {shorten(order)}"
+            )
+        if out["goal"] not in _GOALS:
+            raise ConfigError(
+                f"agent option goal must be one of {_GOALS}, got {shorten(out['goal'])}"
+            )
+        if out["integration"] not in _INTEGRATIONS:
+            raise ConfigError(
+                f"agent option integration must be one of {_INTEGRATIONS}, "
+                f"got {shorten(out['integration'])}"
+            )
+        for key in (
+            "attractor_gain_1_s",
+            "max_tip_speed_m_s",
+            "velocity_gain_1_s",
+            "jerk_intensity",
+            "length_scale",
+            "mass_scale",
+            "fault_window_s",
+            "target_window_s",
+            "divergence_limit",
+        ):
+            v = out[key]
+            if not isinstance(v, int | float) or not np.isfinite(v) or v <= 0:
+                raise ConfigError(f"agent option {key} must be a number > 0, got {shorten(v)}")
+        for key in (
+            "damping_m",
+            "posture_gain_1_s",
+            "payload_kg",
+            "precision_learning_rate",
+            "disturbance_time_constant_s",
+        ):
+            v = out[key]
+            if not isinstance(v, int | float) or not np.isfinite(v) or v < 0:
+                raise ConfigError(f"agent option {key} must be a number >= 0, got {shorten(v)}")
+        v = out["action_fraction"]
+        if not isinstance(v, int | float) or not 0 < v <= 1:
+            raise ConfigError(f"agent option action_fraction must be in (0, 1], got {shorten(v)}")
+        v = out["fault_false_alarm"]
+        if not isinstance(v, int | float) or not 0 < v < 0.5:
+            raise ConfigError(
+                f"agent option fault_false_alarm must be in (0, 0.5), got {shorten(v)}"
+            )
+        for key in (
+            "joint_angle_precision",
+            "joint_velocity_precision",
+            "camera_precision",
+            "motor_precision",
+            "goal_precision",
+        ):
+            v = out[key]
+            if v is not None and (not isinstance(v, int | float) or not np.isfinite(v) or v <= 0):
+                raise ConfigError(
+                    f"agent option {key} must be a number > 0 or omitted, got {shorten(v)}"
+                )
+        out["order"] = int(order)
+        return out
+
+
+def generalized_motion(order: int, dt: float, integration: str) -> np.ndarray:
+    """Transition of generalized motion over ``dt`` for one joint, shape (p+1, p+1).
+
+    The flow ``z' = D z`` (``D`` the shift operator) integrated by local linearisation
+    (Ozaki 1992, Statistica Sinica 2), exact for this linear flow: ``expm(D dt)``;
+    ``integration="euler"`` gives ``I + D dt``.
+    """
+    D = np.eye(order + 1, k=1)
+    if integration == "euler":
+        return np.eye(order + 1) + D * dt
+    return expm(D * dt)
+
+
+def jerk_covariance(order: int, dt: float, intensity: float) -> np.ndarray:
+    """Discrete covariance of white noise of ``intensity`` driving the highest order.
+
+    Van Loan's method in closed form for the integrator chain: the (i, j) entry (orders
+    counted down from the highest, ``a = p - i``, ``b = p - j``) is
+    ``q dt^(a+b+1) / ((a+b+1) a! b!)`` (Van Loan 1978, IEEE Trans Autom Control 23(3)).
+    """
+    W = np.zeros((order + 1, order + 1))
+    for i in range(order + 1):
+        for j in range(order + 1):
+            a, b = order - i, order - j
+            W[i, j] = intensity * dt ** (a + b + 1) / ((a + b + 1) * factorial(a) * factorial(b))
+    return W
+
+
+@dataclass(frozen=True)
+class StepContext:
+    """What the built-in terms need besides the observation, for one step.
+
+    Attributes
+    ----------
+    command : numpy.ndarray
+        The last command (the efference copy), shape (n,).
+    precision : Mapping[str, numpy.ndarray]
+        The channels' precisions in force this step (learned, down-weighted where flagged).
+    attractor_velocity, attractor_jacobian : numpy.ndarray
+        ``f(q)`` (n,) and ``df/dq`` (n, n) of the goal's attractor at the believed posture.
+    """
+
+    command: np.ndarray
+    precision: Mapping[str, np.ndarray]
+    attractor_velocity: np.ndarray
+    attractor_jacobian: np.ndarray
+
+
+def _selection(n: int, size: int, order: int) -> np.ndarray:
+    G = np.zeros((n, size))
+    G[:, order * n : (order + 1) * n] = np.eye(n)
+    return G
+
+
+@dataclass(frozen=True)
+class EncoderChannel:
+    """Encoder readings of one generalized order: ``y = q^(order) + noise``.
+
+    ``joint_angle`` observes order 0, ``joint_velocity`` order 1; ``G`` selects that order.
+    """
+
+    name: str
+    observation: str
+    order: int
+    size: int
+    jacobian: np.ndarray
+
+    def evaluate(
+        self, obs: Mapping[str, Any], belief: np.ndarray, body: BodyState, context: StepContext
+    ) -> Term:
+        y = np.asarray(obs[self.observation], dtype=float)
+        return Term(y - belief[self.order], self.jacobian, context.precision[self.name])
+
+
+@dataclass(frozen=True)
+class CameraChannel:
+    """The tool tip's pixel on fresh frames where it is visible: ``y = pi(fk(q))``.
+
+    ``G = d pi / d x . J(q)`` on order 0 (:func:`blanket.description.pinhole_projection`).
+    """
+
+    camera: CameraDescription
+    belief_size: int
+    size: int = 2
+    name: str = "camera"
+
+    def evaluate(
+        self, obs: Mapping[str, Any], belief: np.ndarray, body: BodyState, context: StepContext
+    ) -> Term | None:
+        if not (obs.get("camera_fresh", 0) and obs.get("tip_visible", 0)):
+            return None
+        pixel, dpix = self.camera.project_with_jacobian(body.tip_position_m)
+        n = belief.shape[1]
+        G = np.zeros((2, self.belief_size))
+        G[:, :n] = dpix @ body.tip_jacobian
+        y = np.asarray(obs["tip_pixel_px"], dtype=float)
+        return Term(y - pixel, G, context.precision[self.name])
+
+
+@dataclass(frozen=True)
+class EfferenceCopy:
+    """Velocity motors track the last command: ``a = q' + noise`` (order 1)."""
+
+    size: int
+    jacobian: np.ndarray
+    precision: np.ndarray
+    name: str = "motor"
+
+    def evaluate(
+        self, obs: Mapping[str, Any], belief: np.ndarray, body: BodyState, context: StepContext
+    ) -> Term:
+        return Term(context.command - belief[1], self.jacobian, self.precision)
+
+
+@dataclass(frozen=True)
+class AttractorPrior:
+    """The goal as prior dynamics (``goal="prior"``); the error is ``0 - (D z - f(z))``.
+
+    Velocity control: ``e = f(q) - q'``, ``G = [-F, I, 0, ...]``. Torque control:
+    ``e = k_v (f(q) - q') - q''``, ``G = [-k_v F, k_v I, I, 0, ...]``; its precision is
+    scaled by ``1 / k_v^2`` so the goal weighs on the velocity belief as under velocity
+    control. ``F`` is the attractor's Gauss-Newton Jacobian.
+    """
+
+    size: int
+    belief_size: int
+    velocity_gain: float | None  # None: velocity control
+    precision: np.ndarray
+    name: str = "goal"
+
+    def evaluate(
+        self, obs: Mapping[str, Any], belief: np.ndarray, body: BodyState, context: StepContext
+    ) -> Term:
+        n = self.size
+        f, F = context.attractor_velocity, context.attractor_jacobian
+        G = np.zeros((n, self.belief_size))
+        if self.velocity_gain is None:
+            G[:, :n] = -F
+            G[:, n : 2 * n] = np.eye(n)
+            return Term(f - belief[1], G, self.precision)
+        kv = self.velocity_gain
+        G[:, :n] = -kv * F
+        G[:, n : 2 * n] = kv * np.eye(n)
+        G[:, 2 * n : 3 * n] = np.eye(n)
+        return Term(kv * (f - belief[1]) - belief[2], G, self.precision)
+
+
+@dataclass(frozen=True, eq=False)
+class GenerativeModel:
+    """The arm agent's generative model (immutable; build with :meth:`from_description`).
+
+    Attributes
+    ----------
+    description : ArmDescription
+        The env's static description the model was built from.
+    options : dict
+        The resolved :class:`AgentOptions`.
+    body : blanket.body.ArmModel
+        Kinematics and dynamics of the believed body (pinocchio, from the URDF).
+    n, order, size : int
+        Joints, embedding order ``p`` and belief length ``(p + 1) n``.
+    dt : float
+        Control period (s).
+    transition : numpy.ndarray
+        Generalized motion over ``dt`` for one joint, (p+1, p+1); ``transition_full`` is its
+        ``kron`` with ``I_n``.
+    motion_noise : numpy.ndarray
+        Covariance ``W`` of the generalized motion's noise over ``dt``, (N, N).
+    precision : dict
+        Nominal precisions of the monitored channels (``joint_angle``, ``joint_velocity``,
+        ``camera``); ``motor_precision`` and ``goal_precision`` those of the efference copy
+        and the goal.
+    channels : tuple
+        The built-in terms (:class:`~blanket.model.ModelTerm`), in assembly order.
+    extra_terms : tuple
+        The user's terms, assembled after the built-in ones.
+    goal_mode : int
+        0 no goal in the belief (``goal="reference"``), 1 velocity attractor prior, 2
+        acceleration attractor prior (torque control).
+    precision_changing : bool
+        Whether precisions change during an episode (learning or fault down-weighting).
+    """
+
+    description: ArmDescription
+    options: dict[str, Any]
+    body: Any
+    n: int
+    order: int
+    size: int
+    dt: float
+    control: str
+    camera: CameraDescription | None
+    transition: np.ndarray
+    transition_full: np.ndarray
+    motion_noise: np.ndarray
+    precision: dict[str, np.ndarray]
+    motor_precision: float
+    goal_precision: float
+    channels: tuple[Any, ...]
+    extra_terms: tuple[ModelTerm, ...]
+    goal_mode: int
+    precision_changing: bool
+    fault_threshold: dict[str, float]
+    fault_alpha: float
+    kernel_constants: np.ndarray = field(repr=False)
+    camera_pose: np.ndarray = field(repr=False)
+    camera_intrinsics: np.ndarray = field(repr=False)
+    limits: np.ndarray = field(repr=False)
+
+    @classmethod
+    def from_description(
+        cls,
+        description: ArmDescription,
+        extra_terms: Sequence[ModelTerm] = (),
+        **options: Any,
+    ) -> GenerativeModel:
+        """Build the model from an env's static description and :class:`AgentOptions`."""
+        from blanket.body import ArmModel
+
+        opts = AgentOptions.resolve(options)
+        for term in extra_terms:
+            if not isinstance(term, ModelTerm):
+                raise ConfigError(
+                    f"extra term {shorten(term)} is not a ModelTerm (needs name, size, evaluate)"
+                )
+        body = ArmModel.from_urdf(
+            description.urdf_path,
+            description.end_effector,
+            joint_names=description.joint_names,
+            length_scale=float(opts["length_scale"]),
+            mass_scale=float(opts["mass_scale"]),
+            payload_kg=float(opts["payload_kg"]),
+        )
+        n = description.n_joints
+        p = opts["order"]
+        N = (p + 1) * n
+        dt = description.control_dt
+        camera = description.camera
+        control = description.control
+
+        sq = max(description.encoder_angle_noise_rad, 1e-6)
+        sv = max(description.encoder_velocity_noise_rad_s, 1e-6)
+        precision = {
+            "joint_angle": np.full(n, opts["joint_angle_precision"] or 1.0 / sq**2),
+            "joint_velocity": np.full(n, opts["joint_velocity_precision"] or 1.0 / sv**2),
+            "camera": np.full(
+                2,
+                opts["camera_precision"]
+                or (1.0 / max(camera.pixel_noise_px, 1e-3) ** 2 if camera else 0.0),
+            ),
+        }
+        # In goal="prior" mode a tight efference copy would leave the goal only the position
+        # belief to pull on (measured: 27x the EKF's error), so the copy is looser there.
+        motor_sd = MOTOR_TRACKING_SD_RAD_S if opts["goal"] == "reference" else 0.5 * sv
+        motor_precision = float(opts["motor_precision"] or 1.0 / motor_sd**2)
+        goal_precision = float(opts["goal_precision"] or 1.0 / sv**2)
+
+        phi_t = generalized_motion(p, dt, opts["integration"])
+        w_t = jerk_covariance(p, dt, float(opts["jerk_intensity"]))
+        w_t += np.diag(np.full(p + 1, 1e-12))
+        eye = np.eye(n)
+
+        kv = float(opts["velocity_gain_1_s"])
+        channels: list[Any] = [
+            EncoderChannel("joint_angle", "joint_angle_rad", 0, n, _selection(n, N, 0)),
+            EncoderChannel("joint_velocity", "joint_velocity_rad_s", 1, n, _selection(n, N, 1)),
+        ]
+        if camera is not None:
+            channels.append(CameraChannel(camera, N))
+        pm = 0.0
+        if control == "velocity":
+            pm = motor_precision
+            channels.append(EfferenceCopy(n, _selection(n, N, 1), np.full(n, pm)))
+        if opts["goal"] == "reference":
+            goal_mode, pg = 0, 0.0
+        elif control == "velocity":
+            goal_mode, pg = 1, goal_precision
+            channels.append(AttractorPrior(n, N, None, np.full(n, pg)))
+        else:
+            goal_mode, pg = 2, goal_precision / kv**2
+            channels.append(AttractorPrior(n, N, kv, np.full(n, pg)))
+
+        fault_alpha = 1.0 - np.exp(-dt / float(opts["fault_window_s"]))
+        w_eff = max(1.0, 2.0 / fault_alpha - 1.0)  # effective samples of the EWMA
+        fault_threshold = {
+            # Innovation test (Bar-Shalom, Li & Kirubarajan 2001, sec. 5.4.2): the windowed
+            # mean of normalized innovations is ~ chi2(w m) / w under no fault.
+            name: chdtri(w_eff * dof, float(opts["fault_false_alarm"])) / w_eff
+            for name, dof in (("joint_angle", 1), ("joint_velocity", 1), ("camera", 2))
+        }
+        constants = np.array(
+            [
+                pm,
+                pg,
+                kv,
+                float(opts["divergence_limit"]),
+                opts["attractor_gain_1_s"],
+                opts["max_tip_speed_m_s"],
+                opts["damping_m"] ** 2,
+                opts["posture_gain_1_s"],
+                1.0 if opts["joint_limit_weighting"] else 0.0,
+            ],
+            dtype=float,
+        )
+        if camera is not None:
+            pose = np.ascontiguousarray(camera.base_from_camera, dtype=float)
+            intrinsics = np.array([camera.fx_px, camera.fy_px, camera.cx_px, camera.cy_px])
+        else:
+            pose, intrinsics = np.eye(4), np.ones(4)
+        limits = np.ascontiguousarray(
+            np.stack(
+                [
+                    np.asarray(description.lower_rad, dtype=float),
+                    np.asarray(description.upper_rad, dtype=float),
+                ]
+            )
+        )
+        return cls(
+            description=description,
+            options=opts,
+            body=body,
+            n=n,
+            order=p,
+            size=N,
+            dt=dt,
+            control=control,
+            camera=camera,
+            transition=phi_t,
+            transition_full=np.kron(phi_t, eye),
+            motion_noise=np.kron(w_t, eye),
+            precision=precision,
+            motor_precision=motor_precision,
+            goal_precision=goal_precision,
+            channels=tuple(channels),
+            extra_terms=tuple(extra_terms),
+            goal_mode=goal_mode,
+            precision_changing=bool(opts["learn_precision"] or opts["fault_detection"]),
+            fault_threshold=fault_threshold,
+            fault_alpha=float(fault_alpha),
+            kernel_constants=constants,
+            camera_pose=pose,
+            camera_intrinsics=intrinsics,
+            limits=limits,
+        )
+
+    @property
+    def terms(self) -> tuple[Any, ...]:
+        """Every term, built-in channels first, then the user's."""
+        return self.channels + self.extra_terms
+
+    @property
+    def channel_names(self) -> tuple[str, ...]:
+        """Names of the built-in channels, in the order of the logs' prediction errors."""
+        names = ["joint_angle", "joint_velocity"]
+        if self.control == "velocity":
+            names.append("motor")
+        if self.goal_mode:
+            names.append("goal")
+        if self.camera is not None:
+            names.append("camera")
+        return tuple(names)
