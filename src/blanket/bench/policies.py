@@ -187,17 +187,38 @@ class ClassicalReach:
 
     def reference_velocity(self, q: np.ndarray, target: np.ndarray) -> np.ndarray:
         """``qd_ref`` of the module docstring at joint angles ``q``."""
+        from blanket.agent.attractor import damped_least_squares_attractor
+
         g = self.gains
+        q = np.asarray(q, dtype=float)
         x, J = self.body.tip_position_and_jacobian(q)
-        v = g["tip_gain_1_s"] * (np.asarray(target, float) - x)
-        speed = float(np.linalg.norm(v))
-        if speed > g["max_tip_speed_m_s"]:
-            v *= g["max_tip_speed_m_s"] / speed
-        JJt = J @ J.T + g["damping_m"] ** 2 * np.eye(3)
-        J_pinv = J.T @ np.linalg.solve(JJt, np.eye(3))
-        null = np.eye(self.n) - J_pinv @ J
         home = q if self._home is None else self._home
-        return J_pinv @ v + g["posture_gain_1_s"] * (null @ (home - q))
+        params = np.array(
+            [
+                g["tip_gain_1_s"],
+                g["max_tip_speed_m_s"],
+                g["damping_m"] ** 2,
+                g["posture_gain_1_s"],
+                0.0,
+            ]
+        )
+        f, F = np.empty(self.n), np.empty((self.n, self.n))
+        unused = np.zeros(self.n)  # joint-limit weighting is off for this baseline
+        if not damped_least_squares_attractor(
+            np.ascontiguousarray(J),
+            x,
+            np.asarray(target, float),
+            np.zeros(3),
+            q,
+            home,
+            unused,
+            unused,
+            params,
+            f,
+            F,
+        ):
+            raise np.linalg.LinAlgError("damped Jacobian product is not positive definite")
+        return f
 
     def act(self, obs: Mapping[str, Any]) -> np.ndarray:
         """Filter the encoders and return the next command."""
