@@ -486,3 +486,43 @@ def test_bench_reports_the_beliefs_consistency():
     agg = aggregate([honest, shrunk])
     assert agg["belief_nees_max"] == pytest.approx(shrunk["belief_nees"])
     assert agg["belief_consistent_rate"] == 0.5
+
+
+class RecklessPolicy:
+    """Commands ``factor`` times the env's joint velocity bounds (the URDF's), alternating signs
+    per joint: what a diverged controller might send (used by the test below, by import path).
+    100x is far beyond the safety profile's "diverging controller" stop; 5x is clamped."""
+
+    control = "velocity"
+    factor = 100.0
+
+    def __init__(self, env):
+        high = np.asarray(env.action_space.high, dtype=float)
+        self.command = self.factor * high * np.where(np.arange(high.size) % 2, -1.0, 1.0)
+
+    def act(self, obs):
+        return self.command
+
+
+class FastPolicy(RecklessPolicy):
+    factor = 5.0
+
+
+def test_bench_applies_the_safety_limits_to_every_policy(tmp_path):
+    # The same safety wrapper as `run`: commands of 100x the limits stop the arm, 5x are
+    # clamped, and every true joint speed stays within 5 % of the profile (README, "What the
+    # profile guarantees").
+    from blanket.bench.suite import BenchSettings, run_benchmark
+
+    settings = BenchSettings.from_cli(
+        policies=["test_bench:RecklessPolicy", "test_bench:FastPolicy", "classical"],
+        conditions=["nominal"],
+        episodes=1,
+        robot="iiwa",
+        episode_s=1.0,
+    )
+    records = run_benchmark(settings, tmp_path, progress=False)["records"]
+    peaks = {r["policy"]: r["peak_joint_speed_ratio"] for r in records}
+    assert 0.0 <= peaks["test_bench:RecklessPolicy"] <= 1.05
+    assert 0.9 < peaks["test_bench:FastPolicy"] <= 1.05  # driven at the limit, not beyond
+    assert 0.0 < peaks["classical"] <= 1.05
