@@ -17,7 +17,7 @@ from typing import Any
 
 from blanket.cli_types import positive_int as _positive_int
 from blanket.cli_types import seed as _seed
-from blanket.errors import ConfigError
+from blanket.errors import ConfigError, shorten
 
 __all__ = ["main", "SAFETY_NOTE"]
 
@@ -90,7 +90,7 @@ def build_parser() -> argparse.ArgumentParser:
     )
     demo.add_argument(
         "--control",
-        default="velocity",
+        default=None,
         metavar="MODE",
         help="velocity or torque (arms only; default velocity)",
     )
@@ -119,14 +119,20 @@ def _demo_scenario(args: argparse.Namespace) -> Any:
 
     robot = args.robot
     if robot in ARM_ROBOTS:
-        if args.control not in ("velocity", "torque"):
-            raise ConfigError(f"--control must be velocity or torque, got {args.control!r}")
+        control = args.control or "velocity"
+        if control not in ("velocity", "torque"):
+            raise ConfigError(f"--control must be velocity or torque, got {shorten(control)}")
         return Scenario(
             env="blanket/arm-reach-v0",
-            env_options={"robot": robot, "control": args.control},
-            name=f"greenhouse-bench-{robot}-{args.control}",
+            env_options={"robot": robot, "control": control},
+            name=f"greenhouse-bench-{robot}-{control}",
         )
     if robot in BASE_ROBOTS:
+        if args.control is not None:
+            raise ConfigError(
+                f"--control applies to the arms ({', '.join(ARM_ROBOTS)}); the {robot} takes "
+                "wheel speeds: leave --control out"
+            )
         return Scenario(
             env="blanket/base-goto-v0",
             env_options={"robot": robot},
@@ -170,6 +176,11 @@ def _print_summary(summary: dict[str, Any], out_dir: Path) -> None:
     for k, v in rows:
         print(f"  {k:<{width}}  {v}")
     print(f"\n  run folder: {out_dir}")
+    figure = out_dir / "figures" / "reach.png"
+    if figure.is_file():
+        print(f"  figure:     {figure}")
+    if (out_dir / "episodes").is_dir():
+        print(f"  next:       blanket inspect {out_dir}    blanket plot {out_dir}")
 
 
 def _run(args: argparse.Namespace) -> int:

@@ -306,9 +306,10 @@ def run_scenario(
         summary = summarize(results)
         if out_dir is not None:
             (out_dir / "summary.json").write_text(json.dumps(summary, indent=2) + "\n")
+            (out_dir / "figures").mkdir(exist_ok=True)
             write_figure(
                 results,
-                out_dir / "reach.png",
+                out_dir / "figures" / "reach.png",
                 f"{scenario.name}: {scenario.env}",
                 tolerance_m=_tolerance_m(env),
             )
