@@ -526,3 +526,19 @@ def test_bench_applies_the_safety_limits_to_every_policy(tmp_path):
     assert 0.0 <= peaks["test_bench:RecklessPolicy"] <= 1.05
     assert 0.9 < peaks["test_bench:FastPolicy"] <= 1.05  # driven at the limit, not beyond
     assert 0.0 < peaks["classical"] <= 1.05
+
+
+def test_default_policies_left_out_are_named_with_the_reason(monkeypatch):
+    from blanket.bench import rl
+    from blanket.bench.report import markdown_report
+    from blanket.bench.suite import BenchSettings
+
+    monkeypatch.setattr(rl, "sb3_available", lambda: False)
+    quick = BenchSettings.from_cli(quick=True)
+    assert "sac" not in quick.policies
+    assert any(x.startswith("sac: stable-baselines3 is not installed") for x in quick.left_out)
+    full = BenchSettings.from_cli(rl_models=None)
+    assert any(x.startswith("ppo: no ppo.zip") for x in full.left_out)
+    from dataclasses import asdict
+
+    assert "left out sac: stable-baselines3" in markdown_report([], asdict(quick), {}, 1.0)

@@ -91,6 +91,10 @@ def markdown_report(
             + (f" Wall time {wall_s:.0f} s." if wall_s is not None else "")
         )
         lines.append("")
+        for line in s.get("left_out") or []:
+            lines.append(f"- left out {line}")
+        if s.get("left_out"):
+            lines.append("")
     lines += [
         "Every policy commands through the safety wrapper `blanket run` uses (SafetyLimits "
         "with the arm's profile, outermost, around the condition's perturbations).",

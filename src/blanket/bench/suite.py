@@ -37,6 +37,8 @@ class BenchSettings:
     rl_models: str | None = None
     quick: bool = False
     smoke_rl: bool = False
+    #: Policies the defaults left out, each with the reason (printed and kept in bench.json).
+    left_out: list[str] = field(default_factory=list)
 
     @classmethod
     def from_cli(
@@ -57,7 +59,9 @@ class BenchSettings:
 
         smoke = False
         have = _available_rl(rl_models)
+        left_out: list[str] = []
         if policies is None:
+            rl = [p for p in DEFAULT_POLICIES if POLICIES[p].rl_algo is not None]
             if quick:
                 policies = list(QUICK_POLICIES)
                 if have:
@@ -65,8 +69,20 @@ class BenchSettings:
                 elif sb3_available():
                     policies.append("sac")
                     smoke = True
+                    left_out.append("ppo: --quick trains a SAC smoke model only")
+                else:
+                    left_out += [
+                        f"{p}: stable-baselines3 is not installed (pip install -e '.[rl]')"
+                        for p in rl
+                    ]
             else:
                 policies = [p for p in DEFAULT_POLICIES if POLICIES[p].rl_algo is None] + have
+            if not quick:
+                left_out += [
+                    f"{p}: no {p}.zip in --rl-models (train one with blanket train-rl)"
+                    for p in rl
+                    if p not in have
+                ]
         for name in policies:
             spec = resolve_policy(name)  # fail early on a bad name
             if spec.rl_algo is not None and not smoke and spec.rl_algo not in have:
@@ -84,6 +100,7 @@ class BenchSettings:
             rl_models=rl_models,
             quick=quick,
             smoke_rl=smoke,
+            left_out=left_out,
         )
 
 
@@ -122,6 +139,9 @@ def run_benchmark(
     out.mkdir(parents=True, exist_ok=True)
     start = time.perf_counter()
     context: dict[str, Any] = {"rl_models": settings.rl_models, "rl_meta": {}}
+    if progress:
+        for line in settings.left_out:
+            print(f"  left out {line}", flush=True)
     if settings.smoke_rl:
         from blanket.bench.rl import TrainSettings, train
 
