@@ -275,7 +275,7 @@ def run_scenario(
     """Run a scenario end to end: env, agent, episodes, logs, ``summary.json``, figure."""
     from blanket.conditions import apply_conditions, condition_env_options
 
-    conditions = getattr(scenario, "conditions", None) or {}
+    conditions = scenario.conditions
     env = make_env(scenario.env, {**scenario.env_options, **condition_env_options(conditions)})
     try:
         env, model_options = apply_conditions(env, conditions)
