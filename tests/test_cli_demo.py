@@ -19,3 +19,51 @@ def test_control_is_refused_for_the_bases(capsys):
     assert len(err.splitlines()) == 1 and "--control" in err and "Traceback" not in err
     assert main(["demo", "--control", "x" * 500]) == 2
     assert len(capsys.readouterr().err) < 200  # a long value is cut
+
+
+def test_scenarios_lists_and_copies_a_runnable_scenario(tmp_path, capsys, monkeypatch):
+    from blanket.scenario import builtin_scenarios
+
+    assert main(["scenarios"]) == 0
+    listed = capsys.readouterr().out
+    assert all(name in listed for name in builtin_scenarios())
+    monkeypatch.chdir(tmp_path)
+    assert main(["scenarios", "copy", "potting-arm-3dof", "mine.toml"]) == 0
+    assert "blanket run mine.toml" in capsys.readouterr().out
+    assert (tmp_path / "potting_arm_3dof.urdf").is_file()
+    # refused the second time (no silent overwrite), with a did-you-mean for a typo
+    assert main(["scenarios", "copy", "potting-arm-3dof", "mine.toml"]) == 2
+    assert main(["scenarios", "copy", "potting-arm"]) == 2
+    assert "did you mean potting-arm-3dof" in capsys.readouterr().err
+    # the copy runs as it is, from another folder too (its URDF is found beside it)
+    (tmp_path / "sub").mkdir()
+    monkeypatch.chdir(tmp_path / "sub")
+    # (--out absolute: the log writer's helper process keeps the cwd it started in)
+    args = ["run", "../mine.toml", "--episodes", "1", "--out", str(tmp_path / "r"), "--quiet"]
+    assert main(args) == 0
+    printed = capsys.readouterr().out
+    assert "free energy, median (settled level)" in printed
+
+
+def test_inspect_gives_cm_and_the_median_free_energy(tmp_path, capsys):
+    import json
+
+    import numpy as np
+
+    from blanket.logs import read_run
+
+    out = tmp_path / "run"
+    assert main(["demo", "--robot", "iiwa", "--episodes", "1", "--out", str(out), "--quiet"]) == 0
+    summary = json.loads((out / "summary.json").read_text())
+    free_energy = read_run(out)["internal.free_energy"].to_numpy(float)
+    # the median of the logged column; the mean is far above it (the first steps' transient)
+    episode = summary["per_episode"][0]
+    assert episode["median_free_energy"] == np.median(free_energy[np.isfinite(free_energy)])
+    assert episode["mean_free_energy"] > episode["median_free_energy"] + 10
+    capsys.readouterr()
+    assert main(["inspect", str(out)]) == 0
+    text = capsys.readouterr().out
+    assert "final_error_cm" in text and "median_free_energy" in text
+    assert "mean_free_energy" not in text
+    cm = 100.0 * summary["final_error_m"]
+    assert f"median final error {cm:.3g} cm" in text

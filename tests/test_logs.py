@@ -782,7 +782,7 @@ def test_cli_inspect_prints_and_refuses_bad_folders(tmp_path: Path, capsys) -> N
     args = parser.parse_args(["inspect", str(tmp_path / "run"), "--csv", str(tmp_path / "s.csv")])
     assert args.handler(args) == 0
     out = capsys.readouterr().out
-    assert "episode" in out and "final_error_m" in out
+    assert "episode" in out and "final_error_cm" in out
     assert pd.read_csv(tmp_path / "s.csv")["steps"].tolist() == [10, 10]
     (tmp_path / "empty").mkdir()
     with pytest.raises(ValueError, match="no episode files"):

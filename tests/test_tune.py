@@ -576,3 +576,36 @@ def test_tuned_precisions_beat_defaults_on_held_out_seeds(tmp_path):
     )
     assert best["success_rate"] >= default["success_rate"]
     assert best["final_error_m"] < 0.6 * default["final_error_m"]
+
+
+def test_old_free_energy_objective_reads_as_the_median():
+    # the mean was dominated by the first steps' transient (issue: peak 2e4, median -83)
+    assert parse_objective("min:mean_free_energy").metric == "median_free_energy"
+    assert parse_objective("min:median_free_energy").text == "min:median_free_energy"
+
+
+def test_best_toml_names_the_urdf_relative_to_itself(tmp_path):
+    from blanket.scenario import copy_scenario
+
+    tree = tmp_path / "project"
+    scenario_file = copy_scenario("potting-arm-3dof", tree / "scenario" / "arm.toml")
+    scenario = load_scenario(scenario_file)
+    scenario.env_options["episode_s"] = 0.25
+    res = run_sweep(
+        scenario,
+        [parse_vary("agent.goal_precision=1")],
+        seeds=[0],
+        objective="min:median_free_energy",
+        out_dir=tree / "sweep",
+        progress=False,
+        workers=1,
+        plots=False,
+    )
+    assert math.isfinite(res.table["metric.median_free_energy"].iloc[0])
+    text = res.files["best"].read_text()
+    assert str(tmp_path) not in text  # no absolute path
+    assert tomllib.loads(text)["env_options"]["urdf"] == "../scenario/potting_arm_3dof.urdf"
+    moved = tmp_path / "elsewhere"
+    tree.rename(moved)  # the folders move together: best.toml still finds its URDF
+    best = load_scenario(moved / "sweep" / "best.toml")
+    assert Path(best.env_options["urdf"]) == (moved / "scenario" / "potting_arm_3dof.urdf")

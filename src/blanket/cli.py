@@ -1,6 +1,7 @@
 """The ``blanket`` command.
 
 Sub-commands: ``demo`` (the built-in greenhouse scenario), ``run`` (a scenario file),
+``scenarios`` (list the built-in scenario files, copy one to edit),
 ``plot`` and ``inspect`` (run folders), ``bench`` (benchmark against baselines), ``tune``
 (precision sweeps), ``train-rl`` (RL baselines). Bad input prints one line and exits 2.
 """
@@ -105,6 +106,20 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("scenario", metavar="SCENARIO.toml")
     _add_run_options(run, episodes_default=None)
 
+    scenarios = sub.add_parser(
+        "scenarios",
+        help="list the built-in scenario files, or copy one here to edit and run",
+        description="Without arguments: list the scenario files that come with blanket. "
+        "'copy NAME [DEST]' writes one (and the URDF it names, beside it) to DEST: a folder "
+        "(default: the current one) or a file name ending in .toml; then "
+        "'blanket run DEST' runs it as it is.",
+        epilog=SAFETY_NOTE,
+    )
+    scenarios.add_argument("action", nargs="?", choices=("list", "copy"), default="list")
+    scenarios.add_argument("name", nargs="?", metavar="NAME", help="a built-in scenario")
+    scenarios.add_argument("dest", nargs="?", default=".", metavar="DEST", help="folder or .toml")
+    scenarios.add_argument("--overwrite", action="store_true", help="replace existing files")
+
     for module, add_name, _run_name in _EXTERNAL.values():
         try:
             mod = importlib.import_module(module)
@@ -156,6 +171,7 @@ def _print_summary(summary: dict[str, Any], out_dir: Path) -> None:
         (f"reached (held {HOLD_S:g} s)", f"{summary['success_rate'] * 100:.0f} %"),
         ("final error, median", fmt(summary["final_error_m"], " cm", 100.0)),
         ("time to reach, median", fmt(summary["time_to_success_s"], " s")),
+        ("free energy, median (settled level)", fmt(summary.get("median_free_energy"))),
         ("agent step, median", fmt(summary["agent_step_us"], " us", digits=1)),
         # timed by the rollout loop around env.step: simulation, sensors and wrappers
         ("env step (sim, sensors, wrappers), median", fmt(summary["sim_step_us"], " us", digits=1)),
@@ -207,12 +223,33 @@ def _run(args: argparse.Namespace) -> int:
     return 0
 
 
+def _scenarios(args: argparse.Namespace) -> int:
+    from blanket.scenario import builtin_scenarios, copy_scenario, scenario_summary
+
+    found = builtin_scenarios()
+    if args.action == "list":
+        if args.name is not None:
+            raise ConfigError("blanket scenarios list takes no NAME; to copy: scenarios copy NAME")
+        for name, path in found.items():
+            print(f"  {name}\n      {scenario_summary(path)}")
+        print("\n  copy one here to edit and run: blanket scenarios copy NAME [DEST]")
+        return 0
+    if args.name is None:
+        raise ConfigError(f"scenarios copy needs a NAME, one of {', '.join(found)}")
+    target = copy_scenario(args.name, args.dest, overwrite=args.overwrite)
+    print(f"  wrote {target} (and the files it names, beside it)")
+    print(f"  run it: blanket run {target}")
+    return 0
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     try:
         if args.command in ("demo", "run"):
             return _run(args)
+        if args.command == "scenarios":
+            return _scenarios(args)
         module, _add, run_name = _EXTERNAL[args.command]
         return int(getattr(importlib.import_module(module), run_name)(args) or 0)
     except KeyboardInterrupt:

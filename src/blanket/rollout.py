@@ -116,6 +116,10 @@ class EpisodeResult:
     contact: bool = False
     safe_stop: bool = False
     trace: dict[str, np.ndarray] = field(default_factory=dict, repr=False)
+    #: Median of the free energy over the episode's steps: the settled level. The mean
+    #: (``mean_free_energy``) is dominated by the first steps, where the belief meets its
+    #: first sensations (one episode: peak 2e4, median -83, mean -21).
+    median_free_energy: float | None = None
 
     def to_dict(self) -> dict[str, Any]:
         """The JSON form (``summary.json``'s ``per_episode``, a log's episode metadata)."""
@@ -129,6 +133,7 @@ class EpisodeResult:
             "steps": self.steps,
             "agent_step_us": self.agent_step_us,
             "sim_step_us": self.sim_step_us,
+            "median_free_energy": self.median_free_energy,
             "mean_free_energy": self.mean_free_energy,
             "contact": self.contact,
             "safe_stop": self.safe_stop,
@@ -380,6 +385,12 @@ def _mean_known(values: list[float]) -> float | None:
     return float(np.nanmean(array)) if (~np.isnan(array)).any() else None
 
 
+def _median_known(values: list[float]) -> float | None:
+    """Median over the steps that reported a value; None when none did."""
+    array = np.asarray(values, dtype=float)
+    return float(np.nanmedian(array)) if (~np.isnan(array)).any() else None
+
+
 def _episode(
     env: Any, policy: PolicyAdapter, seed: int | None, episode: int, observers: list[Observer]
 ) -> EpisodeResult:
@@ -476,6 +487,7 @@ def _episode(
         agent_step_us=float(np.median(agent_us)),
         sim_step_us=float(np.median(env_us)),
         mean_free_energy=_mean_known(energy),
+        median_free_energy=_median_known(energy),
         final_heading_error_rad=None if final_heading is None else abs(float(final_heading)),
         contact=contact,
         safe_stop=safe_stop,

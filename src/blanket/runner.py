@@ -106,6 +106,9 @@ def summarize(results: list[EpisodeResult]) -> dict[str, Any]:
         "time_to_success_s": _median([r.time_to_success_s for r in results if r.success]),
         "agent_step_us": _median([r.agent_step_us for r in results]),
         "sim_step_us": _median([r.sim_step_us for r in results]),
+        # the median over episodes of each episode's median: the settled level, which the
+        # first steps' transient (the belief meeting its first sensations) does not move
+        "median_free_energy": _median([r.median_free_energy for r in results]),
         "contact_rate": sum(r.contact for r in results) / len(results) if results else 0.0,
         "safe_stops": sum(r.safe_stop for r in results),
     }

@@ -31,6 +31,9 @@ from __future__ import annotations
 
 import importlib
 import inspect
+import os
+import re
+import shutil
 import tomllib
 from collections.abc import Mapping
 from dataclasses import dataclass, field
@@ -43,7 +46,16 @@ import numpy as np
 from blanket.conditions import check_conditions, condition_env_options, condition_model_options
 from blanket.errors import ConfigError, did_you_mean
 
-__all__ = ["Scenario", "load_scenario", "load_object", "env_option_names", "make_env"]
+__all__ = [
+    "Scenario",
+    "load_scenario",
+    "load_object",
+    "env_option_names",
+    "make_env",
+    "builtin_scenarios",
+    "copy_scenario",
+    "scenario_summary",
+]
 
 _TOP_KEYS = {"name": str, "env": str, "episodes": int, "seed": int}
 _TABLES = ("env_options", "agent", "conditions")
@@ -71,8 +83,19 @@ class Scenario:
     source: str | None = None
     conditions: dict[str, Any] = field(default_factory=dict)
 
-    def to_toml(self) -> str:
-        """Render as TOML text that :func:`load_scenario` reads back."""
+    def to_toml(self, relative_to: str | Path | None = None) -> str:
+        """Render as TOML text that :func:`load_scenario` reads back.
+
+        With ``relative_to`` (the folder the file will be written to), file paths
+        (``env_options.urdf``) are written relative to it, so that the folder and the files
+        it names can move together.
+        """
+        if relative_to is not None:
+            options = dict(self.env_options)
+            for key in _PATH_OPTIONS:
+                if isinstance(options.get(key), str):
+                    options[key] = _relative_path(options[key], Path(relative_to))
+            return Scenario(**{**self.__dict__, "env_options": options}).to_toml()
         lines = [f"name = {_toml_value(self.name)}", f"env = {_toml_value(self.env)}"]
         if self.episodes is not None:
             lines.append(f"episodes = {self.episodes}")
@@ -88,6 +111,72 @@ class Scenario:
                 if v is not None:
                     lines.append(f"{k} = {_toml_value(v)}")
         return "\n".join(lines) + "\n"
+
+
+def _relative_path(path: str, folder: Path) -> str:
+    """``path`` relative to ``folder`` (forward slashes); absolute when no relative path
+    exists (another drive)."""
+    target = Path(path).expanduser()
+    if not target.is_absolute():
+        return path
+    try:
+        return Path(os.path.relpath(target, folder.resolve())).as_posix()
+    except ValueError:
+        return str(target)
+
+
+def builtin_scenarios() -> dict[str, Path]:
+    """The scenario files that come with blanket (``blanket_envs/scenarios``), by name."""
+    import blanket_envs
+
+    folder = Path(blanket_envs.__file__).parent / "scenarios"
+    return {p.stem: p for p in sorted(folder.glob("*.toml"))}
+
+
+def scenario_summary(path: Path) -> str:
+    """The first sentence of a scenario file's leading comment (its description), or ``""``."""
+    words: list[str] = []
+    for line in path.read_text(encoding="utf-8").splitlines():
+        if not line.startswith("#"):
+            break
+        words.append(line.lstrip("#").strip())
+    text = " ".join(words)
+    end = text.find(". ")
+    return text if end < 0 else text[: end + 1]
+
+
+def copy_scenario(name: str, dest: str | Path = ".", overwrite: bool = False) -> Path:
+    """Copy a built-in scenario and the files it names (its URDF) into ``dest``.
+
+    ``dest`` is a folder (the file keeps its name) or a ``.toml`` file name. The URDF goes
+    beside the copy, and the copy names it by a path relative to itself, so the folder runs
+    as it is and can move. Returns the path of the copied scenario file.
+    """
+    scenarios = builtin_scenarios()
+    if name not in scenarios:
+        raise ConfigError(f"scenario {name!r} is not built in; {did_you_mean(name, scenarios)}")
+    source = scenarios[name]
+    dest = Path(dest)
+    target = dest if dest.suffix == ".toml" else dest / source.name
+    text = source.read_text(encoding="utf-8")
+    data = tomllib.loads(text)
+    copies: list[tuple[Path, Path]] = []
+    for key in _PATH_OPTIONS:
+        value = data.get("env_options", {}).get(key)
+        if not isinstance(value, str) or Path(value).is_absolute():
+            continue
+        asset = (source.parent / value).resolve()
+        copies.append((asset, target.parent / asset.name))
+        line = re.compile(rf'^(\s*{key}\s*=\s*)"{re.escape(value)}"', re.M)
+        text = line.sub(lambda m, a=asset.name: f'{m.group(1)}"{a}"', text, count=1)
+    for path in [target, *(c[1] for c in copies)]:
+        if path.exists() and not overwrite:
+            raise ConfigError(f"{path} exists; choose another destination or pass --overwrite")
+    target.parent.mkdir(parents=True, exist_ok=True)
+    for asset, copy in copies:
+        shutil.copyfile(asset, copy)
+    target.write_text(text, encoding="utf-8")
+    return target
 
 
 def _toml_value(v: Any) -> str:

@@ -9,11 +9,14 @@ For each episode:
   true value in ``external.success`` (or ``sensory.success``), timed by the first such row;
   else the rule of :mod:`blanket.success` (held inside ``tolerance_m`` of the run metadata
   for ``blanket.success.HOLD_S``) applied to the logged distance; else unknown (``<NA>``);
-- ``final_error_m``: the last logged distance to the target, from
+- ``final_error_m``: the episode metadata's ``final_error_m`` (the distance after the last
+  step, as ``summary.json`` gives it); else the last logged distance to the target, from
   ``external.distance_m`` or computed as the Euclidean norm of
   ``external.tip_position_m - external.target_position_m`` (for a base: base position
   against the dock, in the x-y plane);
-- ``mean_free_energy``: mean of ``internal.free_energy`` (NaN without an agent);
+- ``median_free_energy``: median of ``internal.free_energy`` over the episode's rows, the
+  settled level (NaN without an agent); ``mean_free_energy``, the mean, is kept in the table
+  (and ``--csv``) but not printed: the first steps' transient dominates it;
 - ``belief_nees`` and ``belief``: how honest the agent's joint-angle belief was -- the mean
   normalized estimation error squared ``((belief - truth) / belief_sd)^2`` of the worst joint
   after the first :data:`blanket.consistency.SETTLE_S` (expected 1), and its verdict against
@@ -112,15 +115,21 @@ def _summarize_episode(
         "success": success,
         "time_to_success_s": time_to_success_s,
         "final_error_m": np.nan,
+        "median_free_energy": np.nan,
         "mean_free_energy": np.nan,
     }
-    if distance is not None:
+    reported = extra.get("final_error_m")
+    if isinstance(reported, (int, float)) and not isinstance(reported, bool):
+        # the rollout loop's own figure (after the last step, which has no row of its own)
+        row["final_error_m"] = float(reported)
+    elif distance is not None:
         finite = distance[np.isfinite(distance)]
         if finite.size:
             row["final_error_m"] = float(finite[-1])
     if "internal.free_energy" in frame.columns:
         values = pd.to_numeric(frame["internal.free_energy"], errors="coerce")
         if values.notna().any():
+            row["median_free_energy"] = float(values.median())
             row["mean_free_energy"] = float(values.mean())
     row["belief_nees"], row["belief"] = np.nan, "-"
     joints = _belief_joints(frame.columns)
@@ -209,7 +218,14 @@ def format_summary(table: pd.DataFrame, metadata: Mapping[str, Any], run_dir: Pa
         f"    blanket {versions.get('blanket')}",
         "",
     ]
-    shown = table.copy()
+    # as blanket demo prints them: distances in cm, the settled free energy (not the mean)
+    shown = table.drop(columns=["mean_free_energy"], errors="ignore")
+    if "final_error_m" in shown.columns:
+        shown.insert(
+            list(shown.columns).index("final_error_m"),
+            "final_error_cm",
+            shown.pop("final_error_m") * 100.0,
+        )
     shown["success"] = shown["success"].map(
         lambda v: "-" if v is pd.NA or pd.isna(v) else ("yes" if v else "no")
     )
@@ -230,7 +246,7 @@ def format_summary(table: pd.DataFrame, metadata: Mapping[str, Any], run_dir: Pa
         totals = "\n\nsuccess unknown (no success column and no tolerance_m in the metadata)"
     errors = table["final_error_m"].dropna()
     if len(errors):
-        totals += f"; median final error {errors.median():.3g} m"
+        totals += f"; median final error {100.0 * errors.median():.3g} cm"
     totals += _belief_line(table)
     return "\n".join(header) + body + totals
 

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import math
+import sys
 from typing import Any
 
 from blanket.cli_types import positive_int as _positive_int
@@ -32,7 +33,8 @@ objective.png. Running again with the same --out resumes: finished trials are no
 """
 
 _EPILOG = """\
-examples:
+examples (bench.toml: any scenario file; 'blanket scenarios copy potting-arm-3dof bench.toml'
+writes one to start from):
   blanket tune bench.toml --vary agent.camera_precision=log:0.01..100:5 \\
       --vary agent.goal_precision=log:0.1..10:5 --seeds 5 --objective min:time_to_success_s
   blanket tune bench.toml --vary agent.order=1,2,3 --vary agent.attractor_gain_1_s=lin:1..8:8
@@ -89,7 +91,8 @@ def add_tune_parser(sub: Any) -> argparse.ArgumentParser:
         metavar="DIR:METRIC",
         help="max:METRIC or min:METRIC, METRIC one of success_rate, final_error_m, "
         "time_to_success_s, contact_rate, safe_stops, final_heading_error_rad, "
-        "mean_free_energy (default max:success_rate; ties go to the higher success "
+        "median_free_energy (the settled level; the old name mean_free_energy is "
+        "read as it) (default max:success_rate; ties go to the higher success "
         "rate, then the lower final error)",
     )
     p.add_argument(
@@ -160,11 +163,15 @@ def _fmt(v: Any) -> str:
 def run_tune(args: argparse.Namespace) -> int:
     """Run the sweep ``args`` describe and print the best trials."""
     from blanket.scenario import load_scenario
-    from blanket.tune.search import parse_objective, run_sweep
+    from blanket.tune.search import OBJECTIVE_ALIASES, parse_objective, run_sweep
     from blanket.tune.space import parse_vary
 
     specs = [parse_vary(v) for v in args.vary]
     objective = parse_objective(args.objective)
+    old_name = args.objective.strip().partition(":")[2]
+    if old_name in OBJECTIVE_ALIASES:
+        new_name, why = OBJECTIVE_ALIASES[old_name]
+        print(f"blanket tune: note: {old_name} is read as {new_name} ({why})", file=sys.stderr)
     if args.search == "grid" and args.trials is not None:
         raise ConfigError("--trials applies to --search random or optuna; a grid runs every point")
     if args.address is not None and args.engine != "ray":

@@ -13,7 +13,6 @@ modules once and never connects. Each worker runs with one BLAS/OpenMP thread, s
 from __future__ import annotations
 
 import json
-import math
 import os
 import socket
 import time
@@ -149,15 +148,6 @@ def with_safety(env: Any) -> Any:
     return runner.with_safety(env)
 
 
-def _median(values: list[Any]) -> float | None:
-    vals = [float(v) for v in values if v is not None and math.isfinite(float(v))]
-    if not vals:
-        return None
-    vals.sort()
-    n = len(vals)
-    return vals[n // 2] if n % 2 else 0.5 * (vals[n // 2 - 1] + vals[n // 2])
-
-
 def evaluate_trial(payload: Mapping[str, Any]) -> dict[str, Any]:
     """Run one trial: the scenario with its overrides, one episode per seed.
 
@@ -171,7 +161,7 @@ def evaluate_trial(payload: Mapping[str, Any]) -> dict[str, Any]:
     -------
     dict
         ``index``, ``key``, ``overrides``, ``metrics`` (``blanket.runner.summarize`` minus its
-        timings, plus ``mean_free_energy``), ``per_seed`` (lists over seeds), ``timing``
+        timings), ``per_seed`` (lists over seeds), ``timing``
         (wall time and step medians, not reproducible) and ``error`` (a message or None).
     """
     from blanket.rollout import rollout
@@ -210,8 +200,7 @@ def evaluate_trial(payload: Mapping[str, Any]) -> dict[str, Any]:
     summary = summarize(results)
     from blanket.tune.search import METRICS
 
-    metrics = {k: summary.get(k) for k in METRICS if k != "mean_free_energy"}
-    metrics["mean_free_energy"] = _median([r.mean_free_energy for r in results])
+    metrics = {k: summary.get(k) for k in METRICS}
     out["metrics"] = metrics
     out["per_seed"] = {
         "seed": [r.seed for r in results],

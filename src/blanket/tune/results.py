@@ -258,6 +258,9 @@ def write_best(
         )
     path = Path(out) / BEST
     tmp = path.with_name(f".{path.name}.tmp")
-    tmp.write_text("\n".join(lines) + "\n" + best.to_toml(), encoding="utf-8")
+    # file paths relative to the sweep folder: best.toml keeps working when the folder moves
+    # together with the files it names (or is copied to another machine with them)
+    text = best.to_toml(relative_to=path.parent)
+    tmp.write_text("\n".join(lines) + "\n" + text, encoding="utf-8")
     tmp.replace(path)
     return path

@@ -24,6 +24,7 @@ from blanket.tune.space import ParameterSpec
 
 __all__ = [
     "METRICS",
+    "OBJECTIVE_ALIASES",
     "SEARCHES",
     "Objective",
     "parse_objective",
@@ -38,7 +39,8 @@ __all__ = [
 ]
 
 # Metrics of blanket.runner.summarize a sweep can optimise (timings are kept out: they are not
-# reproducible), plus the median over episodes of each episode's mean free energy.
+# reproducible), plus the median over episodes of each episode's median free energy (the
+# settled level; an episode's mean is dominated by its first steps' transient).
 METRICS = (
     "success_rate",
     "final_error_m",
@@ -46,8 +48,15 @@ METRICS = (
     "contact_rate",
     "safe_stops",
     "final_heading_error_rad",
-    "mean_free_energy",
+    "median_free_energy",
 )
+#: Old objective names still accepted, and the metric they now stand for (with the reason).
+OBJECTIVE_ALIASES = {
+    "mean_free_energy": (
+        "median_free_energy",
+        "the per-episode mean of the free energy was dominated by the first steps' transient",
+    ),
+}
 SEARCHES = ("grid", "random", "optuna")
 
 
@@ -82,13 +91,19 @@ class Objective:
 
 
 def parse_objective(text: str) -> Objective:
-    """Parse ``--objective``, e.g. ``max:success_rate`` or ``min:time_to_success_s``."""
+    """Parse ``--objective``, e.g. ``max:success_rate`` or ``min:time_to_success_s``.
+
+    A name of :data:`OBJECTIVE_ALIASES` (``mean_free_energy``) gives the metric it now stands
+    for (``median_free_energy``); ``blanket tune`` prints a note when it does.
+    """
     direction, sep, metric = text.strip().partition(":")
     if not sep or direction not in ("max", "min"):
         raise ConfigError(
             f"--objective must be max:METRIC or min:METRIC (e.g. min:time_to_success_s), "
             f"got {text!r}"
         )
+    if metric in OBJECTIVE_ALIASES:
+        metric = OBJECTIVE_ALIASES[metric][0]
     if metric not in METRICS:
         hint = did_you_mean(metric, METRICS, n=2)
         raise ConfigError(f"--objective metric {metric!r} is unknown; {hint}")
