@@ -67,3 +67,57 @@ def test_inspect_gives_cm_and_the_median_free_energy(tmp_path, capsys):
     assert "mean_free_energy" not in text
     cm = 100.0 * summary["final_error_m"]
     assert f"median final error {cm:.3g} cm" in text
+
+
+def test_progress_bar_gives_no_eta_from_a_slow_first_step():
+    # The first step of a first run loads (or compiles) the agent's kernel: seconds, while
+    # later steps take microseconds. An ETA from that step read "9 hours" for a 1-minute run.
+    import io
+    import time
+
+    import gymnasium as gym
+    import numpy as np
+
+    from blanket.rollout import Observer, ProgressBar, rollout
+
+    class Line(gym.Env):
+        metadata = {"control_hz": 10.0}
+        observation_space = gym.spaces.Box(-1.0, 1.0, (1,))
+        action_space = gym.spaces.Box(-1.0, 1.0, (1,))
+        max_steps = 400
+
+        def reset(self, *, seed=None, options=None):
+            super().reset(seed=seed)
+            self.k = 0
+            return np.zeros(1), {}
+
+        def step(self, action):
+            self.k += 1
+            return np.zeros(1), 0.0, False, self.k >= self.max_steps, {}
+
+    class SlowFirst:
+        def __init__(self):
+            self.calls = 0
+
+        def act(self, obs):
+            self.calls += 1
+            if self.calls == 1:
+                time.sleep(1.0)
+            return np.zeros(1)
+
+    bar = ProgressBar("tray", file=io.StringIO())
+    seen = {}
+
+    class Look(Observer):
+        def on_step(self, step):
+            if step.step in (0, 60) and step.step not in seen:
+                seen[step.step] = (str(bar.bar), bar.bar.format_dict)
+
+    rollout(Line(), SlowFirst(), 2, observers=[Look(), bar])
+    first_text, _ = seen[0]
+    assert "<" not in first_text  # no ETA shown right after the slow step
+    text, fmt = seen[60]
+    assert "<" in text
+    # remaining time from the steps after the first: far below the first step's 1 s per step
+    remaining = (fmt["total"] - fmt["n"]) / (fmt["n"] / max(fmt["elapsed"], 1e-9))
+    assert remaining < 0.1 * (fmt["total"] - fmt["n"])

@@ -266,13 +266,32 @@ class RunLog(Observer):
 
 
 class ProgressBar(Observer):
-    """A tqdm bar over the rollout's steps, with the count of episodes reached so far."""
+    """A tqdm bar over the rollout's steps, with the count of episodes reached so far.
 
-    def __init__(self, description: str = "episodes") -> None:
+    The first step can take seconds (the first run of the agent's compiled step loads or
+    compiles it), and a rate measured over it would give an ETA of hours. So the bar says
+    ``starting`` until that step is done, then measures time from there (the mean rate since
+    then, not a moving average) and shows an ETA once :attr:`WARM_STEPS` more steps have run.
+    """
+
+    #: Steps after the first before the bar shows an ETA.
+    WARM_STEPS = 50
+    _STARTING = (
+        "{desc}: {n_fmt}/{total_fmt} steps [starting: the first step loads the compiled agent]"
+    )
+    _WARMING = "{desc}: {percentage:3.0f}%|{bar}| {n_fmt}/{total_fmt} [{elapsed}{postfix}]"
+    _RUNNING = (
+        "{desc}: {percentage:3.0f}%|{bar}| {n_fmt}/{total_fmt} "
+        "[{elapsed}<{remaining}, {rate_fmt}{postfix}]"
+    )
+
+    def __init__(self, description: str = "episodes", file: Any = None) -> None:
         self.description = description
+        self.file = file
         self.bar: Any = None
         self._reached = 0
         self._done = 0
+        self._steps = 0
 
     def on_rollout_start(self, env: Any, policy: PolicyAdapter, episodes: int) -> None:
         from tqdm import tqdm
@@ -285,11 +304,22 @@ class ProgressBar(Observer):
             unit_scale=True,
             leave=False,
             dynamic_ncols=True,
+            smoothing=0,
+            bar_format=self._STARTING if steps else None,
+            file=self.file,
         )
-        self._reached = self._done = 0
+        self._reached = self._done = self._steps = 0
 
     def on_step(self, step: StepView) -> None:
-        self.bar.update()
+        bar = self.bar
+        self._steps += 1
+        if self._steps == 1 and bar.total:
+            # time from the end of the first step: restart the clock with that step counted
+            bar.bar_format = self._WARMING
+            bar.reset(total=bar.total)
+        elif self._steps == self.WARM_STEPS + 1 and bar.total:
+            bar.bar_format = self._RUNNING
+        bar.update()
 
     def on_episode_end(self, result: EpisodeResult) -> None:
         self._done += 1
