@@ -62,6 +62,11 @@ HOSTILE = {
     "condition_nan": PLANAR + "[conditions]\nsensor_noise_scale = nan\n",
     "condition_fraction_of_a_frame": PLANAR + "[conditions]\ncamera_delay_frames = 0.5\n",
     "conditions_not_table": PLANAR + "conditions = 3\n",
+    "nested_past_the_parser": PLANAR + "[agent]\nx = " + "[" * 5000 + "]" * 5000 + "\n",
+    "nested_past_the_limit": PLANAR + "[agent]\nx = " + "[" * 12 + "]" * 12 + "\n",
+    "agent_class_stdlib_with_side_effects": PLANAR + '[agent]\nclass = "this:s"\n',
+    "agent_class_not_identifiers": PLANAR + '[agent]\nclass = "a b:c"\n',
+    "base_agent_unknown_option": 'env = "blanket/base-goto-v0"\n[agent]\nembeding_order = 2\n',
     "condition_and_env_option_both": PLANAR
     + "[env_options]\ncontrol_hz = 240.0\n[conditions]\ncontrol_hz = 120.0\n",
 }
@@ -201,3 +206,27 @@ def test_load_object_takes_only_explicit_import_paths(tmp_path, monkeypatch) -> 
     assert "boom at import" in str(
         pytest.raises(ConfigError, load_object, "broken_plugin:Agent").value
     )
+
+
+def test_agent_errors_leave_no_folder_and_import_nothing(tmp_path, capsys) -> None:
+    # the stdlib module `this` prints a poem when imported: refused before any import
+    for case, hint in (
+        ("agent_class_stdlib_with_side_effects", "standard library module 'this'"),
+        ("agent_unknown_option", "unknown agent option 'flavour'"),
+        ("base_agent_unknown_option", "did you mean embedding_order"),
+    ):
+        path = _write(tmp_path, case, HOSTILE[case])
+        out = tmp_path / f"run-{case}"
+        assert main(["run", str(path), "--out", str(out), "--quiet"]) == 2
+        captured = capsys.readouterr()
+        assert hint in captured.err
+        assert "Beautiful is better" not in captured.out
+        assert not out.exists()  # validated before the run folder is made
+
+
+def test_agent_class_must_name_a_class(tmp_path, monkeypatch, capsys) -> None:
+    (tmp_path / "greenhouse_plugin.py").write_text("NOT_A_CLASS = 'compost'\n")
+    monkeypatch.syspath_prepend(str(tmp_path))
+    path = _write(tmp_path, "c", PLANAR + '[agent]\nclass = "greenhouse_plugin:NOT_A_CLASS"\n')
+    assert main(_run_cli(path, tmp_path)) == 2
+    assert "is a str, not a class" in capsys.readouterr().err

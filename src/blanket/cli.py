@@ -210,7 +210,7 @@ def _run(args: argparse.Namespace) -> int:
         scenario = load_scenario(args.scenario)
         episodes = args.episodes or scenario.episodes or 5
     seed = args.seed if args.seed is not None else (scenario.seed or 0)
-    out_dir = prepare_out_dir(args.out, args.overwrite, prefix=scenario.name)
+    out_dir = prepare_out_dir(args.out, args.overwrite, prefix=scenario.name, create=False)
     summary = run_scenario(
         scenario,
         episodes=episodes,

@@ -128,6 +128,10 @@ def build_agent(env: Any, options: Mapping[str, Any]) -> Any:
 
         return agent_for_env(env, **opts)
     cls = load_object(cls_path, "agent class")
+    if not callable(cls):
+        raise ConfigError(
+            f"agent class {cls_path!r} is a {type(cls).__name__}, not a class; name the class"
+        )
     try:
         if hasattr(cls, "from_env"):
             return cls.from_env(env, **opts)
@@ -136,8 +140,14 @@ def build_agent(env: Any, options: Mapping[str, Any]) -> Any:
         raise ConfigError(f"agent class {cls_path!r} rejected its options: {exc}") from None
 
 
-def prepare_out_dir(out: str | Path | None, overwrite: bool, prefix: str) -> Path:
-    """A fresh run folder: ``out`` (refused when non-empty unless ``overwrite``), or new."""
+def prepare_out_dir(
+    out: str | Path | None, overwrite: bool, prefix: str, create: bool = True
+) -> Path:
+    """A fresh run folder: ``out`` (refused when non-empty unless ``overwrite``), or new.
+
+    With ``create=False`` the folder is only checked and named; :func:`run_scenario` creates
+    it once the env and agent are built, so a bad option leaves no empty folder behind.
+    """
     if out is None:
         base = Path("blanket-runs")
         stamp = time.strftime("%Y%m%d-%H%M%S")
@@ -152,7 +162,8 @@ def prepare_out_dir(out: str | Path | None, overwrite: bool, prefix: str) -> Pat
             raise ConfigError(f"--out {str(path)!r} exists and is not a folder")
         if path.is_dir() and any(path.iterdir()) and not overwrite:
             raise ConfigError(f"--out {str(path)!r} is not empty; pass --overwrite to reuse it")
-    path.mkdir(parents=True, exist_ok=True)
+    if create:
+        path.mkdir(parents=True, exist_ok=True)
     return path
 
 
@@ -285,6 +296,8 @@ def run_scenario(
         if safety:
             env = with_safety(env)
         agent = build_agent(env, agent_options_under(scenario.agent, model_options, env))
+        if out_dir is not None:
+            out_dir.mkdir(parents=True, exist_ok=True)  # only now: the options are good
         writer = None
         if record and out_dir is not None:
             from blanket.logs import RunWriter

@@ -34,6 +34,7 @@ import inspect
 import os
 import re
 import shutil
+import sys
 import tomllib
 from collections.abc import Mapping
 from dataclasses import dataclass, field
@@ -44,7 +45,7 @@ import gymnasium
 import numpy as np
 
 from blanket.conditions import check_conditions, condition_env_options, condition_model_options
-from blanket.errors import ConfigError, did_you_mean
+from blanket.errors import ConfigError, did_you_mean, shorten
 
 __all__ = [
     "Scenario",
@@ -63,6 +64,10 @@ _PATH_OPTIONS = ("urdf",)
 #: Options whose default is None but whose value, when given, must be a string.
 _STRING_OPTIONS = ("urdf", "end_effector", "targets", "render_mode")
 MAX_EPISODES = 100_000
+#: Deepest nesting of tables and arrays a scenario file may hold.
+MAX_DEPTH = 8
+_IDENTIFIER = r"[A-Za-z_][A-Za-z0-9_]*"
+_IMPORT_PATH = re.compile(rf"{_IDENTIFIER}(\.{_IDENTIFIER})*:{_IDENTIFIER}(\.{_IDENTIFIER})*")
 
 
 @dataclass
@@ -275,7 +280,42 @@ def load_scenario(path: str | Path) -> Scenario:
         data = tomllib.loads(path.read_text(encoding="utf-8"))
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
         raise ConfigError(f"{path.name}: not valid TOML: {exc}") from None
+    except RecursionError:  # tomllib parses nested arrays and inline tables recursively
+        raise ConfigError(
+            f"{path.name}: values nested too deeply to read (a scenario nests at most "
+            f"{MAX_DEPTH} levels)"
+        ) from None
     return scenario_from_dict(data, base_dir=path.parent, where=path.name)
+
+
+def _depth(value: Any) -> int:
+    """Nesting depth of tables and arrays (a scalar is 0), without recursion."""
+    deepest, stack = 0, [(value, 0)]
+    while stack:
+        item, level = stack.pop()
+        deepest = max(deepest, level)
+        if isinstance(item, Mapping):
+            stack.extend((v, level + 1) for v in item.values())
+        elif isinstance(item, list | tuple):
+            stack.extend((v, level + 1) for v in item)
+    return deepest
+
+
+def _check_agent_class(path: Any, where: str) -> None:
+    """The form of ``[agent] class`` before anything is imported: ``package.module:Name`` of
+    identifiers, and not a module of Python's standard library (which holds no agent, and
+    some of whose modules act when imported)."""
+    if not isinstance(path, str) or not _IMPORT_PATH.fullmatch(path):
+        raise ConfigError(
+            f"{where}: agent.class must be an import path 'package.module:Name', "
+            f"got {shorten(path)}"
+        )
+    top = path.partition(":")[0].split(".")[0]
+    if top in sys.stdlib_module_names or top in sys.builtin_module_names:
+        raise ConfigError(
+            f"{where}: agent.class {path!r} names the standard library module {top!r}; "
+            "give your agent's own package.module:Name"
+        )
 
 
 def scenario_from_dict(
@@ -302,6 +342,13 @@ def scenario_from_dict(
     for table in _TABLES:
         if table in data and not isinstance(data[table], dict):
             raise ConfigError(f"{where}: {table} must be a table ([{table}])")
+    depth = _depth(data)
+    if depth > MAX_DEPTH:
+        raise ConfigError(
+            f"{where}: values nested {depth} levels deep; a scenario nests at most {MAX_DEPTH}"
+        )
+    if "class" in data.get("agent", {}):
+        _check_agent_class(data["agent"]["class"], where)
     env_id = data["env"]
     env_options = dict(data.get("env_options", {}))
     for key in _PATH_OPTIONS:

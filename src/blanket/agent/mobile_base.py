@@ -61,7 +61,7 @@ from scipy.linalg import expm
 from blanket.agent._policy import PredictMixin
 from blanket.base_description import BaseDescription
 from blanket.body.diff_drive import DiffDriveModel, polar_coordinates, pose_rate, wrap_angle
-from blanket.errors import ConfigError
+from blanket.errors import ConfigError, did_you_mean
 from blanket.free_energy import belief_curvature, belief_gradient, free_energy
 from blanket.gcoords import shift_operator
 from blanket.planar_motion import bearing_range, bearing_range_jacobian
@@ -245,9 +245,8 @@ class BaseAgent(PredictMixin):
     def __init__(self, description: BaseDescription, **options: Any) -> None:
         unknown = sorted(set(options) - set(OPTION_DEFAULTS))
         if unknown:
-            raise ConfigError(
-                f"unknown BaseAgent option(s) {unknown}; valid: {sorted(OPTION_DEFAULTS)}"
-            )
+            hint = did_you_mean(unknown[0], OPTION_DEFAULTS)
+            raise ConfigError(f"unknown BaseAgent option {unknown[0]!r}; {hint}")
         opts = {**OPTION_DEFAULTS, **options}
         order = opts["embedding_order"]
         if order not in (1, 2):
