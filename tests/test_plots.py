@@ -112,7 +112,8 @@ def test_figures_have_the_expected_panels(reach_run: Path) -> None:
     try:
         assert list(figures) == ["tip-path", "belief", "free-energy", "commands"]
         assert len(_visible_axes(figures["tip-path"])) == 3  # top, front, side views
-        assert len(_visible_axes(figures["belief"])) == 4  # 2 joints x (angle, velocity)
+        # 2 joints x (angle, velocity, angle error against the +-2 sigma band)
+        assert len(_visible_axes(figures["belief"])) == 6
         assert len(_visible_axes(figures["free-energy"])) == 3  # free energy + 2 channels
         assert len(_visible_axes(figures["commands"])) == 2  # one per joint
         for fig in figures.values():
@@ -137,6 +138,14 @@ def test_belief_band_is_two_sigma_and_limits_come_from_metadata(reach_run: Path)
         sd = frame["internal.belief_sd.order0.shoulder"].to_numpy()
         assert band[:, 1].max() == pytest.approx((mu + 2 * sd).max())
         assert band[:, 1].min() == pytest.approx((mu - 2 * sd).min())
+        # the error panel: the band is +-2 sd around zero and fills a visible share of the
+        # panel's height after the first 0.25 s (it was a hairline beside the angles)
+        error_ax = figures["belief"].axes[2]  # row 0 (shoulder), column 2 (angle error)
+        band = error_ax.collections[0].get_paths()[0].vertices
+        assert band[:, 1].max() == pytest.approx((2 * sd).max())
+        low, high = error_ax.get_ylim()
+        settled = frame["t"].to_numpy() >= frame["t"].iloc[0] + 0.25
+        assert 4 * sd[settled].mean() > 0.1 * (high - low)
         elbow_cmd = _visible_axes(figures["commands"])[1]
         levels = sorted(
             line.get_ydata()[0] for line in elbow_cmd.get_lines() if len(set(line.get_ydata())) == 1
@@ -203,7 +212,6 @@ def test_unknown_episode_is_a_one_line_error(reach_run: Path) -> None:
 
 
 def test_replay_video_frames_and_believed_tip(tmp_path: Path) -> None:
-    pytest.importorskip("pybullet")
     write_reach_run(tmp_path / "run", steps=120)  # 0.5 s at 240 Hz
     out = replay_video(tmp_path / "run", episode=0, out=tmp_path / "replay.gif", fps=20)
     assert out == tmp_path / "replay.gif"
@@ -278,3 +286,47 @@ def test_runner_style_applied_command_is_overlaid(tmp_path: Path) -> None:
     finally:
         for fig in figures.values():
             plt.close(fig)
+
+
+def test_replay_of_the_demo_shows_the_trays_and_the_whole_arm(tmp_path: Path) -> None:
+    from blanket.cli import main
+    from blanket.logs import read_metadata
+
+    run = tmp_path / "demo"
+    assert main(["demo", "--episodes", "1", "--out", str(run), "--quiet"]) == 0
+    trays = [b for b in read_metadata(run)["scene_boxes"] if b["name"].startswith("tray")]
+    assert len(trays) == 2
+    frames = iio.imread(replay_video(run, out=tmp_path / "r.gif", fps=5), index=None)
+    rgb = frames.astype(int)
+    # trays: near-black boxes (rgba 0.15) on the bench, in every frame
+    dark = (rgb.max(axis=-1) < 60) & (np.ptp(rgb, axis=-1) < 12)
+    assert (dark[:, :-3].reshape(len(frames), -1).sum(axis=1) > 300).all()
+    # the arm (pybullet_data's iiwa: blue links, orange joints) never touches the top, left
+    # or right edge of the picture: the camera frames it whole
+    arm = ((rgb[..., 2] - rgb[..., 0]) > 60) | ((rgb[..., 0] - rgb[..., 2]) > 120)
+    assert arm.any(axis=(1, 2)).all()
+    assert not arm[:, 0, :].any() and not arm[:, :, 0].any() and not arm[:, :, -1].any()
+
+
+def test_bench_chart_marks_zero_bars(tmp_path: Path, monkeypatch) -> None:
+    # a 0 % bar has no length; the chart marks it so it differs from a policy not run
+    from matplotlib.figure import Figure
+
+    from blanket.bench.report import plot_success
+
+    saved = []
+    monkeypatch.setattr(Figure, "savefig", lambda fig, *a, **k: saved.append(fig))
+    records = [
+        {"policy": p, "condition": c, "success_5cm": v, "success_5cm_ci95": (v, v)}
+        for p, c, v in (
+            ("active-inference", "nominal", 1.0),
+            ("active-inference", "control-120hz", 1.0),
+            ("ppo", "nominal", 0.45),
+            ("ppo", "control-120hz", 0.0),
+        )
+    ]
+    plot_success(records, tmp_path / "s.png")
+    (ax,) = saved[0].axes
+    marks = [line for line in ax.get_lines() if line.get_gid() == "zero-bar"]
+    assert len(marks) == 1 and list(marks[0].get_xdata()) == [0.0]
+    assert [t.get_text() for t in ax.texts] == ["0"]

@@ -217,10 +217,35 @@ def _run_metadata(scenario: Scenario, env: Any, seed: int) -> dict[str, Any]:
     if robot is None and scenario.env_options.get("urdf"):
         robot = Path(str(scenario.env_options["urdf"])).stem
     meta["robot"] = robot or env_option_names(scenario.env).get("robot")
+    boxes = _scene_boxes(env)
+    if boxes:
+        meta["scene_boxes"] = boxes
     for key, name in (("bench_boxes_m", "bench_boxes_m"), ("landmarks_m", "landmarks_m")):
         if hasattr(d, key):
             meta[name] = np.asarray(getattr(d, key), dtype=float).tolist()
     return meta
+
+
+def _scene_boxes(env: Any) -> list[dict[str, Any]]:
+    """The potting bench and its trays as boxes (``name``, ``centre_m``, ``half_extents_m``),
+    for the replay video; empty for envs without a bench layout."""
+    layout = getattr(env.unwrapped, "layout", None)
+    if layout is None or not hasattr(layout, "trays"):
+        return []
+    boxes = [
+        {
+            "name": "bench",
+            "centre_m": [float(v) for v in layout.bench_centre_m],
+            "half_extents_m": [float(v) for v in layout.bench_half_extents_m],
+        }
+    ]
+    for k, tray in enumerate(layout.trays):
+        half = np.asarray(tray.half_extents_m, dtype=float)
+        centre = np.asarray(tray.centre_m, dtype=float) - [0.0, 0.0, half[2]]  # top -> centre
+        boxes.append(
+            {"name": f"tray{k}", "centre_m": centre.tolist(), "half_extents_m": half.tolist()}
+        )
+    return boxes
 
 
 def _tolerance_m(env: Any) -> float | None:

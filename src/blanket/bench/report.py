@@ -224,6 +224,22 @@ def plot_success(records: Sequence[Mapping[str, Any]], path: Path, tag: str = "5
             xerr=[lo, hi],
             error_kw={"ecolor": _INK, "elinewidth": 0.7, "capsize": 1.5},
         )
+        # a 0 % bar has no length: mark it, so "none reached" differs from "not run"
+        zeros = [y for y, x in zip(ys, xs, strict=True) if x == 0]
+        if zeros:
+            ax.plot(
+                [0.0] * len(zeros),
+                zeros,
+                linestyle="none",
+                marker="|",
+                markersize=9,
+                markeredgewidth=2.2,
+                color=_COLOURS[j % len(_COLOURS)],
+                clip_on=False,
+                gid="zero-bar",
+            )
+            for y in zeros:
+                ax.text(1.2, y, "0", va="center", fontsize=6, color=_INK)
     ax.set_yticks(range(len(conditions)), conditions)
     ax.invert_yaxis()
     ax.set_xlim(0, 105)

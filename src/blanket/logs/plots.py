@@ -7,7 +7,9 @@
     for a mobile base the x-y path against the dock;
 ``episode-NNNNN-belief.png``
     belief against truth per joint (rows) and order of motion (columns: angle, velocity),
-    with +-2 sigma bands from ``internal.belief_sd`` (or ``internal.belief_precision``);
+    with +-2 sigma bands from ``internal.belief_sd`` (or ``internal.belief_precision``),
+    and a third column of the angle error (belief - truth) against that band on its own
+    scale (the band is a few mrad, too narrow to see beside the angles);
 ``episode-NNNNN-free-energy.png``
     free energy and each sensory channel's prediction errors over time;
 ``episode-NNNNN-commands.png``
@@ -316,49 +318,93 @@ def _belief_figure(frame: pd.DataFrame, meta: Mapping[str, Any], episode: int) -
     joints = list(belief[orders[0]].keys())
     t = frame["t"].to_numpy(dtype=float)
     t_success = _success_time(frame)
+
+    def sigma_of(order: int, joint: str) -> np.ndarray | None:
+        if order in sd and joint in sd[order]:
+            return _values(frame, sd[order][joint])
+        if order in precision and joint in precision[order]:
+            with np.errstate(divide="ignore", invalid="ignore"):
+                return 1.0 / np.sqrt(_values(frame, precision[order][joint]))
+        return None
+
+    # The belief's +-2 sigma is a few mrad on a scale of a radian: beside the angles, a
+    # column of the angle error (belief - truth) against its band, on the band's own scale.
+    error_column = (
+        any(
+            joint in belief[0]
+            and f"external.{truth_keys[0]}.{joint}" in frame.columns
+            and sigma_of(0, joint) is not None
+            for joint in joints
+        )
+        if 0 in orders
+        else False
+    )
+    columns = [(order, "value") for order in orders] + ([(0, "error")] if error_column else [])
     fig, axes = plt.subplots(
         len(joints),
-        len(orders),
-        figsize=(5.2 * len(orders), 1.9 * len(joints) + 0.9),
+        len(columns),
+        figsize=(4.6 * len(columns), 1.9 * len(joints) + 0.9),
         sharex=True,
         squeeze=False,
         layout="constrained",
     )
-    for col, order in enumerate(orders):
+    for col, (order, kind) in enumerate(columns):
         for row, joint in enumerate(joints):
             ax = axes[row, col]
             key = truth_keys[order]
+            truth = f"external.{key}.{joint}"
+            sigma = sigma_of(order, joint) if joint in belief[order] else None
+            if kind == "error":
+                if sigma is None or truth not in frame.columns:
+                    ax.set_visible(False)
+                    continue
+                error = _values(frame, belief[order][joint]) - _values(frame, truth)
+                ax.fill_between(
+                    t,
+                    -2 * sigma,
+                    2 * sigma,
+                    color=PALETTE[0],
+                    alpha=0.3,
+                    linewidth=0,
+                    label="±2σ (belief)",
+                )
+                ax.axhline(0.0, color=TRUTH, linewidth=0.6)
+                ax.plot(t, error, color=PALETTE[0], linewidth=1.0, label="belief − truth")
+                settled = t >= t[0] + 0.25 if len(t) else t
+                scale = np.nanmax(np.abs(np.r_[2 * sigma[settled], error[settled]]), initial=0)
+                if np.isfinite(scale) and scale > 0:
+                    ax.set_ylim(-1.6 * scale, 1.6 * scale)  # the first 0.25 s may run off
+                _mark_success(ax, t_success)
+                ax.set_title(f"{joint} · angle error")
+                ax.set_ylabel("error" + _unit_label(key))
+                continue
             sensed = f"sensory.{key}.{joint}"
             if sensed in frame.columns:
                 ax.plot(t, _values(frame, sensed), color=SENSED, linewidth=0.7, label="sensed")
-            truth = f"external.{key}.{joint}"
             if truth in frame.columns:
                 ax.plot(t, _values(frame, truth), color=TRUTH, linewidth=1.1, label="truth")
             if joint not in belief[order]:
                 continue
             mu = _values(frame, belief[order][joint])
-            ax.plot(t, mu, color=PALETTE[0], linewidth=1.4, label="belief")
-            sigma = None
-            if order in sd and joint in sd[order]:
-                sigma = _values(frame, sd[order][joint])
-            elif order in precision and joint in precision[order]:
-                with np.errstate(divide="ignore", invalid="ignore"):
-                    sigma = 1.0 / np.sqrt(_values(frame, precision[order][joint]))
             if sigma is not None:
                 ax.fill_between(
                     t,
                     mu - 2 * sigma,
                     mu + 2 * sigma,
                     color=PALETTE[0],
-                    alpha=0.18,
+                    alpha=0.3,
                     linewidth=0,
                     label="±2σ",
+                    zorder=3,
                 )
+            ax.plot(t, mu, color=PALETTE[0], linewidth=1.4, label="belief", zorder=4)
             _mark_success(ax, t_success)
             ax.set_title(f"{joint} · {'angle' if order == 0 else 'velocity'}")
             ax.set_ylabel(("q" if order == 0 else "q'") + _unit_label(key))
         axes[-1, col].set_xlabel("t (s)")
     axes[0, 0].legend(loc="best", ncol=2)
+    if error_column:
+        axes[0, -1].legend(loc="best")
     _heading(fig, "Belief against truth", meta, episode)
     return fig
 

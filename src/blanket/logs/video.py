@@ -5,7 +5,9 @@ The logged true joint angles (``external.joint_angle_rad.<joint>``) are set on t
 requested frame rate. The target is a sky-blue sphere; when the log has the agent's
 belief (``internal.belief.order0.<joint>``) the believed tool tip, computed by pybullet
 forward kinematics of the belief in a second, unrendered client (:func:`tip_positions`), is a
-yellow sphere. A thin
+yellow sphere. The potting bench and its seedling trays are drawn from the run metadata's
+``scene_boxes`` (a flat board when it has none). The camera frames the whole arm over the
+episode (every link origin), the trays, the tool tip and the targets. A thin
 bar along the bottom edge shows the elapsed fraction of the episode.
 
 MP4 needs the ``imageio-ffmpeg`` plugin; without it the video is written as a GIF (same
@@ -34,6 +36,7 @@ __all__ = ["replay_video", "has_mp4_writer", "tip_positions"]
 _TARGET_RGBA = (0.20, 0.55, 0.95, 1.0)
 _BELIEF_RGBA = (0.98, 0.85, 0.10, 1.0)
 _BENCH_RGBA = (0.62, 0.52, 0.40, 1.0)
+_TRAY_RGBA = (0.15, 0.15, 0.15, 1.0)
 
 
 def has_mp4_writer() -> bool:
@@ -184,36 +187,59 @@ def replay_video(
         flags = pybullet.URDF_USE_INERTIA_FROM_FILE
         robot = scene.loadURDF(str(urdf_path), [0, 0, 0], useFixedBase=True, flags=flags)
         joints = _joint_indices(scene, robot, joint_names)
-        bench = scene.createVisualShape(
-            pybullet.GEOM_BOX, halfExtents=[0.9, 0.9, 0.005], rgbaColor=_BENCH_RGBA
-        )
-        scene.createMultiBody(
-            baseMass=0.0, baseVisualShapeIndex=bench, basePosition=[0.0, 0.0, -0.006]
-        )
+        boxes = metadata.get("scene_boxes") or []
+        for box in boxes:
+            shape = scene.createVisualShape(
+                pybullet.GEOM_BOX,
+                halfExtents=[float(v) for v in box["half_extents_m"]],
+                rgbaColor=_BENCH_RGBA if box.get("name") == "bench" else _TRAY_RGBA,
+            )
+            scene.createMultiBody(
+                baseMass=0.0,
+                baseVisualShapeIndex=shape,
+                basePosition=[float(v) for v in box["centre_m"]],
+            )
+        if not boxes:
+            bench = scene.createVisualShape(
+                pybullet.GEOM_BOX, halfExtents=[0.9, 0.9, 0.005], rgbaColor=_BENCH_RGBA
+            )
+            scene.createMultiBody(
+                baseMass=0.0, baseVisualShapeIndex=bench, basePosition=[0.0, 0.0, -0.006]
+            )
         target_marker = _marker(scene, 0.02, _TARGET_RGBA) if targets is not None else None
         belief_marker = _marker(scene, 0.015, _BELIEF_RGBA) if has_belief else None
 
-        # Frame the workspace the episode used.
+        # Frame what the episode used: every link of the arm over the episode, the base, the
+        # trays (not the whole bench), the tool tip and the targets.
         points = [p for p in (tips, targets) if p is not None]
-        if points:
-            cloud = np.vstack(
-                [p[np.all(np.isfinite(p), axis=1)] for p in points] + [np.zeros((1, 3))]
-            )
-        else:
-            cloud = np.zeros((1, 3))
+        links = list(range(scene.getNumJoints(robot)))
+        for row in rows[:: max(1, len(rows) // 20)]:
+            for j, q in zip(joints, angles[row], strict=True):
+                scene.resetJointState(robot, j, float(q))
+            states = scene.getLinkStates(robot, links, computeForwardKinematics=True)
+            points.append(np.array([state[4] for state in states], dtype=float).reshape(-1, 3))
+        for box in boxes:
+            if box.get("name") != "bench":
+                centre = np.asarray(box["centre_m"], dtype=float)
+                half = np.asarray(box["half_extents_m"], dtype=float)
+                points.append(
+                    centre + half * np.array([[sx, sy, 1] for sx in (-1, 1) for sy in (-1, 1)])
+                )
+        cloud = np.vstack([p[np.all(np.isfinite(p), axis=1)] for p in points] + [np.zeros((1, 3))])
         center = 0.5 * (cloud.min(axis=0) + cloud.max(axis=0))
         radius = float(np.max(np.linalg.norm(cloud - center, axis=1)))
-        flat = float(np.ptp(cloud[:, 2])) < 0.05
+        fov_deg = 50.0  # vertical; the sphere round the cloud fits with 15 % to spare
+        distance = max(0.4, 1.15 * radius / np.sin(np.radians(0.5 * fov_deg)))
         view = scene.computeViewMatrixFromYawPitchRoll(
             cameraTargetPosition=center.tolist(),
-            distance=max(0.6, 2.6 * radius),
+            distance=distance,
             yaw=35.0,
-            pitch=-62.0 if flat else -32.0,
+            pitch=-30.0,
             roll=0.0,
             upAxisIndex=2,
         )
         projection = scene.computeProjectionMatrixFOV(
-            fov=50.0, aspect=width_px / height_px, nearVal=0.02, farVal=20.0
+            fov=fov_deg, aspect=width_px / height_px, nearVal=0.02, farVal=20.0
         )
         frames: list[np.ndarray] = []
         for k, row in enumerate(rows):
