@@ -38,3 +38,38 @@ def test_readme_snippet_runs(index, folder):
         timeout=300,
     )
     assert done.returncode == 0, f"snippet {index}:\n{SNIPPETS[index]}\n{done.stderr[-2000:]}"
+
+
+def test_a_logging_loop_that_fails_before_its_first_episode_can_run_again(tmp_path):
+    # A loop that logged the agent's full diagnostics (a text field) failed at its first row;
+    # its folder then held only run.json and was refused as "not empty" on the rerun.
+    import gymnasium
+
+    import blanket  # noqa: F401 - registers the env ids
+    from blanket.agent import ArmAgent
+    from blanket.logs import RunWriter, read_run
+
+    env = gymnasium.make("blanket/planar-2link-v0", episode_s=0.05)
+    agent = ArmAgent.from_env(env)
+    obs, info = env.reset(seed=0)
+    action = agent.act(obs)
+    writer = RunWriter(tmp_path / "run", {"seed": 0})
+    writer.begin_episode(0)
+    with pytest.raises(ValueError, match="safe_stop_reason.*diagnostics\\(copy=False\\)"):
+        writer.record(
+            0,
+            0.0,
+            external={},
+            sensory=obs,
+            active={"action": action},
+            internal=agent.diagnostics(),
+        )
+    writer.close()
+    with RunWriter(tmp_path / "run", {"seed": 0}) as again:  # no overwrite needed
+        again.begin_episode(0)
+        internal = agent.diagnostics(copy=False)
+        again.record(0, 0.0, external={}, sensory=obs, active={"action": action}, internal=internal)
+        again.end_episode()
+    assert len(read_run(tmp_path / "run")) == 1
+    with pytest.raises(ValueError, match="not empty"):  # now it holds an episode
+        RunWriter(tmp_path / "run", {"seed": 0})

@@ -187,7 +187,17 @@ def _kind_of(path: tuple[str, ...], value: Any) -> tuple[str, tuple[int, ...]]:
         return ("i" if kind == "u" else kind), arr.shape
     raise ValueError(
         f"{name}: values of type {_describe(value)} cannot be logged; "
-        "give floats, ints, bools or numpy arrays"
+        "give floats, ints, bools or numpy arrays (blanket.logs.groups.numeric_only(values) "
+        "keeps those; an agent's diagnostics(copy=False) gives only those)"
+    )
+
+
+def _no_episode_yet(run_dir: Path) -> bool:
+    """True when ``run_dir`` holds only a ``run.json`` and an empty ``episodes`` folder."""
+    names = {p.name for p in run_dir.iterdir()}
+    episodes = run_dir / "episodes"
+    return names <= {"run.json", "episodes"} and (
+        not episodes.is_dir() or not any(episodes.iterdir())
     )
 
 
@@ -590,7 +600,9 @@ class RunWriter:
         if self.run_dir.exists() and not self.run_dir.is_dir():
             raise ConfigError(f"run_dir: {self.run_dir} is a file; give a folder")
         if self.run_dir.is_dir() and any(self.run_dir.iterdir()):
-            if not overwrite:
+            # a run that stopped before its first episode ended (only run.json and an empty
+            # episodes/ folder) holds no data: start again there
+            if not overwrite and not _no_episode_yet(self.run_dir):
                 raise ConfigError(
                     f"run_dir: {self.run_dir} is not empty; choose a new folder or pass "
                     "overwrite=True"
