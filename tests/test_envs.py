@@ -17,6 +17,7 @@ import blanket_envs  # noqa: F401  (registers the env ids)
 from blanket.description import ArmDescription, CameraDescription
 from blanket.errors import ConfigError
 from blanket_envs.arm_reach import ArmReachEnv, PlanarReachEnv
+from reference_urdf import pybullet_joint_limits, urdf_soft_limits
 
 PLANAR = "blanket/planar-2link-v0"
 ARM = "blanket/arm-reach-v0"
@@ -88,20 +89,19 @@ def test_seeded_reset_and_steps_are_reproducible():
         env.close()
 
 
-def test_panda_description_has_the_datasheet_limits():
-    # Franka Emika, "Robot and interface specifications" (Franka Control Interface docs),
-    # values from memory: the URDF's safety_controller soft limits.
+def test_panda_description_has_the_urdfs_limits():
+    # References: the URDF's <safety_controller> soft limits read with xml.etree as the URDF
+    # XML specification defines them, and its velocity and effort limits as pybullet reads
+    # them (tests/reference_urdf.py). The maker's figures are configuration, not a reference.
     env = gym.make(ARM, robot="panda", control="velocity")
     try:
         d = env.unwrapped.description
         assert isinstance(d, ArmDescription) and isinstance(d.camera, CameraDescription)
-        np.testing.assert_allclose(
-            d.lower_rad, [-2.8973, -1.7628, -2.8973, -3.0718, -2.8973, -0.0175, -2.8973]
-        )
-        np.testing.assert_allclose(
-            d.upper_rad, [2.8973, 1.7628, 2.8973, -0.0698, 2.8973, 3.7525, 2.8973]
-        )
-        np.testing.assert_allclose(env.action_space.high, [2.175] * 4 + [2.61] * 3)
+        soft = urdf_soft_limits(d.urdf_path)
+        hard = pybullet_joint_limits(d.urdf_path)
+        np.testing.assert_allclose(d.lower_rad, [soft[n][0] for n in d.joint_names])
+        np.testing.assert_allclose(d.upper_rad, [soft[n][1] for n in d.joint_names])
+        np.testing.assert_allclose(env.action_space.high, [hard[n].velocity for n in d.joint_names])
         np.testing.assert_allclose(env.action_space.low, -env.action_space.high)
         assert d.joint_names == tuple(f"panda_joint{i}" for i in range(1, 8))
         assert d.end_effector == "panda_grasptarget" and d.urdf_path.endswith("panda.urdf")
@@ -111,7 +111,7 @@ def test_panda_description_has_the_datasheet_limits():
         env.close()
     env = gym.make(ARM, robot="panda", control="torque")
     try:
-        np.testing.assert_allclose(env.action_space.high, [87.0] * 4 + [12.0] * 3)
+        np.testing.assert_allclose(env.action_space.high, [hard[n].effort for n in d.joint_names])
     finally:
         env.close()
 

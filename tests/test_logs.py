@@ -702,7 +702,6 @@ def test_recorder_aligns_sensation_action_and_truth(tmp_path: Path) -> None:
 
 
 def test_recorder_on_the_planar_env_logs_consistent_truth(tmp_path: Path) -> None:
-    pytest.importorskip("blanket_envs.arm_reach")
     env = Recorder(gym.make("blanket/planar-2link-v0"), tmp_path / "run")
     env.reset(seed=3)
     for _ in range(60):
