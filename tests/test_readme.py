@@ -1,4 +1,5 @@
-"""Every Python snippet of the README runs as written, in order, in one empty folder."""
+"""Every Python snippet of the README and of docs/*.md runs as written, each on its own in an
+empty folder."""
 
 from __future__ import annotations
 
@@ -10,34 +11,45 @@ from pathlib import Path
 
 import pytest
 
-README = Path(__file__).resolve().parents[1] / "README.md"
-SNIPPETS = re.findall(r"```python\n(.*?)```", README.read_text(), re.S)
+ROOT = Path(__file__).resolve().parents[1]
+PAGES = [ROOT / "README.md", *sorted((ROOT / "docs").glob("*.md"))]
+SNIPPETS = [
+    (page.relative_to(ROOT).as_posix(), k, code)
+    for page in PAGES
+    for k, code in enumerate(re.findall(r"```python\n(.*?)```", page.read_text(), re.S))
+]
 
 
-def test_readme_has_snippets():
-    assert len(SNIPPETS) >= 5
+def test_readme_has_an_example_per_use():
+    readme = [code for page, _, code in SNIPPETS if page == "README.md"]
+    uses = {
+        "test a controller": "rollout(",
+        "tune precisions": "run_sweep(",
+        "record and analyse a run": "read_run(",
+        "safety limits": "SafetyLimits(",
+    }
+    for use, call in uses.items():
+        assert any(call in code for code in readme), use
 
 
-@pytest.fixture(scope="module")
-def folder(tmp_path_factory):
-    return tmp_path_factory.mktemp("readme")
-
-
-@pytest.mark.parametrize("index", range(len(SNIPPETS)))
-def test_readme_snippet_runs(index, folder):
-    # in order in one folder: a later snippet may read what an earlier one wrote
-    path = folder / f"snippet_{index}.py"
-    path.write_text(SNIPPETS[index])
+@pytest.mark.parametrize(
+    ("page", "index"), [(page, k) for page, k, _ in SNIPPETS], ids=lambda v: str(v)
+)
+def test_snippet_runs_on_its_own_in_an_empty_folder(page, index, tmp_path):
+    code = next(c for p, k, c in SNIPPETS if p == page and k == index)
+    path = tmp_path / "snippet.py"
+    path.write_text(code)
     env = {**os.environ, "MPLBACKEND": "Agg"}
     done = subprocess.run(
         [sys.executable, path.name],
-        cwd=folder,
+        cwd=tmp_path,
         capture_output=True,
         text=True,
         env=env,
         timeout=300,
     )
-    assert done.returncode == 0, f"snippet {index}:\n{SNIPPETS[index]}\n{done.stderr[-2000:]}"
+    assert done.returncode == 0, f"{page} snippet {index}:\n{code}\n{done.stderr[-2000:]}"
+    assert "Traceback" not in done.stderr
 
 
 def test_a_logging_loop_that_fails_before_its_first_episode_can_run_again(tmp_path):
