@@ -121,3 +121,23 @@ def test_progress_bar_gives_no_eta_from_a_slow_first_step():
     # remaining time from the steps after the first: far below the first step's 1 s per step
     remaining = (fmt["total"] - fmt["n"]) / (fmt["n"] / max(fmt["elapsed"], 1e-9))
     assert remaining < 0.1 * (fmt["total"] - fmt["n"])
+
+
+def test_bench_quiet_still_names_the_policies_it_leaves_out(tmp_path, capsys, monkeypatch):
+    # --quiet drops progress lines, not the notice that SAC and PPO did not run, and why
+    from blanket.bench import rl, suite
+
+    monkeypatch.setattr(rl, "sb3_available", lambda: False)
+    ran = {}
+
+    def run_benchmark(settings, out, progress=True):
+        ran["policies"] = list(settings.policies)
+        return {"records": [], "wall_s": 0.0}
+
+    monkeypatch.setattr(suite, "run_benchmark", run_benchmark)
+    args = ["bench", "--quick", "--quiet", "--out", str(tmp_path / "b")]
+    assert main(args) == 0
+    printed = capsys.readouterr().out
+    assert "sac" not in ran["policies"] and "ppo" not in ran["policies"]
+    assert "left out sac: stable-baselines3 is not installed" in printed
+    assert "left out ppo: stable-baselines3 is not installed" in printed

@@ -122,6 +122,9 @@ def run_bench(args: argparse.Namespace) -> int:
     out = prepare_out_dir(args.out, args.overwrite, prefix="bench")
     summary = run_benchmark(settings, out, progress=not args.quiet)
     print(f"\n  {len(summary['records'])} records in {summary['wall_s']:.0f} s")
+    if args.quiet:  # a notice, not progress: printed at the start unless --quiet
+        for line in settings.left_out:
+            print(f"  left out {line}")
     print(f"  results: {out / 'results.json'}")
     print(f"  report:  {out / 'report.md'}")
     return 0
