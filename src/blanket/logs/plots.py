@@ -175,22 +175,14 @@ def _heading(fig: Figure, title: str, meta: Mapping[str, Any], episode: int) -> 
     scenario = meta.get("scenario") or "run"
     if isinstance(scenario, Mapping):  # the runner logs {"name": ..., "env": ...}
         scenario = scenario.get("name") or scenario.get("env") or "run"
+    # one line, inside the layout (a separate corner text overlapped the panel titles)
     fig.suptitle(
-        f"{title} — episode {episode}",
+        f"{title} — episode {episode}   ·   {scenario}, seed {meta.get('seed')}",
         x=0.015,
         ha="left",
         fontsize=11,
         fontweight="bold",
         color="#2b2923",
-    )
-    fig.text(
-        0.985,
-        0.985,
-        f"{scenario}  ·  seed {meta.get('seed')}",
-        ha="right",
-        va="top",
-        fontsize=7.5,
-        color="#7b7566",
     )
 
 
