@@ -101,14 +101,15 @@ def build_parser() -> argparse.ArgumentParser:
         "run",
         help="run a scenario file",
         epilog=SAFETY_NOTE,
-        description="Run the env and agent a scenario TOML file names.",
+        description="Run the env and agent a scenario TOML file names (to start from a "
+        "built-in one: blanket scenarios copy NAME my_scenario.toml).",
     )
     run.add_argument("scenario", metavar="SCENARIO.toml")
     _add_run_options(run, episodes_default=None)
 
     scenarios = sub.add_parser(
         "scenarios",
-        help="list the built-in scenario files, or copy one here to edit and run",
+        help="list the built-in scenario files; copy one to edit",
         description="Without arguments: list the scenario files that come with blanket. "
         "'copy NAME [DEST]' writes one (and the URDF it names, beside it) to DEST: a folder "
         "(default: the current one) or a file name ending in .toml; then "
