@@ -367,11 +367,11 @@ class SafetyLimits(gym.Wrapper, gym.utils.RecordConstructorArgs):
 
     def _bias_torque(self, q: np.ndarray, qd: np.ndarray) -> np.ndarray:
         """``h(q, q')``: gravity, Coriolis and centrifugal torques (the world's model)."""
-        return self._world.inverse_dynamics(q, qd, np.zeros_like(q))
+        return self._world.inverse_dynamics(q, qd, np.zeros(q.shape))
 
     def _brake(self, q: np.ndarray, qd: np.ndarray) -> np.ndarray:
         tau = self._bias_torque(q, qd) - self.brake_gain_1_s * (self._world.mass_matrix(q) @ qd)
-        return np.clip(tau, -self.torque_limit_n_m, self.torque_limit_n_m)
+        return clip_values(tau, -self.torque_limit_n_m, self.torque_limit_n_m)
 
     @staticmethod
     def _scale_to_limit(command: np.ndarray, limit: np.ndarray, reasons: list[str]) -> np.ndarray:
@@ -465,4 +465,4 @@ class SafetyLimits(gym.Wrapper, gym.utils.RecordConstructorArgs):
         if len(reasons) == n_reasons:
             return clipped
         tau = M @ (v_safe - qd) / self._dt + h
-        return np.clip(tau, -limit, limit)
+        return clip_values(tau, -limit, limit)
