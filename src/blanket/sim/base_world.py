@@ -1,7 +1,7 @@
 """A wheeled base on a floor with bench rows, posts and a dock, in its own pybullet client.
 
-One :class:`BaseWorld` owns one ``pybullet_utils.bullet_client.BulletClient`` (DIRECT, or GUI
-for a human viewer), so several worlds run side by side in one process, as :class:`ArmWorld`
+One :class:`BaseWorld` owns one :class:`blanket.sim.bullet.Client` (a ``BulletClient``; DIRECT,
+or GUI for a human viewer), so several worlds run side by side in one process, as :class:`ArmWorld`
 does for arms. Physics runs at :data:`PHYSICS_HZ`; the wheels are driven by pybullet's velocity
 motors at the robot's torque limit. The world knows nothing of tasks, rewards or sensors: the
 env (``blanket/base-goto-v0``) and the sensor models read it.
@@ -19,9 +19,10 @@ from dataclasses import dataclass
 from typing import Protocol
 
 import numpy as np
-import pybullet
 import pybullet_data
 from pybullet_utils.bullet_client import BulletClient
+
+from blanket.sim.bullet import Client, pybullet
 
 __all__ = [
     "PHYSICS_HZ",
@@ -145,7 +146,7 @@ class BaseWorld:
         rest_pose: np.ndarray | tuple[float, float, float] = (0.0, 0.0, 0.0),
     ) -> None:
         self.spec = spec
-        self.client = BulletClient(connection_mode=pybullet.GUI if gui else pybullet.DIRECT)
+        self.client = Client(pybullet.GUI if gui else pybullet.DIRECT)
         self._connected = True
         c = self.client
         c.setGravity(0, 0, -9.81)
