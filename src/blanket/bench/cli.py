@@ -81,6 +81,32 @@ def add_bench_parser(sub: Any) -> argparse.ArgumentParser:
         "./blanket-runs/); a non-empty folder is refused unless --overwrite",
     )
     p.add_argument("--overwrite", action="store_true", help="reuse a non-empty --out folder")
+    p.add_argument(
+        "--resume",
+        action="store_true",
+        help="continue an interrupted run in --out (same settings): finished (policy, "
+        "condition) cells are read from its cells.jsonl, not run again",
+    )
+    p.add_argument(
+        "--engine",
+        default="local",
+        choices=("local", "ray"),
+        help="where the cells run: local (this machine's processes) or ray (default local)",
+    )
+    p.add_argument(
+        "--workers",
+        type=_positive_int,
+        default=1,
+        metavar="N",
+        help="cells in parallel (default 1: in this process); the results do not depend on it",
+    )
+    p.add_argument(
+        "--address",
+        default=None,
+        metavar="ADDR",
+        help="Ray cluster: auto, HOST:PORT or ray://HOST:PORT (default: start a local Ray "
+        "instance)",
+    )
     p.add_argument("--list", action="store_true", help="print built-in policies and conditions")
     p.add_argument("--quiet", action="store_true", help="no progress lines")
     return p
@@ -109,6 +135,10 @@ def run_bench(args: argparse.Namespace) -> int:
         return 0
     from blanket.runner import prepare_out_dir
 
+    if args.address is not None and args.engine != "ray":
+        raise ConfigError("--address applies to --engine ray only")
+    if args.resume and args.out is None:
+        raise ConfigError("--resume needs --out DIR (the folder of the interrupted run)")
     settings = BenchSettings.from_cli(
         quick=args.quick,
         policies=_names(args.policies),
@@ -119,8 +149,16 @@ def run_bench(args: argparse.Namespace) -> int:
         episode_s=args.episode_s,
         rl_models=args.rl_models,
     )
-    out = prepare_out_dir(args.out, args.overwrite, prefix="bench")
-    summary = run_benchmark(settings, out, progress=not args.quiet)
+    out = prepare_out_dir(args.out, args.overwrite or args.resume, prefix="bench")
+    summary = run_benchmark(
+        settings,
+        out,
+        progress=not args.quiet,
+        engine=args.engine,
+        workers=args.workers,
+        address=args.address,
+        resume=args.resume,
+    )
     print(f"\n  {len(summary['records'])} records in {summary['wall_s']:.0f} s")
     print(f"  results: {out / 'results.json'}")
     print(f"  report:  {out / 'report.md'}")
