@@ -14,7 +14,7 @@ from pathlib import Path
 
 import pytest
 
-from blanket.bench.suite import CELLS, TIMING_FIELDS, BenchSettings, run_benchmark
+from blanket.bench.suite import CELLS, BenchSettings, run_benchmark, without_timing
 from blanket.errors import ConfigError
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -32,15 +32,7 @@ def _settings() -> BenchSettings:
 
 def _reproducible(path: Path) -> str:
     """results.json without the fields measured on the clock."""
-
-    def strip(v):
-        if isinstance(v, dict):
-            return {k: strip(x) for k, x in v.items() if k not in TIMING_FIELDS}
-        if isinstance(v, list):
-            return [strip(x) for x in v]
-        return v
-
-    return json.dumps(strip(json.loads(path.read_text())), sort_keys=True)
+    return json.dumps(without_timing(json.loads(path.read_text())), sort_keys=True)
 
 
 @pytest.fixture(scope="module")

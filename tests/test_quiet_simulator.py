@@ -29,6 +29,13 @@ def _run(code: str, *args: str, cwd: Path) -> subprocess.CompletedProcess:
     )
 
 
+def _assert_quiet(done: subprocess.CompletedProcess, expected: str) -> None:
+    assert done.returncode == 0, done.stderr
+    assert expected in done.stdout  # the command ran and reported
+    for line in NOISE:
+        assert line not in done.stdout and line not in done.stderr
+
+
 def test_blanket_demo_prints_no_simulator_noise(tmp_path):
     done = _run(
         "import sys; from blanket.cli import main; sys.exit(main())",
@@ -41,10 +48,7 @@ def test_blanket_demo_prints_no_simulator_noise(tmp_path):
         str(tmp_path / "run"),
         cwd=tmp_path,
     )
-    assert done.returncode == 0, done.stderr
-    assert "reached" in done.stdout  # the command ran and reported
-    for line in NOISE:
-        assert line not in done.stdout and line not in done.stderr
+    _assert_quiet(done, "reached")
 
 
 def test_arm_and_base_worlds_connect_quietly(tmp_path):
@@ -57,10 +61,7 @@ def test_arm_and_base_worlds_connect_quietly(tmp_path):
         "print('made both')\n",
         cwd=tmp_path,
     )
-    assert done.returncode == 0, done.stderr
-    assert "made both" in done.stdout
-    for line in NOISE:
-        assert line not in done.stdout and line not in done.stderr
+    _assert_quiet(done, "made both")
 
 
 def test_quiet_fd_keeps_other_output(tmp_path):
@@ -75,3 +76,25 @@ def test_quiet_fd_keeps_other_output(tmp_path):
     )
     assert done.returncode == 0, done.stderr
     assert done.stderr.splitlines() == ["a real warning", "after"]
+
+
+def test_bench_on_a_process_pool_prints_no_simulator_noise(tmp_path):
+    # the pool's fork server imports the simulator before any worker connects
+    done = _run(
+        "import sys; from blanket.cli import main; sys.exit(main())",
+        "bench",
+        "--policies",
+        "classical",
+        "--conditions",
+        "nominal,payload-1.5kg",
+        "--episodes",
+        "1",
+        "--episode-s",
+        "0.3",
+        "--workers",
+        "2",
+        "--out",
+        str(tmp_path / "bench"),
+        cwd=tmp_path,
+    )
+    _assert_quiet(done, "results:")

@@ -87,25 +87,13 @@ def add_bench_parser(sub: Any) -> argparse.ArgumentParser:
         help="continue an interrupted run in --out (same settings): finished (policy, "
         "condition) cells are read from its cells.jsonl, not run again",
     )
-    p.add_argument(
-        "--engine",
-        default="local",
-        choices=("local", "ray"),
-        help="where the cells run: local (this machine's processes) or ray (default local)",
-    )
-    p.add_argument(
-        "--workers",
-        type=_positive_int,
-        default=1,
-        metavar="N",
-        help="cells in parallel (default 1: in this process); the results do not depend on it",
-    )
-    p.add_argument(
-        "--address",
-        default=None,
-        metavar="ADDR",
-        help="Ray cluster: auto, HOST:PORT or ray://HOST:PORT (default: start a local Ray "
-        "instance)",
+    from blanket.tune.engines import add_engine_arguments
+
+    add_engine_arguments(
+        p,
+        1,
+        "(policy, condition) cells in parallel (default 1: in this process); the results "
+        "do not depend on it",
     )
     p.add_argument("--list", action="store_true", help="print built-in policies and conditions")
     p.add_argument("--quiet", action="store_true", help="no progress lines")

@@ -19,6 +19,7 @@ __all__ = [
     "BenchSettings",
     "run_benchmark",
     "evaluate_cell",
+    "without_timing",
     "DEFAULT_POLICIES",
     "QUICK_POLICIES",
     "ROBOTS",
@@ -138,6 +139,16 @@ CELLS = "cells.jsonl"
 GRID = "bench-grid.json"
 #: Record fields measured on the clock (not reproducible; everything else is).
 TIMING_FIELDS = ("wall_s", "policy_step_us")
+
+
+def without_timing(value: Any) -> Any:
+    """``results.json`` content (records, or any part) without :data:`TIMING_FIELDS`: the part
+    every run of the same settings reproduces, whatever the engine."""
+    if isinstance(value, dict):
+        return {k: without_timing(v) for k, v in value.items() if k not in TIMING_FIELDS}
+    if isinstance(value, list):
+        return [without_timing(v) for v in value]
+    return value
 
 
 def cell_key(policy: str, condition: str) -> str:

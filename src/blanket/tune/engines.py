@@ -36,6 +36,7 @@ __all__ = [
     "RayEngine",
     "make_engine",
     "cached_env",
+    "add_engine_arguments",
 ]
 
 ENGINES = ("local", "ray")
@@ -55,7 +56,7 @@ _PRELOAD = (
     "scipy.linalg",
     "pandas",
     "gymnasium",
-    "pybullet",
+    "blanket.sim.bullet",  # pybullet, imported quietly
     "pinocchio",
     "numba",
     "blanket.runner",
@@ -508,6 +509,29 @@ class RayEngine:
 
     def __exit__(self, *exc: object) -> None:
         self.close()
+
+
+def add_engine_arguments(parser: Any, workers_default: int | None, workers_help: str) -> None:
+    """``--engine``, ``--address`` and ``--workers``: the engine options of ``blanket tune``
+    and ``blanket bench`` (read by :func:`make_engine`)."""
+    from blanket.cli_types import positive_int
+
+    parser.add_argument(
+        "--engine",
+        default="local",
+        choices=ENGINES,
+        help="local: a process pool on this machine; ray: Ray tasks (default local)",
+    )
+    parser.add_argument(
+        "--address",
+        default=None,
+        metavar="ADDR",
+        help="Ray cluster: auto, HOST:PORT or ray://HOST:PORT (default: start a "
+        "local Ray instance)",
+    )
+    parser.add_argument(
+        "--workers", type=positive_int, default=workers_default, metavar="K", help=workers_help
+    )
 
 
 def make_engine(engine: str, workers: int | None = None, address: str | None = None) -> Any:
