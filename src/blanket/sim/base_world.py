@@ -169,6 +169,7 @@ class BaseWorld:
                 c.changeDynamics(self.body, link, mass=0.01, localInertiaDiagonal=[1e-5] * 3)
         dyn = c.getDynamicsInfo(self.body, -1)
         self._com_in_link = (tuple(dyn[3]), tuple(dyn[4]))
+        self._link_in_com = c.invertTransform(*self._com_in_link)  # fixed: found once
         # Height of the link origin above the floor when standing: the wheel axle for the rover
         # (wheel radius), the floor for the husky's base_footprint.
         self._stand_z = spec.wheel_radius_m if spec.urdf.endswith("rover.urdf") else 0.0
@@ -226,7 +227,7 @@ class BaseWorld:
         """World position and quaternion of the base *link* frame (not its inertial frame)."""
         c = self.client
         pos, orn = c.getBasePositionAndOrientation(self.body)
-        inv_pos, inv_orn = c.invertTransform(*self._com_in_link)
+        inv_pos, inv_orn = self._link_in_com
         p, q = c.multiplyTransforms(pos, orn, inv_pos, inv_orn)
         return np.array(p), np.array(q)
 
