@@ -49,17 +49,24 @@ def quiet_fd(fd: int, drop: tuple[bytes, ...] = NOISE) -> Iterator[None]:
     it back to ``fd`` without the lines that start with one of ``drop``.
 
     Python's own ``sys.stdout`` / ``sys.stderr`` are flushed before and after. If ``fd`` is not
-    open (e.g. a daemon without stderr) the block runs unchanged.
+    open (e.g. a daemon without stderr), or no temporary file can be made, the block runs
+    unchanged.
     """
     for stream in (sys.stdout, sys.stderr):
         with contextlib.suppress(Exception):
             stream.flush()
     try:
-        saved = os.dup(fd)
-    except OSError:
+        capture = tempfile.TemporaryFile()
+    except OSError:  # no writable temporary folder: let the output through
         yield
         return
-    with tempfile.TemporaryFile() as capture:
+    try:
+        saved = os.dup(fd)
+    except OSError:
+        capture.close()
+        yield
+        return
+    with capture:
         try:
             os.dup2(capture.fileno(), fd)
             try:
