@@ -333,7 +333,6 @@ class ArmReachEnv(gym.Env):
         self._action_high = np.asarray(self.action_space.high, dtype=float)
         self._action_shape = self.action_space.shape
         self._neg_velocity_bound = -velocity_bound
-        self._time_step_s = 1.0 / self.control_hz
         self.max_steps = max(1, int(round(self.episode_s * self.control_hz)))
         self._success = HeldInside(1.0 / self.control_hz, SUCCESS_HOLD_S)
         self._target_velocity = np.zeros(3)
