@@ -10,6 +10,7 @@ bounded by the URDF limits; observations are what the encoders and the fixed cam
 from __future__ import annotations
 
 import dataclasses
+import math
 import os
 import sys
 import weakref
@@ -23,6 +24,7 @@ from gymnasium import spaces
 from blanket.description import ArmDescription, CameraDescription
 from blanket.errors import ConfigError
 from blanket.sensors.camera import PointCamera, look_at, opengl_matrices, pinhole_camera
+from blanket.sensors.clip import clip_values as _clip
 from blanket.sensors.encoders import JointEncoders
 from blanket.sim.arm_world import CONTROL_MODES, ArmWorld
 from blanket.sim.robots import builtin_robot, default_home
@@ -326,10 +328,16 @@ class ArmReachEnv(gym.Env):
                 "camera_fresh": spaces.Discrete(2),
             }
         )
+        # the hot path's precomputed pieces (step, _observation, _info)
+        self._action_low = np.asarray(self.action_space.low, dtype=float)
+        self._action_high = np.asarray(self.action_space.high, dtype=float)
+        self._action_shape = self.action_space.shape
+        self._neg_velocity_bound = -velocity_bound
         self.max_steps = max(1, int(round(self.episode_s * self.control_hz)))
         self._success = HeldInside(1.0 / self.control_hz, SUCCESS_HOLD_S)
         self._target_velocity = np.zeros(3)
-        self._target = self._reach_samples[0].copy()
+        self._target_moving = False
+        self._set_target(self._reach_samples[0].copy())
         self._step_count = 0
         self._last_action = np.zeros(n)
         self._last_obs: dict[str, Any] | None = None
@@ -448,7 +456,7 @@ class ArmReachEnv(gym.Env):
                     f"options joint_angle_rad: expected {self.home_rad.size} finite angles, "
                     f"got {q0}"
                 )
-        self._target = np.array(target, dtype=float)
+        self._set_target(np.array(target, dtype=float))
         world.reset_joints(q0)
         world.move_body(self._target_marker, self._target)
         self._last_action = np.zeros(len(world.joint_names))
@@ -457,44 +465,46 @@ class ArmReachEnv(gym.Env):
         self._success.reset()
         angle, velocity = world.joint_state()
         tip = world.tip_position()
-        frame = self._camera.reset({"tip": tip, "target": self._target}, self.np_random)
-        obs = self._observation(angle, velocity, frame)
-        info = self._info(angle, velocity, tip)
+        self._camera.reset(self._camera_points(tip), self.np_random)
+        obs = self._observation(angle, velocity, True)
+        info = self._info(angle, velocity, tip, _distance(tip, self._target))
         return obs, info
 
     def step(self, action: np.ndarray) -> tuple[dict[str, Any], float, bool, bool, dict[str, Any]]:
         """Send one command, advance ``1 / control_hz`` s, read the sensors."""
-        world = self._world()
+        world = self.world
+        if world is None:
+            raise RuntimeError("env is closed")
         try:
             command = np.asarray(action, dtype=float)
         except (TypeError, ValueError) as exc:
             raise ValueError(
                 f"action: expected {self.action_space.shape[0]} numbers, got {action!r}"
             ) from exc
-        if command.shape != self.action_space.shape:
+        if command.shape != self._action_shape:
             raise ValueError(
                 f"action: expected shape {self.action_space.shape}, got {command.shape}"
             )
-        if not np.all(np.isfinite(command)):
+        if not all(map(math.isfinite, command.tolist())):
             raise ValueError(f"action: must be finite, got {command.tolist()}")
-        command = np.clip(command, self.action_space.low, self.action_space.high)
+        command = _clip(command, self._action_low, self._action_high)
         self._last_action = command
 
         world.send_command(self.control, command)
         world.step()
-        if np.any(self._target_velocity):
-            self._target = self._target + self._target_velocity / self.control_hz
+        if self._target_moving:
+            self._set_target(self._target + self._target_velocity / self.control_hz)
             world.move_body(self._target_marker, self._target)
         angle, velocity = world.joint_state()
         tip = world.tip_position()
-        frame = self._camera.observe({"tip": tip, "target": self._target}, self.np_random)
-        obs = self._observation(angle, velocity, frame)
+        fresh = self._camera.advance(self._camera_points(tip), self.np_random)
+        obs = self._observation(angle, velocity, fresh)
 
         self._step_count += 1
-        distance = float(np.linalg.norm(tip - self._target))
+        distance = _distance(tip, self._target)
         self._success.update(distance <= self.tolerance_m)
         reward = -distance + (SUCCESS_BONUS if self._success.held else 0.0)
-        info = self._info(angle, velocity, tip)
+        info = self._info(angle, velocity, tip, distance)
         truncated = self._step_count >= self.max_steps
         return obs, float(reward), False, bool(truncated), info
 
@@ -533,6 +543,7 @@ class ArmReachEnv(gym.Env):
         if velocity.shape != (3,) or not np.all(np.isfinite(velocity)):
             raise ConfigError(f"velocity_m_s: expected 3 finite values (m/s), got {velocity_m_s!r}")
         self._target_velocity = velocity.copy()
+        self._target_moving = bool(np.any(velocity))
 
     def contacts(self) -> list:
         """Arm contacts with the bench, trays and itself (``blanket.sim.Contact`` list)."""
@@ -544,31 +555,47 @@ class ArmReachEnv(gym.Env):
             raise RuntimeError("env is closed")
         return self.world
 
-    def _observation(self, angle: np.ndarray, velocity: np.ndarray, frame) -> dict[str, Any]:
+    def _set_target(self, target: np.ndarray) -> None:
+        """The target and its clipped copy for the observation (made once per change)."""
+        self._target = target
+        self._target_obs = _clip(target, -TARGET_BOUND_M, TARGET_BOUND_M)
+
+    def _camera_points(self, tip: np.ndarray) -> dict[str, np.ndarray]:
+        return {"tip": tip, "target": self._target}
+
+    def _observation(self, angle: np.ndarray, velocity: np.ndarray, fresh: bool) -> dict[str, Any]:
         read_angle, read_velocity = self._encoders.read(angle, velocity, self.np_random)
+        camera = self._camera
+        if fresh:  # the clipped pixels change only with a frame
+            pixel = camera.pixel_px
+            self._tip_pixel = _clip(pixel["tip"], self._pixel_low, self._pixel_high)
+            self._target_pixel = _clip(pixel["target"], self._pixel_low, self._pixel_high)
+        visible = camera.visible
         return {
-            "joint_angle_rad": np.clip(read_angle, self._obs_angle_low, self._obs_angle_high),
-            "joint_velocity_rad_s": np.clip(
-                read_velocity, -self._velocity_bound, self._velocity_bound
+            "joint_angle_rad": _clip(read_angle, self._obs_angle_low, self._obs_angle_high),
+            "joint_velocity_rad_s": _clip(
+                read_velocity, self._neg_velocity_bound, self._velocity_bound
             ),
-            "target_position_m": np.clip(self._target, -TARGET_BOUND_M, TARGET_BOUND_M),
-            "tip_pixel_px": np.clip(frame.pixel_px["tip"], self._pixel_low, self._pixel_high),
-            "tip_visible": int(frame.visible["tip"]),
-            "target_pixel_px": np.clip(frame.pixel_px["target"], self._pixel_low, self._pixel_high),
-            "target_visible": int(frame.visible["target"]),
-            "camera_fresh": int(frame.fresh),
+            "target_position_m": self._target_obs.copy(),
+            "tip_pixel_px": self._tip_pixel.copy(),
+            "tip_visible": int(visible["tip"]),
+            "target_pixel_px": self._target_pixel.copy(),
+            "target_visible": int(visible["target"]),
+            "camera_fresh": int(fresh),
         }
 
-    def _info(self, angle: np.ndarray, velocity: np.ndarray, tip: np.ndarray) -> dict[str, Any]:
-        world = self._world()
-        distance = float(np.linalg.norm(tip - self._target))
+    def _info(
+        self, angle: np.ndarray, velocity: np.ndarray, tip: np.ndarray, distance: float
+    ) -> dict[str, Any]:
+        world = self.world
+        assert world is not None
         return {
             "distance_m": distance,
             "inside_tolerance": distance <= self.tolerance_m,
             "success": self._success.success,
             "time_to_success_s": self._success.time_to_success_s,
             "time_s": self._step_count / self.control_hz,
-            "contact": bool(world.contacts()),
+            "contact": world.in_contact(),
             "external": {
                 "joint_angle_rad": angle.copy(),
                 "joint_velocity_rad_s": velocity.copy(),
@@ -580,6 +607,13 @@ class ArmReachEnv(gym.Env):
                 "target_velocity_m_s": self._target_velocity.copy(),
             },
         }
+
+
+def _distance(a: np.ndarray, b: np.ndarray) -> float:
+    """``float(np.linalg.norm(a - b))`` for 3-vectors, bit for bit (``sqrt`` of the dot product,
+    as numpy's 2-norm of a 1-D float array), without the general norm's dispatch."""
+    d = a - b
+    return float(np.sqrt(d.dot(d)))
 
 
 class PlanarReachEnv(ArmReachEnv):

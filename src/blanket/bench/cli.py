@@ -81,6 +81,20 @@ def add_bench_parser(sub: Any) -> argparse.ArgumentParser:
         "./blanket-runs/); a non-empty folder is refused unless --overwrite",
     )
     p.add_argument("--overwrite", action="store_true", help="reuse a non-empty --out folder")
+    p.add_argument(
+        "--resume",
+        action="store_true",
+        help="continue an interrupted run in --out (same settings): finished (policy, "
+        "condition) cells are read from its cells.jsonl, not run again",
+    )
+    from blanket.tune.engines import add_engine_arguments
+
+    add_engine_arguments(
+        p,
+        1,
+        "(policy, condition) cells in parallel (default 1: in this process); the results "
+        "do not depend on it",
+    )
     p.add_argument("--list", action="store_true", help="print built-in policies and conditions")
     p.add_argument("--quiet", action="store_true", help="no progress lines")
     return p
@@ -109,6 +123,10 @@ def run_bench(args: argparse.Namespace) -> int:
         return 0
     from blanket.runner import prepare_out_dir
 
+    if args.address is not None and args.engine != "ray":
+        raise ConfigError("--address applies to --engine ray only")
+    if args.resume and args.out is None:
+        raise ConfigError("--resume needs --out DIR (the folder of the interrupted run)")
     settings = BenchSettings.from_cli(
         quick=args.quick,
         policies=_names(args.policies),
@@ -119,8 +137,16 @@ def run_bench(args: argparse.Namespace) -> int:
         episode_s=args.episode_s,
         rl_models=args.rl_models,
     )
-    out = prepare_out_dir(args.out, args.overwrite, prefix="bench")
-    summary = run_benchmark(settings, out, progress=not args.quiet)
+    out = prepare_out_dir(args.out, args.overwrite or args.resume, prefix="bench")
+    summary = run_benchmark(
+        settings,
+        out,
+        progress=not args.quiet,
+        engine=args.engine,
+        workers=args.workers,
+        address=args.address,
+        resume=args.resume,
+    )
     print(f"\n  {len(summary['records'])} records in {summary['wall_s']:.0f} s")
     if args.quiet:  # a notice, not progress: printed at the start unless --quiet
         for line in settings.left_out:

@@ -15,7 +15,15 @@ from blanket.bench.policies import POLICIES, PolicySpec, resolve_policy
 from blanket.conditions import PRESETS, Condition, resolve_conditions
 from blanket.errors import ConfigError
 
-__all__ = ["BenchSettings", "run_benchmark", "DEFAULT_POLICIES", "QUICK_POLICIES", "ROBOTS"]
+__all__ = [
+    "BenchSettings",
+    "run_benchmark",
+    "evaluate_cell",
+    "without_timing",
+    "DEFAULT_POLICIES",
+    "QUICK_POLICIES",
+    "ROBOTS",
+]
 
 ROBOTS = ("iiwa", "panda", "xarm6", "planar")
 DEFAULT_POLICIES = tuple(POLICIES)
@@ -125,20 +133,145 @@ def _note(spec: PolicySpec, condition: Condition) -> str:
     return ""
 
 
+#: The resume journal of a benchmark folder: one JSON line per finished cell (fsynced).
+CELLS = "cells.jsonl"
+#: What the folder's cells were run for: a resumed run must ask for the same.
+GRID = "bench-grid.json"
+#: Record fields measured on the clock (not reproducible; everything else is).
+TIMING_FIELDS = ("wall_s", "policy_step_us")
+
+
+def without_timing(value: Any) -> Any:
+    """``results.json`` content (records, or any part) without :data:`TIMING_FIELDS`: the part
+    every run of the same settings reproduces, whatever the engine."""
+    if isinstance(value, dict):
+        return {k: without_timing(v) for k, v in value.items() if k not in TIMING_FIELDS}
+    if isinstance(value, list):
+        return [without_timing(v) for v in value]
+    return value
+
+
+def cell_key(policy: str, condition: str) -> str:
+    """The journal key of one (policy, condition) cell."""
+    return f"{policy} | {condition}"
+
+
+def evaluate_cell(payload: dict[str, Any]) -> dict[str, Any]:
+    """One cell of the grid: a policy's episodes under one condition (a pure function of the
+    payload, so any engine gives the same numbers).
+
+    Parameters
+    ----------
+    payload : dict
+        ``index``, ``policy``, ``condition`` (names), ``settings`` (a :class:`BenchSettings`
+        as a dict) and ``context`` (``rl_models``, ``rl_meta``).
+
+    Returns
+    -------
+    dict
+        ``index``, ``key`` and ``record`` (one ``results.json`` record).
+    """
+    from blanket.tune.engines import cached_env
+
+    settings = BenchSettings(**payload["settings"])
+    context = payload["context"]
+    spec = resolve_policy(payload["policy"])
+    condition = resolve_conditions([payload["condition"]])[0]
+    control = spec.control
+    # one env per (condition, control) and worker, shared by the policies it runs in turn
+    env = cached_env(
+        ["bench", settings.robot, control, settings.episode_s, condition.name],
+        lambda: _make_env(settings, control, condition),
+    )
+    model_options = dict(condition.model_options) if spec.model_based else {}
+    policy = spec.build(env, model_options, context)
+    t0 = time.perf_counter()
+    seeds = [settings.seed + i for i in range(settings.episodes)]
+    rows = [episode_metrics(t) for t in run_policy_episodes(env, policy, seeds)]
+    record: dict[str, Any] = {
+        "policy": spec.name,
+        "condition": condition.name,
+        "control": control,
+        "robot": settings.robot,
+        **aggregate(rows, seed=settings.seed),
+        "training_steps": None,
+        "training_wall_s": None,
+        "note": _note(spec, condition),
+        "wall_s": time.perf_counter() - t0,
+    }
+    meta = context["rl_meta"].get(spec.rl_algo or "")
+    if meta:
+        record["training_steps"] = meta.get("control_steps")
+        record["training_policy_steps"] = meta.get("policy_steps")
+        record["training_wall_s"] = meta.get("wall_time_s")
+        if settings.smoke_rl:
+            record["note"] = "smoke model, a few hundred steps: not a result"
+    record["per_episode"] = rows
+    record = json.loads(json.dumps(record, default=_json))  # plain JSON types, as journaled
+    return {
+        "index": payload["index"],
+        "key": cell_key(spec.name, condition.name),
+        "record": record,
+    }
+
+
+def open_bench_dir(out: Path, settings: BenchSettings, resume: bool) -> list[dict[str, Any]]:
+    """Prepare ``out`` for the grid of ``settings``; the records of finished cells (resume).
+
+    Without ``resume`` any earlier journal is discarded. With it, a folder whose grid differs
+    is refused (one-line :class:`~blanket.errors.ConfigError`).
+    """
+    from blanket.tune.results import Journal, _differences
+
+    grid = json.loads(json.dumps(asdict(settings), default=_json))
+    grid_path = out / GRID
+    journal = Journal(out / CELLS, required=("key", "record"))
+    if resume and grid_path.is_file():
+        old = json.loads(grid_path.read_text(encoding="utf-8"))
+        diff = _differences(old, grid)
+        if diff:
+            raise ConfigError(
+                f"--resume: {str(out)!r} holds a different benchmark (differs in: "
+                f"{', '.join(diff)}); drop --resume and pass --overwrite to start over"
+            )
+        return journal.read()
+    journal.path.unlink(missing_ok=True)
+    tmp = out / f".{GRID}.tmp"
+    tmp.write_text(json.dumps(grid, indent=1, sort_keys=True) + "\n", encoding="utf-8")
+    tmp.replace(grid_path)
+    return []
+
+
 def run_benchmark(
-    settings: BenchSettings, out_dir: str | Path, progress: bool = True
+    settings: BenchSettings,
+    out_dir: str | Path,
+    progress: bool = True,
+    engine: str = "local",
+    workers: int | None = 1,
+    address: str | None = None,
+    resume: bool = False,
 ) -> dict[str, Any]:
     """Run the suite; write ``results.json``, ``report.md`` and charts into ``out_dir``.
 
     Episode ``i`` of every (policy, condition) uses seed ``settings.seed + i``: the same
     targets, start postures, sensor noise and perturbations for every policy.
+
+    The (policy, condition) cells run on an engine of :mod:`blanket.tune.engines` (``local``
+    with ``workers`` processes -- 1 runs in this process -- or ``ray``, on a cluster at
+    ``address``): each cell is :func:`evaluate_cell`, so the records are the same on every
+    engine (only their :data:`TIMING_FIELDS` are measured). Each finished cell is journaled
+    (``cells.jsonl``); with ``resume`` a rerun into the same folder skips the finished cells.
     """
     from blanket.bench.report import write_report
+    from blanket.tune.engines import make_engine
+    from blanket.tune.results import Journal
 
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     start = time.perf_counter()
     context: dict[str, Any] = {"rl_models": settings.rl_models, "rl_meta": {}}
+    finished = {r["key"]: r["record"] for r in open_bench_dir(out, settings, resume)}
+    journal = Journal(out / CELLS, required=("key", "record"))
     if progress:
         for line in settings.left_out:
             print(f"  left out {line}", flush=True)
@@ -146,21 +279,23 @@ def run_benchmark(
         from blanket.bench.rl import TrainSettings, train
 
         smoke_dir = out / "rl-smoke"
-        if progress:
-            print(
-                f"  training a SAC smoke model ({SMOKE_RL_STEPS} steps; not a result)", flush=True
+        if not (resume and (smoke_dir / "sac.zip").is_file()):
+            if progress:
+                print(
+                    f"  training a SAC smoke model ({SMOKE_RL_STEPS} steps; not a result)",
+                    flush=True,
+                )
+            train(
+                TrainSettings(
+                    algo="sac",
+                    steps=SMOKE_RL_STEPS,
+                    robot=settings.robot,
+                    episode_s=settings.episode_s,
+                    eval_every=10 * SMOKE_RL_STEPS,
+                    eval_episodes=1,
+                ),
+                smoke_dir,
             )
-        train(
-            TrainSettings(
-                algo="sac",
-                steps=SMOKE_RL_STEPS,
-                robot=settings.robot,
-                episode_s=settings.episode_s,
-                eval_every=10 * SMOKE_RL_STEPS,
-                eval_episodes=1,
-            ),
-            smoke_dir,
-        )
         context["rl_models"] = str(smoke_dir)
     specs = [resolve_policy(p) for p in settings.policies]
     for spec in specs:
@@ -169,49 +304,42 @@ def run_benchmark(
             if meta_path.is_file():
                 context["rl_meta"][spec.rl_algo] = json.loads(meta_path.read_text())
     conditions = resolve_conditions(settings.conditions)
-    records: list[dict[str, Any]] = []
+    plain = asdict(settings)
+    payloads = []
+    # cells in the order of the in-process loop: condition, control, policy
     for condition in conditions:
         for control in sorted({s.control for s in specs}):
-            env = _make_env(settings, control, condition)
-            try:
-                for spec in (s for s in specs if s.control == control):
-                    model_options = dict(condition.model_options) if spec.model_based else {}
-                    policy = spec.build(env, model_options, context)
-                    t0 = time.perf_counter()
-                    seeds = [settings.seed + i for i in range(settings.episodes)]
-                    rows = [episode_metrics(t) for t in run_policy_episodes(env, policy, seeds)]
-                    record: dict[str, Any] = {
+            for spec in (s for s in specs if s.control == control):
+                if cell_key(spec.name, condition.name) in finished:
+                    continue
+                payloads.append(
+                    {
+                        "index": len(payloads),
                         "policy": spec.name,
                         "condition": condition.name,
-                        "control": control,
-                        "robot": settings.robot,
-                        **aggregate(rows, seed=settings.seed),
-                        "training_steps": None,
-                        "training_wall_s": None,
-                        "note": _note(spec, condition),
-                        "wall_s": time.perf_counter() - t0,
+                        "settings": plain,
+                        "context": context,
                     }
-                    meta = context["rl_meta"].get(spec.rl_algo or "")
-                    if meta:
-                        record["training_steps"] = meta.get("control_steps")
-                        record["training_policy_steps"] = meta.get("policy_steps")
-                        record["training_wall_s"] = meta.get("wall_time_s")
-                        if settings.smoke_rl:
-                            record["note"] = "smoke model, a few hundred steps: not a result"
-                    record["per_episode"] = rows
-                    records.append(record)
-                    if progress:
-                        print(
-                            f"  {condition.name:<22} {spec.name:<28} reached 1 cm "
-                            f"{record['success_1cm'] * 100:3.0f} %  5 cm "
-                            f"{record['success_5cm'] * 100:3.0f} %  final error "
-                            f"{(record['final_error_m'] or 0) * 100:6.2f} cm",
-                            flush=True,
-                        )
-            finally:
-                env.close()
+                )
+    if progress and finished:
+        print(f"  resumed: {len(finished)} cells from {CELLS}, {len(payloads)} to run", flush=True)
+    with make_engine(engine, workers, address) as eng:
+        for result in eng.imap(payloads, evaluate_cell):
+            record = result["record"]
+            journal.append(result)
+            finished[result["key"]] = record
+            if progress:
+                print(
+                    f"  {record['condition']:<22} {record['policy']:<28} reached 1 cm "
+                    f"{record['success_1cm'] * 100:3.0f} %  5 cm "
+                    f"{record['success_5cm'] * 100:3.0f} %  final error "
+                    f"{(record['final_error_m'] or 0) * 100:6.2f} cm",
+                    flush=True,
+                )
+    keys = [cell_key(s.name, c.name) for c in conditions for s in specs]
     p_rank = {s.name: i for i, s in enumerate(specs)}
     c_rank = {c.name: i for i, c in enumerate(conditions)}
+    records = [finished[k] for k in keys]
     records.sort(key=lambda r: (c_rank[r["condition"]], p_rank[r["policy"]]))
     wall = time.perf_counter() - start
     (out / "results.json").write_text(json.dumps(records, indent=1, default=_json) + "\n")

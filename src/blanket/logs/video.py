@@ -24,12 +24,12 @@ from pathlib import Path
 import imageio
 import numpy as np
 import pandas as pd
-import pybullet
-from pybullet_utils.bullet_client import BulletClient
 
 from blanket.logs.plots import load_episode
 from blanket.logs.reader import read_metadata
 from blanket.logs.schema import LogError
+from blanket.sim.bullet import Client as BulletClient
+from blanket.sim.bullet import pybullet
 
 __all__ = ["replay_video", "has_mp4_writer", "tip_positions"]
 

@@ -198,18 +198,47 @@ class PointCamera:
         self._visible = dict.fromkeys(points_m, False)
         return self._take(points_m, rng)
 
-    def observe(self, points_m: Mapping[str, np.ndarray], rng: np.random.Generator) -> CameraFrame:
-        """Advance one control step; take a frame when one is due."""
+    @property
+    def pixel_px(self) -> dict[str, np.ndarray]:
+        """Last seen (noisy) pixel of each watched point (the camera's own arrays: copy them
+        to keep them; a frame replaces, never changes, them)."""
+        return self._pixel
+
+    @property
+    def visible(self) -> dict[str, bool]:
+        """Whether each point was seen in the latest frame (the camera's own dict)."""
+        return self._visible
+
+    def advance(self, points_m: Mapping[str, np.ndarray], rng: np.random.Generator) -> bool:
+        """Advance one control step, taking a frame when one is due; whether one was taken.
+
+        The cheap form of :meth:`observe` for an env that reads :attr:`pixel_px` and
+        :attr:`visible` itself: no per-step copies, no ray test between frames.
+        """
         self._steps += 1
         if self._steps % self.period_steps == 0:
-            return self._take(points_m, rng)
+            self._update(points_m, rng)
+            return True
+        return False
+
+    def observe(self, points_m: Mapping[str, np.ndarray], rng: np.random.Generator) -> CameraFrame:
+        """Advance one control step; take a frame when one is due."""
+        fresh = self.advance(points_m, rng)
         return CameraFrame(
             pixel_px={k: v.copy() for k, v in self._pixel.items()},
             visible=dict(self._visible),
-            fresh=False,
+            fresh=fresh,
         )
 
     def _take(self, points_m: Mapping[str, np.ndarray], rng: np.random.Generator) -> CameraFrame:
+        self._update(points_m, rng)
+        return CameraFrame(
+            pixel_px={k: v.copy() for k, v in self._pixel.items()},
+            visible=dict(self._visible),
+            fresh=True,
+        )
+
+    def _update(self, points_m: Mapping[str, np.ndarray], rng: np.random.Generator) -> None:
         noise = self.camera.pixel_noise_px
         for name, point in points_m.items():
             pixel, inside = in_view(self.camera, point)
@@ -220,8 +249,3 @@ class PointCamera:
             if seen:
                 self._pixel[name] = pixel + draw
             self._visible[name] = bool(seen)
-        return CameraFrame(
-            pixel_px={k: v.copy() for k, v in self._pixel.items()},
-            visible=dict(self._visible),
-            fresh=True,
-        )

@@ -1,24 +1,32 @@
 """A fixed-base URDF arm in its own pybullet client: load, step, reset, perturb, look.
 
-One :class:`ArmWorld` owns one ``pybullet_utils.bullet_client.BulletClient`` (DIRECT, or GUI
-for a human viewer), so several worlds run side by side in one process. The robot's base sits
+One :class:`ArmWorld` owns one :class:`blanket.sim.bullet.Client` (a
+``pybullet_utils.bullet_client.BulletClient``; DIRECT, or GUI for a human viewer), so several
+worlds run side by side in one process. The robot's base sits
 at the world origin with identity orientation: the base frame *is* the world frame.
 
 Every motor command to the controlled joints goes through :meth:`ArmWorld.send_command`, the
 one place that calls ``setJointMotorControlArray`` for them, so a safety check can inspect the
 values at the motor call itself.
+
+The true joint state and the tool-tip position are read from pybullet once per physics state:
+:meth:`ArmWorld.joint_state` and :meth:`ArmWorld.tip_position` keep their last reading until
+the world steps, resets or moves the joints (the env, the safety wrapper before the next
+command and its speed check all read the same state). Their arrays are read-only; copy them to
+change them. A change made through ``world.client`` directly is seen after the next
+:meth:`ArmWorld.step` (or call :meth:`ArmWorld.forget_state`).
 """
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
-import pybullet
-from pybullet_utils.bullet_client import BulletClient
 
 from blanket.errors import ConfigError
+from blanket.sim.bullet import Client, pybullet
 from blanket.sim.urdf_limits import JointLimit, read_joint_limits, read_link_names
 
 __all__ = ["ArmWorld", "Contact", "CONTROL_MODES"]
@@ -114,7 +122,7 @@ class ArmWorld:
         self.joint_names: tuple[str, ...] = tuple(controlled_joints)
         self.gravity_m_s2 = np.asarray(gravity_m_s2, dtype=float).copy()
 
-        self.client = BulletClient(connection_mode=pybullet.GUI if gui else pybullet.DIRECT)
+        self.client = Client(pybullet.GUI if gui else pybullet.DIRECT)
         self._connected = True
         c = self.client
         c.resetSimulation()
@@ -153,6 +161,10 @@ class ArmWorld:
             )
         self.tip_link = link_index[end_effector]
         self.joint_indices: tuple[int, ...] = tuple(joint_index[n] for n in self.joint_names)
+        self._joint_list = list(self.joint_indices)  # the argument pybullet's calls take
+        self._n = len(self.joint_indices)
+        self._state: tuple[np.ndarray, np.ndarray] | None = None  # last joint_state reading
+        self._tip: np.ndarray | None = None  # last tip_position reading
         held = dict(held_joint_positions or {})
         self._held: list[tuple[int, float, float]] = []
         for name, limit in limits.items():
@@ -163,6 +175,10 @@ class ArmWorld:
         self._dof_angles = np.zeros(len(self._movable))
         for j, position, _ in self._held:
             self._dof_angles[self._movable.index(j)] = position
+        # Every movable joint controlled, in pybullet's order: dynamics calls take the values as
+        # they are.
+        self._all_controlled = self._dof_columns.tolist() == list(range(len(self._movable)))
+        self._zero_dofs = [0.0] * len(self._movable)
 
         # URDF joint damping made a torque-controlled wrist blow up at 240 Hz: zero all damping.
         for link in range(-1, n_bullet):
@@ -246,29 +262,29 @@ class ArmWorld:
         values : numpy.ndarray, shape (n_joints,)
             Target joint velocities or torques, in :attr:`joint_names` order.
         """
-        if mode not in CONTROL_MODES:
-            raise ConfigError(f"control: must be one of {CONTROL_MODES}, got {mode!r}")
+        if mode != self._mode:
+            if mode not in CONTROL_MODES:
+                raise ConfigError(f"control: must be one of {CONTROL_MODES}, got {mode!r}")
         values = np.asarray(values, dtype=float)
-        if values.shape != (len(self.joint_indices),) or not np.all(np.isfinite(values)):
-            raise ValueError(
-                f"command: expected {len(self.joint_indices)} finite values, got {values!r}"
-            )
+        listed = values.tolist()
+        if values.shape != (self._n,) or not all(map(math.isfinite, listed)):
+            raise ValueError(f"command: expected {self._n} finite values, got {values!r}")
         if mode != self._mode:
             self._configure_motors(mode)
         if mode == "velocity":
             self.client.setJointMotorControlArray(
                 self.robot,
-                list(self.joint_indices),
+                self._joint_list,
                 pybullet.VELOCITY_CONTROL,
-                targetVelocities=values.tolist(),
+                targetVelocities=listed,
                 forces=self._velocity_motor_force,
             )
         else:
             self.client.setJointMotorControlArray(
                 self.robot,
-                list(self.joint_indices),
+                self._joint_list,
                 pybullet.TORQUE_CONTROL,
-                forces=values.tolist(),
+                forces=listed,
             )
 
     # ------------------------------------------------------------------ state
@@ -278,6 +294,7 @@ class ArmWorld:
         The payload set by :meth:`set_payload` is kept; a pending push is cancelled.
         """
         c = self.client
+        self.forget_state()
         c.restoreState(self._initial_state)
         angle_rad = np.asarray(angle_rad, dtype=float)
         velocity = np.zeros_like(angle_rad) if velocity_rad_s is None else velocity_rad_s
@@ -290,16 +307,34 @@ class ArmWorld:
         self._configure_motors(self._mode)
         c.performCollisionDetection()  # so contacts() describes the new posture
 
+    def forget_state(self) -> None:
+        """Drop the kept joint-state and tip readings: the next calls ask pybullet."""
+        self._state = None
+        self._tip = None
+
     def joint_state(self) -> tuple[np.ndarray, np.ndarray]:
-        """True angles (rad) and velocities (rad/s) of the controlled joints."""
-        states = self.client.getJointStates(self.robot, list(self.joint_indices))
-        return (
-            np.array([s[0] for s in states], dtype=float),
-            np.array([s[1] for s in states], dtype=float),
-        )
+        """True angles (rad) and velocities (rad/s) of the controlled joints (read-only
+        arrays, read once per physics state)."""
+        state = self._state
+        if state is None:
+            states = self.client.getJointStates(self.robot, self._joint_list)
+            angle = np.array([s[0] for s in states], dtype=float)
+            velocity = np.array([s[1] for s in states], dtype=float)
+            angle.flags.writeable = False
+            velocity.flags.writeable = False
+            state = self._state = (angle, velocity)
+        return state
 
     def tip_position(self) -> np.ndarray:
-        """World (= base) position of the tool tip link's URDF frame origin, m."""
+        """World (= base) position of the tool tip link's URDF frame origin, m (read-only,
+        read once per physics state)."""
+        tip = self._tip
+        if tip is None:
+            tip = self._tip = self._read_tip()
+            tip.flags.writeable = False
+        return tip
+
+    def _read_tip(self) -> np.ndarray:
         state = self.client.getLinkState(self.robot, self.tip_link, computeForwardKinematics=True)
         return np.array(state[4], dtype=float)
 
@@ -309,11 +344,12 @@ class ArmWorld:
         Moves the joints to each configuration and reads pybullet's forward kinematics; the
         caller resets the world afterwards (:meth:`reset_joints`).
         """
+        self.forget_state()
         out = np.empty((len(angles_rad), 3))
         for i, q in enumerate(np.asarray(angles_rad, dtype=float)):
             for j, qj in zip(self.joint_indices, q, strict=True):
                 self.client.resetJointState(self.robot, j, float(qj), 0.0)
-            out[i] = self.tip_position()
+            out[i] = self._read_tip()
         return out
 
     def step(self) -> None:
@@ -327,6 +363,8 @@ class ArmWorld:
                 flags=pybullet.WORLD_FRAME,
             )
             self._push_steps_left -= 1
+        self._state = None
+        self._tip = None
         self.client.stepSimulation()
 
     # ---------------------------------------------------------- perturbations
@@ -417,6 +455,11 @@ class ArmWorld:
         )
 
     # -------------------------------------------------------------- contacts
+    def in_contact(self) -> bool:
+        """Whether the arm touches an added body or itself (after the last step): the same
+        answer as ``bool(contacts())`` without building the contact list."""
+        return bool(self.client.getContactPoints(bodyA=self.robot))
+
     def contacts(self) -> list[Contact]:
         """Contacts of the arm with added bodies and with itself (after the last step)."""
         c = self.client
@@ -486,6 +529,8 @@ class ArmWorld:
     # ------------------------------------------------------------ dynamics
     def _all_dofs(self, values: np.ndarray | None, held: np.ndarray | None = None) -> list[float]:
         """Controlled-joint values spread over every movable joint (held ones: ``held`` or 0)."""
+        if self._all_controlled:
+            return self._zero_dofs if values is None else np.asarray(values, dtype=float).tolist()
         out = np.zeros(len(self._movable)) if held is None else held.copy()
         if values is not None:
             out[self._dof_columns] = np.asarray(values, dtype=float)
@@ -507,18 +552,22 @@ class ArmWorld:
             self._all_dofs(velocity_rad_s),
             self._all_dofs(acceleration_rad_s2),
         )
+        if self._all_controlled:
+            return np.array(tau, dtype=float)
         return np.asarray(tau, dtype=float)[self._dof_columns]
 
     def mass_matrix(self, angle_rad: np.ndarray) -> np.ndarray:
         """Joint-space inertia matrix M(q) of the controlled joints, (n, n), from pybullet's
         ``calculateMassMatrix`` (held joints at their hold positions; as loaded, no payload)."""
         M = self.client.calculateMassMatrix(self.robot, self._all_dofs(angle_rad, self._dof_angles))
+        if self._all_controlled:
+            return np.array(M, dtype=float)
         return np.asarray(M, dtype=float)[np.ix_(self._dof_columns, self._dof_columns)]
 
     def tip_jacobian(self, angle_rad: np.ndarray) -> np.ndarray:
         """Linear Jacobian (3, n) of the tool tip link's URDF frame origin, world (= base)
         frame, at joint angles ``angle_rad`` (pybullet's ``calculateJacobian``)."""
-        zeros = [0.0] * len(self._movable)
+        zeros = self._zero_dofs
         # localPosition [0, 0, 0] is the link's URDF frame origin (measured against finite
         # differences of getLinkState's worldLinkFramePosition in tests/test_sim.py).
         linear, _ = self.client.calculateJacobian(

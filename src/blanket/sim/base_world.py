@@ -1,7 +1,7 @@
 """A wheeled base on a floor with bench rows, posts and a dock, in its own pybullet client.
 
-One :class:`BaseWorld` owns one ``pybullet_utils.bullet_client.BulletClient`` (DIRECT, or GUI
-for a human viewer), so several worlds run side by side in one process, as :class:`ArmWorld`
+One :class:`BaseWorld` owns one :class:`blanket.sim.bullet.Client` (a ``BulletClient``; DIRECT,
+or GUI for a human viewer), so several worlds run side by side in one process, as :class:`ArmWorld`
 does for arms. Physics runs at :data:`PHYSICS_HZ`; the wheels are driven by pybullet's velocity
 motors at the robot's torque limit. The world knows nothing of tasks, rewards or sensors: the
 env (``blanket/base-goto-v0``) and the sensor models read it.
@@ -19,9 +19,10 @@ from dataclasses import dataclass
 from typing import Protocol
 
 import numpy as np
-import pybullet
 import pybullet_data
 from pybullet_utils.bullet_client import BulletClient
+
+from blanket.sim.bullet import Client, pybullet
 
 __all__ = [
     "PHYSICS_HZ",
@@ -145,7 +146,7 @@ class BaseWorld:
         rest_pose: np.ndarray | tuple[float, float, float] = (0.0, 0.0, 0.0),
     ) -> None:
         self.spec = spec
-        self.client = BulletClient(connection_mode=pybullet.GUI if gui else pybullet.DIRECT)
+        self.client = Client(pybullet.GUI if gui else pybullet.DIRECT)
         self._connected = True
         c = self.client
         c.setGravity(0, 0, -9.81)
@@ -168,6 +169,7 @@ class BaseWorld:
                 c.changeDynamics(self.body, link, mass=0.01, localInertiaDiagonal=[1e-5] * 3)
         dyn = c.getDynamicsInfo(self.body, -1)
         self._com_in_link = (tuple(dyn[3]), tuple(dyn[4]))
+        self._link_in_com = c.invertTransform(*self._com_in_link)  # fixed: found once
         # Height of the link origin above the floor when standing: the wheel axle for the rover
         # (wheel radius), the floor for the husky's base_footprint.
         self._stand_z = spec.wheel_radius_m if spec.urdf.endswith("rover.urdf") else 0.0
@@ -225,7 +227,7 @@ class BaseWorld:
         """World position and quaternion of the base *link* frame (not its inertial frame)."""
         c = self.client
         pos, orn = c.getBasePositionAndOrientation(self.body)
-        inv_pos, inv_orn = c.invertTransform(*self._com_in_link)
+        inv_pos, inv_orn = self._link_in_com
         p, q = c.multiplyTransforms(pos, orn, inv_pos, inv_orn)
         return np.array(p), np.array(q)
 

@@ -10,7 +10,7 @@ from typing import Any
 from blanket.cli_types import positive_int as _positive_int
 from blanket.cli_types import seed as _seed
 from blanket.errors import ConfigError
-from blanket.tune.engines import condition_names
+from blanket.tune.engines import add_engine_arguments, condition_names
 
 __all__ = ["add_tune_parser", "run_tune"]
 
@@ -116,26 +116,7 @@ def add_tune_parser(sub: Any) -> argparse.ArgumentParser:
         metavar="S",
         help="seed of the random draws / optuna sampler (default 0)",
     )
-    p.add_argument(
-        "--engine",
-        default="local",
-        choices=("local", "ray"),
-        help="local: a process pool on this machine; ray: Ray tasks (default local)",
-    )
-    p.add_argument(
-        "--address",
-        default=None,
-        metavar="ADDR",
-        help="Ray cluster: auto, HOST:PORT or ray://HOST:PORT (default: start a "
-        "local Ray instance)",
-    )
-    p.add_argument(
-        "--workers",
-        type=_positive_int,
-        default=None,
-        metavar="K",
-        help="parallel trials (default: all cores; 1 runs in this process)",
-    )
+    add_engine_arguments(p, None, "parallel trials (default: all cores; 1 runs in this process)")
     p.add_argument(
         "--out",
         metavar="DIR",

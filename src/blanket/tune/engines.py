@@ -1,8 +1,10 @@
 """Where trials run: this process, a local process pool, or Ray.
 
-Every engine runs the same pure function, :func:`evaluate_trial`, on the same plain-dict
-payloads, so a trial gives the same numbers whatever the engine: the env is reset with each
-seed (``env.reset(seed=s)``) and the agent is built fresh for each trial.
+Every engine runs the same pure function on the same plain-dict payloads -- a sweep's
+:func:`evaluate_trial`, or another importable task such as the benchmark's
+:func:`blanket.bench.suite.evaluate_cell` (``imap(payloads, task)``) -- so a trial gives the
+same numbers whatever the engine: the env is reset with each seed (``env.reset(seed=s)``) and
+the agent is built fresh for each trial.
 
 The process pool uses the ``forkserver`` start method (``spawn`` where there is none): forking
 a process that holds a pybullet connection is unsafe, while the fork server imports the heavy
@@ -32,9 +34,14 @@ __all__ = [
     "LocalEngine",
     "RayEngine",
     "make_engine",
+    "cached_env",
+    "add_engine_arguments",
 ]
 
 ENGINES = ("local", "ray")
+#: A trial function: a plain-dict payload in, a plain dict out (module level, so that worker
+#: processes and Ray can import it).
+Task = Callable[[Mapping[str, Any]], dict[str, Any]]
 SINGLE_THREAD_ENV = {
     "OMP_NUM_THREADS": "1",
     "OPENBLAS_NUM_THREADS": "1",
@@ -48,7 +55,7 @@ _PRELOAD = (
     "scipy.linalg",
     "pandas",
     "gymnasium",
-    "pybullet",
+    "blanket.sim.bullet",  # pybullet, imported quietly
     "pinocchio",
     "numba",
     "blanket.runner",
@@ -121,17 +128,23 @@ def condition_parts(
 _ENV_CACHE: dict[str, Any] = {}
 
 
-def _cached_env(env_id: str, env_options: Mapping[str, Any]) -> Any:
-    """One env per worker, rebuilt only when the env id or options change."""
-    from blanket.scenario import make_env
-
-    key = json.dumps([env_id, dict(env_options)], sort_keys=True, default=str)
-    env = _ENV_CACHE.get(key)
+def cached_env(key: Any, make: Callable[[], Any]) -> Any:
+    """One env per worker process, rebuilt (``make()``) only when ``key`` (JSON-able) changes;
+    the engines close it when they close."""
+    text = json.dumps(key, sort_keys=True, default=str)
+    env = _ENV_CACHE.get(text)
     if env is None:
         _drop_env_cache()
-        env = make_env(env_id, env_options)
-        _ENV_CACHE[key] = env
+        env = make()
+        _ENV_CACHE[text] = env
     return env
+
+
+def _cached_env(env_id: str, env_options: Mapping[str, Any]) -> Any:
+    """A sweep's env: :func:`cached_env` of the scenario's env id and options."""
+    from blanket.scenario import make_env
+
+    return cached_env([env_id, dict(env_options)], lambda: make_env(env_id, env_options))
 
 
 def _drop_env_cache() -> None:
@@ -228,9 +241,12 @@ class InProcessEngine:
     workers = 1
     name = "local"
 
-    def imap(self, payloads: Iterable[Mapping[str, Any]]) -> Iterator[dict[str, Any]]:
+    def imap(
+        self, payloads: Iterable[Mapping[str, Any]], task: Task | None = None
+    ) -> Iterator[dict[str, Any]]:
+        task = task or evaluate_trial
         for p in payloads:
-            yield evaluate_trial(p)
+            yield task(p)
 
     def close(self) -> None:
         _drop_env_cache()
@@ -285,8 +301,11 @@ class LocalEngine:
             max_workers=self.workers, mp_context=ctx, initializer=_init_worker
         )
 
-    def imap(self, payloads: Iterable[Mapping[str, Any]]) -> Iterator[dict[str, Any]]:
-        """Results in the order trials finish.
+    def imap(
+        self, payloads: Iterable[Mapping[str, Any]], task: Task | None = None
+    ) -> Iterator[dict[str, Any]]:
+        """Results of ``task`` (default :func:`evaluate_trial`; a module-level function) in the
+        order trials finish.
 
         Starting the workers takes a second or two (the fork server imports numpy, pybullet
         and blanket before the first worker can fork). Until the workers exist, this process
@@ -300,6 +319,7 @@ class LocalEngine:
         from concurrent.futures import FIRST_COMPLETED, wait
         from concurrent.futures.process import BrokenProcessPool
 
+        task = task or evaluate_trial
         queue = deque(dict(p) for p in payloads)
         pending: set[Any] = set()  # the start thread's until ``started``, then this thread's
         started = threading.Event()
@@ -311,7 +331,7 @@ class LocalEngine:
                     payload = queue.popleft()  # atomic: this process takes from the back
                 except IndexError:
                     return
-                pending.add(self._pool.submit(evaluate_trial, payload))
+                pending.add(self._pool.submit(task, payload))
 
         def start() -> None:
             # The first submit blocks until the fork server has imported everything: do it
@@ -330,7 +350,7 @@ class LocalEngine:
                     payload = queue.pop()
                 except IndexError:
                     break
-                yield evaluate_trial(payload)
+                yield task(payload)
             started.wait()
             if failure:
                 raise failure[0]
@@ -443,18 +463,24 @@ class RayEngine:
                 except ConnectionError as exc:
                     raise ConfigError(f"--address {address}: {str(exc).splitlines()[0]}") from None
             self._started = True
-        self._remote = ray.remote(num_cpus=1)(evaluate_trial)
+        self._remotes: dict[Task, Any] = {}
 
-    def imap(self, payloads: Iterable[Mapping[str, Any]]) -> Iterator[dict[str, Any]]:
-        """Results in the order trials finish."""
+    def imap(
+        self, payloads: Iterable[Mapping[str, Any]], task: Task | None = None
+    ) -> Iterator[dict[str, Any]]:
+        """Results of ``task`` (default :func:`evaluate_trial`) in the order trials finish."""
         ray = self._ray
+        task = task or evaluate_trial
+        remote = self._remotes.get(task)
+        if remote is None:
+            remote = self._remotes[task] = ray.remote(num_cpus=1)(task)
         queue = [dict(p) for p in payloads]
         limit = self.workers or len(queue) or 1
         in_flight: list[Any] = []
         try:
             while queue or in_flight:
                 while queue and len(in_flight) < limit:
-                    in_flight.append(self._remote.remote(queue.pop(0)))
+                    in_flight.append(remote.remote(queue.pop(0)))
                 done, in_flight = ray.wait(in_flight, num_returns=1)
                 for ref in done:
                     yield ray.get(ref)
@@ -472,6 +498,29 @@ class RayEngine:
 
     def __exit__(self, *exc: object) -> None:
         self.close()
+
+
+def add_engine_arguments(parser: Any, workers_default: int | None, workers_help: str) -> None:
+    """``--engine``, ``--address`` and ``--workers``: the engine options of ``blanket tune``
+    and ``blanket bench`` (read by :func:`make_engine`)."""
+    from blanket.cli_types import positive_int
+
+    parser.add_argument(
+        "--engine",
+        default="local",
+        choices=ENGINES,
+        help="local: a process pool on this machine; ray: Ray tasks (default local)",
+    )
+    parser.add_argument(
+        "--address",
+        default=None,
+        metavar="ADDR",
+        help="Ray cluster: auto, HOST:PORT or ray://HOST:PORT (default: start a "
+        "local Ray instance)",
+    )
+    parser.add_argument(
+        "--workers", type=positive_int, default=workers_default, metavar="K", help=workers_help
+    )
 
 
 def make_engine(engine: str, workers: int | None = None, address: str | None = None) -> Any:

@@ -53,10 +53,14 @@ _OUTPUTS = (JOURNAL, TABLE, BEST, SWEEP, "objective.png")
 
 
 class Journal:
-    """Append-only JSON-lines file of finished trials (one line per trial, fsynced)."""
+    """Append-only JSON-lines file of finished trials (one line per trial, fsynced).
 
-    def __init__(self, path: str | Path) -> None:
+    ``required``: the keys every record has (lines without them are not records).
+    """
+
+    def __init__(self, path: str | Path, required: Sequence[str] = ("key", "metrics")) -> None:
         self.path = Path(path)
+        self.required = tuple(required)
 
     def read(self) -> list[dict[str, Any]]:
         """Finished trials; a line cut short by a kill (the last one) is ignored."""
@@ -71,7 +75,7 @@ class Journal:
                 rec = json.loads(line)
             except json.JSONDecodeError:
                 continue
-            if isinstance(rec, dict) and "key" in rec and "metrics" in rec:
+            if isinstance(rec, dict) and all(k in rec for k in self.required):
                 records.append(rec)
         return records
 

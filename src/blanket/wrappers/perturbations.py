@@ -46,6 +46,7 @@ import numpy as np
 from gymnasium.utils import RecordConstructorArgs
 
 from blanket.errors import ConfigError
+from blanket.sensors.clip import clip_values
 
 __all__ = [
     "SensorNoiseScale",
@@ -126,6 +127,7 @@ class _PerturbationWrapper(gym.Wrapper, RecordConstructorArgs):
         self._rng: np.random.Generator | None = None
         self._steps = 0
         self.condition_values = {}
+        self._box_bounds: list[tuple[str, Any, np.ndarray, np.ndarray]] | None = None
 
     # -- clock and randomness -----------------------------------------------------------
     @property
@@ -184,11 +186,16 @@ class _PerturbationWrapper(gym.Wrapper, RecordConstructorArgs):
         return info
 
     def _clip(self, obs: dict[str, Any]) -> dict[str, Any]:
-        space = self.observation_space
-        for key, value in obs.items():
-            sub = space.spaces.get(key)
-            if isinstance(sub, gym.spaces.Box):
-                obs[key] = np.clip(np.asarray(value, dtype=sub.dtype), sub.low, sub.high)
+        bounds = self._box_bounds
+        if bounds is None:  # the Box keys and bounds, found once (the spaces are fixed)
+            bounds = self._box_bounds = [
+                (key, sub.dtype, sub.low, sub.high)
+                for key, sub in self.observation_space.spaces.items()
+                if isinstance(sub, gym.spaces.Box)
+            ]
+        for key, dtype, low, high in bounds:
+            if key in obs:
+                obs[key] = clip_values(np.asarray(obs[key], dtype=dtype), low, high)
         return obs
 
     def _nominal_std(self) -> dict[str, float]:

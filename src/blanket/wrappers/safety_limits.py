@@ -65,6 +65,7 @@ action-scaling wrappers), so the command it checks is the one in physical units.
 
 from __future__ import annotations
 
+import math
 from typing import Any, SupportsFloat
 
 import gymnasium as gym
@@ -73,6 +74,7 @@ import numpy as np
 from blanket.description import ArmDescription
 from blanket.errors import ConfigError
 from blanket.robot_limits import SafetyProfile, profile_for, profile_named
+from blanket.sensors.clip import clip_values
 from blanket.wrappers.perturbations import number_in_range
 
 __all__ = ["SafetyLimits"]
@@ -150,8 +152,9 @@ class SafetyLimits(gym.Wrapper, gym.utils.RecordConstructorArgs):
         self.latch_stop = bool(latch_stop)
         self.workspace_box_m = self._check_box(workspace_box_m)
 
-        description = getattr(env.unwrapped, "description", None)
-        self._arm = isinstance(description, ArmDescription) and hasattr(env.unwrapped, "world")
+        self._base = env.unwrapped  # the bare env, found once (the wrapper chain is fixed)
+        description = getattr(self._base, "description", None)
+        self._arm = isinstance(description, ArmDescription) and hasattr(self._base, "world")
         space = env.action_space
         if not isinstance(space, gym.spaces.Box) or len(space.shape) != 1:
             raise ConfigError(
@@ -185,6 +188,13 @@ class SafetyLimits(gym.Wrapper, gym.utils.RecordConstructorArgs):
             )
             self._lower = np.asarray(description.lower_rad, dtype=float)
             self._upper = np.asarray(description.upper_rad, dtype=float)
+            # The joint-position margin's edges; with finite limits (the usual case) the room
+            # to them needs no check for infinities.
+            self._margin_upper = self._upper - self.joint_margin_rad
+            self._margin_lower = self._lower + self.joint_margin_rad
+            self._finite_limits = bool(
+                np.all(np.isfinite(self._upper)) and np.all(np.isfinite(self._lower))
+            )
             self._dt = 1.0 / float(description.control_hz)
             self._profile_name = profile.name
             # Velocity motors push with at most the profile's torques, not the URDF efforts.
@@ -230,7 +240,7 @@ class SafetyLimits(gym.Wrapper, gym.utils.RecordConstructorArgs):
     @property
     def _world(self) -> Any:
         """The simulator (:class:`blanket.sim.ArmWorld`): the wrapper is part of the world."""
-        return self.env.unwrapped.world
+        return self._base.world
 
     def _state(self) -> tuple[np.ndarray, np.ndarray]:
         """True joint angles and velocities (the wrapper is part of the world, not the agent)."""
@@ -240,7 +250,7 @@ class SafetyLimits(gym.Wrapper, gym.utils.RecordConstructorArgs):
         """Largest |true joint (or wheel) speed| / limit over the joints, after a step."""
         if self._arm:
             speed = np.abs(self._state()[1])
-            return float(np.max(speed / self.velocity_limit_rad_s))
+            return float((speed / self.velocity_limit_rad_s).max())
         wheels = info.get("external", {}).get("wheel_speed_rad_s")
         if wheels is None or np.shape(wheels) != self._shape:
             return float("nan")
@@ -266,7 +276,8 @@ class SafetyLimits(gym.Wrapper, gym.utils.RecordConstructorArgs):
         applied, reasons, stop_reason = self.filter_command(requested)
         obs, reward, terminated, truncated, info = self.env.step(applied)
         self._contact_pending = bool(info.get("contact", False))
-        clamped = bool(stop_reason) or not np.array_equal(applied, requested)
+        # applied and requested have one shape and, without a stop, finite values
+        clamped = bool(stop_reason) or bool((applied != requested).any())
         info = dict(info)
         info["action_applied"] = applied.copy()
         info["safety"] = self._safety_info(
@@ -318,9 +329,9 @@ class SafetyLimits(gym.Wrapper, gym.utils.RecordConstructorArgs):
         stop_reason = ""
         if self.latch_stop and self._stop_reason:
             stop_reason = self._stop_reason
-        elif not np.all(np.isfinite(requested)):
+        elif not all(map(math.isfinite, requested.tolist())):
             stop_reason = "non-finite command"
-        elif np.any(np.abs(requested) > self.divergence_factor * self.command_limit):
+        elif (np.abs(requested) > self.divergence_factor * self.command_limit).any():
             stop_reason = f"command beyond {self.divergence_factor:g} x the profile limit"
         elif self.stop_on_contact and self._contact_pending:
             stop_reason = "contact: " + self._contact_text()
@@ -356,18 +367,18 @@ class SafetyLimits(gym.Wrapper, gym.utils.RecordConstructorArgs):
 
     def _bias_torque(self, q: np.ndarray, qd: np.ndarray) -> np.ndarray:
         """``h(q, q')``: gravity, Coriolis and centrifugal torques (the world's model)."""
-        return self._world.inverse_dynamics(q, qd, np.zeros_like(q))
+        return self._world.inverse_dynamics(q, qd, np.zeros(q.shape))
 
     def _brake(self, q: np.ndarray, qd: np.ndarray) -> np.ndarray:
         tau = self._bias_torque(q, qd) - self.brake_gain_1_s * (self._world.mass_matrix(q) @ qd)
-        return np.clip(tau, -self.torque_limit_n_m, self.torque_limit_n_m)
+        return clip_values(tau, -self.torque_limit_n_m, self.torque_limit_n_m)
 
     @staticmethod
     def _scale_to_limit(command: np.ndarray, limit: np.ndarray, reasons: list[str]) -> np.ndarray:
-        ratio = np.max(np.abs(command) / limit)
+        ratio = (np.abs(command) / limit).max()
         if ratio > 1.0:
             reasons.append("joint velocity limit")
-            command = np.clip(command / ratio, -limit, limit)
+            command = clip_values(command / ratio, -limit, limit)
         return command
 
     def _outward(self, tip: np.ndarray) -> np.ndarray:
@@ -402,17 +413,21 @@ class SafetyLimits(gym.Wrapper, gym.utils.RecordConstructorArgs):
                     reasons.append("workspace box")
         # Joint position margin: no motion further into a limit inside the margin, and no
         # step from outside into it.
-        upper_room = (self._upper - self.joint_margin_rad) - q
-        lower_room = (self._lower + self.joint_margin_rad) - q
-        with np.errstate(invalid="ignore"):
-            v_max = np.where(
-                np.isfinite(upper_room), np.maximum(upper_room / self._dt, 0.0), np.inf
-            )
-            v_min = np.where(
-                np.isfinite(lower_room), np.minimum(lower_room / self._dt, 0.0), -np.inf
-            )
-        margin_clipped = np.clip(command, v_min, v_max)
-        if not np.array_equal(margin_clipped, command):
+        upper_room = self._margin_upper - q
+        lower_room = self._margin_lower - q
+        if self._finite_limits:
+            v_max = np.maximum(upper_room / self._dt, 0.0)
+            v_min = np.minimum(lower_room / self._dt, 0.0)
+        else:
+            with np.errstate(invalid="ignore"):
+                v_max = np.where(
+                    np.isfinite(upper_room), np.maximum(upper_room / self._dt, 0.0), np.inf
+                )
+                v_min = np.where(
+                    np.isfinite(lower_room), np.minimum(lower_room / self._dt, 0.0), -np.inf
+                )
+        margin_clipped = clip_values(command, v_min, v_max)
+        if not (margin_clipped == command).all():
             reasons.append("joint position margin")
             command = margin_clipped
         if tip is not None and J is not None:
@@ -439,8 +454,8 @@ class SafetyLimits(gym.Wrapper, gym.utils.RecordConstructorArgs):
         """
         q, qd = self._state()
         limit = self.torque_limit_n_m
-        clipped = np.clip(command, -limit, limit)
-        if not np.array_equal(clipped, command):
+        clipped = clip_values(command, -limit, limit)
+        if not (clipped == command).all():
             reasons.append("joint torque limit")
         M = self._world.mass_matrix(q)
         h = self._bias_torque(q, qd)
@@ -450,4 +465,4 @@ class SafetyLimits(gym.Wrapper, gym.utils.RecordConstructorArgs):
         if len(reasons) == n_reasons:
             return clipped
         tau = M @ (v_safe - qd) / self._dt + h
-        return np.clip(tau, -limit, limit)
+        return clip_values(tau, -limit, limit)
