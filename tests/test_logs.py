@@ -745,6 +745,123 @@ def test_dot_files_are_never_read(tmp_path: Path) -> None:
         read_run(tmp_path / "run" / "episodes" / ".episode-00002.parquet")
 
 
+# --------------------------------------------------------------------------- damaged files
+def _damaged_run_reads_the_rest(run: Path, damaged: Path, intact: pd.DataFrame) -> str:
+    """``damaged`` is refused with one line naming it by every read path; the other
+    episodes still read with on_error="skip". Returns the message."""
+    with pytest.raises(LogError) as info:
+        read_run(run)
+    message = str(info.value)
+    assert damaged.name in message and "\n" not in message
+    frame, problems = read_run(run, on_error="skip")
+    pd.testing.assert_frame_equal(frame, intact)
+    assert [damaged.name in str(p) for p in problems] == [True]
+    # pyarrow.dataset through open_dataset verifies the page checksums too
+    with pytest.raises((LogError, pa.ArrowException, OSError)):
+        open_dataset(run).to_table()
+    return message
+
+
+def test_random_overwrites_truncations_and_foreign_files_are_all_detected(
+    tmp_path: Path, capsys
+) -> None:
+    """A seeded sweep of 50 random 64-byte in-place overwrites of a finished episode file,
+    then truncations, a zero-byte file and foreign files in its place: every one is refused
+    (page checksums, the footer digest, the Parquet footer itself) and the intact episode of
+    the same run still reads, is inspected and plots."""
+    run = tmp_path / "run"
+    write_demo_run(run, episodes=2, steps=60)
+    damaged = run / "episodes" / "episode-00001.parquet"
+    good = damaged.read_bytes()
+    intact = read_run(run / "episodes" / "episode-00000.parquet")
+    rng = np.random.default_rng(2031)
+    for offset in rng.integers(0, len(good) - 64, 50):
+        data = bytearray(good)
+        data[offset : offset + 64] = rng.integers(0, 256, 64, dtype=np.uint8).tobytes()
+        assert data != good
+        damaged.write_bytes(bytes(data))
+        _damaged_run_reads_the_rest(run, damaged, intact)
+    for keep in (0, 4, 100, len(good) // 2, len(good) - 9, len(good) - 1):
+        damaged.write_bytes(good[:keep])
+        _damaged_run_reads_the_rest(run, damaged, intact)
+    foreign = tmp_path / "foreign.parquet"
+    pd.DataFrame({"episode": [1], "step": [0], "t": [0.0]}).to_parquet(foreign)
+    for data, reason in (
+        (foreign.read_bytes(), "not a blanket log"),
+        (b"t,q\n0,1\n", "not a readable Parquet file"),
+    ):
+        damaged.write_bytes(data)
+        assert reason in _damaged_run_reads_the_rest(run, damaged, intact)
+    # inspect and plot skip the damaged episode (one stderr line), or --strict refuses it
+    damaged.write_bytes(good[: len(good) // 2])
+    assert main_cli(["inspect", str(run)]) == 0
+    captured = capsys.readouterr()
+    assert "episode-00001.parquet" in captured.err and "skipped" in captured.err
+    assert "1 of 1 episodes" in captured.out  # the intact one alone
+    assert main_cli(["inspect", str(run), "--strict"]) == 2
+    assert "episode-00001.parquet" in capsys.readouterr().err
+    assert main_cli(["plot", str(run), "--out", str(tmp_path / "fig"), "--episode", "0"]) == 0
+    assert main_cli(["plot", str(run), "--episode", "1"]) == 2
+    assert "episode-00001.parquet" in capsys.readouterr().err
+    assert main_cli(["plot", str(run), "--out", str(tmp_path / "f"), "--strict"]) == 2
+    pngs = sorted(p.name for p in (tmp_path / "fig").iterdir())
+    assert pngs and all(n.startswith("episode-00000-") for n in pngs)
+
+
+def test_page_checksums_and_digest_are_written(tmp_path: Path) -> None:
+    """Every data page carries a CRC (checked here by pyarrow's own verifying reader, not
+    ours) and the footer digest matches what the file holds."""
+    from blanket.logs.schema import footer_digest
+
+    write_demo_run(tmp_path / "run", episodes=1, steps=20)
+    path = tmp_path / "run" / "episodes" / "episode-00000.parquet"
+    handle = pq.ParquetFile(path, page_checksum_verification=True)
+    meta = handle.schema_arrow.metadata
+    assert (
+        meta[b"blanket.digest"]
+        == footer_digest(handle.schema_arrow, 20, handle.metadata.created_by).encode()
+    )
+    # flip one bit of the first data page's values: pyarrow's reader refuses the page
+    data = bytearray(path.read_bytes())
+    table = handle.read()
+    column = handle.metadata.row_group(0).column(2)  # "t": plain float64 values
+    start = column.data_page_offset + column.total_compressed_size - 8
+    data[start] ^= 0x01
+    path.write_bytes(bytes(data))
+    with pytest.raises(OSError, match="(?i)crc|checksum"):
+        pq.ParquetFile(path, page_checksum_verification=True).read(columns=["t"])
+    assert table.num_rows == 20
+
+
+def test_on_error_takes_raise_or_skip(tmp_path: Path) -> None:
+    write_demo_run(tmp_path / "run", episodes=1, steps=5)
+    with pytest.raises(ConfigError, match="on_error.*did you mean skip"):
+        read_run(tmp_path / "run", on_error="skp")
+
+
+def test_cli_bounds_what_it_echoes_and_catches_resource_errors(
+    tmp_path: Path, capsys, monkeypatch
+) -> None:
+    """A 10 MB scenario name and an exhausted allocator each end in one bounded line, exit 2."""
+    scenario = tmp_path / "huge.toml"
+    scenario.write_text(f'env = "blanket/planar-2link-v0"\nname = "{"b" * 10_000_000}"\n')
+    assert main_cli(["run", str(scenario), "--out", str(tmp_path / "out"), "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and len(err) < 400 and "10000000" in err
+    write_demo_run(tmp_path / "run", episodes=1, steps=5)
+    import blanket.logs.run_summary as run_summary
+
+    for error in (MemoryError(), pa.ArrowCapacityError("array cannot contain more than 2^31")):
+
+        def exhausted(*args, error=error, **kwargs):
+            raise error
+
+        monkeypatch.setattr(run_summary, "summarize_run", exhausted)
+        assert main_cli(["inspect", str(tmp_path / "run")]) == 2
+        err = capsys.readouterr().err
+        assert err.count("\n") == 1 and "out of resources" in err, err
+
+
 # --------------------------------------------------------------------------- Recorder
 class _CounterEnv(gym.Env):
     """A physics-free env: the observation counts steps, truth goes in info['external']."""

@@ -41,11 +41,12 @@ import gymnasium
 import numpy as np
 
 from blanket.conditions import check_conditions, condition_env_options, condition_model_options
-from blanket.errors import ConfigError, did_you_mean
+from blanket.errors import ConfigError, did_you_mean, shorten
 
 __all__ = ["Scenario", "load_scenario", "load_object", "env_option_names", "make_env"]
 
 _TOP_KEYS = {"name": str, "env": str, "episodes": int, "seed": int}
+MAX_NAME_CHARS = 120
 _TABLES = ("env_options", "agent", "conditions")
 _PATH_OPTIONS = ("urdf",)
 #: Options whose default is None but whose value, when given, must be a string.
@@ -204,8 +205,13 @@ def scenario_from_dict(
         ):
             raise ConfigError(
                 f"{where}: {key} must be {'a string' if typ is str else 'a whole number'}, "
-                f"got {data[key]!r}"
+                f"got {shorten(data[key])}"
             )
+    if len(data.get("name", "")) > MAX_NAME_CHARS:  # it names folders, files and figures
+        raise ConfigError(
+            f"{where}: name must be at most {MAX_NAME_CHARS} characters, got "
+            f"{len(data['name'])} ({shorten(data['name'], 40)})"
+        )
     if "env" not in data:
         raise ConfigError(
             f"{where}: missing required key 'env' (an env id such as 'blanket/arm-reach-v0')"
