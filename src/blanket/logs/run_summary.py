@@ -34,6 +34,7 @@ import pandas as pd
 
 from blanket.consistency import SETTLE_S, worst_component_check
 from blanket.logs.reader import (
+    _check_on_error,
     check_file,
     episode_files,
     read_episode_info,
@@ -172,6 +173,7 @@ def summarize_run(run_dir: str | os.PathLike[str], *, on_error: str = "raise") -
     ``on_error="skip"`` leaves out damaged episode files and returns ``(table, problems)``
     (see :func:`blanket.logs.reader.read_run`); the default raises the first problem.
     """
+    _check_on_error(on_error)
     metadata = read_metadata(run_dir)
     wanted = [
         "external.distance_m",

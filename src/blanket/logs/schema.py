@@ -65,6 +65,7 @@ units, the blanket metadata, the row count); a file whose footer disagrees is re
 
 from __future__ import annotations
 
+import functools
 import json
 import re
 from collections.abc import Mapping, Sequence
@@ -239,14 +240,22 @@ def footer_digest(schema: Any, num_rows: int, created_by: str | None = None) -> 
     """
     import hashlib
 
-    import pyarrow
-
-    if created_by is None:  # what pyarrow's Parquet writer puts in the footer
-        created_by = f"parquet-cpp-arrow version {pyarrow.__version__}"
-    h = hashlib.sha256(created_by.encode())
+    h = hashlib.sha256((_created_by() if created_by is None else created_by).encode())
     h.update(schema.to_string(show_field_metadata=True, show_schema_metadata=False).encode())
     for key, value in sorted((schema.metadata or {}).items()):
         if key.startswith(b"blanket.") and key != META_DIGEST:
             h.update(b"\0%d:%s\0%d:%s" % (len(key), key, len(value), value))
     h.update(b"\0rows:%d" % num_rows)
     return h.hexdigest()
+
+
+@functools.cache
+def _created_by() -> str:
+    """The writer name pyarrow's Parquet writer puts in a footer (asked once, from a
+    one-row file in memory)."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    sink = pa.BufferOutputStream()
+    pq.write_table(pa.table({"x": [0]}), sink)
+    return pq.read_metadata(pa.BufferReader(sink.getvalue())).created_by
