@@ -138,7 +138,9 @@ def check_file(path: str | os.PathLike[str]) -> pq.ParquetFile:
             raise LogError(f"{path}: empty file (0 bytes); the write that made it did not finish")
         handle = pq.ParquetFile(path, page_checksum_verification=True)
         meta = handle.schema_arrow.metadata or {}
-    except (pa.ArrowException, OSError) as exc:
+        footer = handle.metadata
+        created_by = footer.created_by
+    except (pa.ArrowException, OSError, UnicodeDecodeError) as exc:
         raise LogError(
             f"{path}: not a readable Parquet file (truncated or corrupt?): {_first_line(exc)}"
         ) from None
@@ -148,12 +150,10 @@ def check_file(path: str | os.PathLike[str]) -> pq.ParquetFile:
     if digest is not None:
         # The footer holds the blanket metadata twice (Parquet's key-value pairs, and inside
         # the stored Arrow schema): both copies must agree with the digest.
-        raw = handle.metadata.metadata or {}
+        raw = footer.metadata or {}
         ours = {k: v for k, v in meta.items() if k.startswith(b"blanket.")}
         if ours != {k: v for k, v in raw.items() if k.startswith(b"blanket.")} or digest != (
-            footer_digest(
-                handle.schema_arrow, handle.metadata.num_rows, handle.metadata.created_by
-            ).encode("ascii")
+            footer_digest(handle.schema_arrow, footer.num_rows, created_by).encode("ascii")
         ):
             raise LogError(f"{path}: corrupt file: its footer does not match its digest")
     try:
