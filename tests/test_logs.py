@@ -431,7 +431,7 @@ _CHILD = textwrap.dedent(
 
     def stuck_write(table, where, **kw):  # episode 2's temporary is written, not renamed
         real_write(table, where, **kw)
-        if ".episode-00002.parquet." in where:
+        if ".episode-00002.parquet." in str(where):
             print("READY", flush=True)
             time.sleep(120)
 
