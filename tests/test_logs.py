@@ -756,6 +756,8 @@ def _damaged_run_reads_the_rest(run: Path, damaged: Path, intact: pd.DataFrame) 
     frame, problems = read_run(run, on_error="skip")
     pd.testing.assert_frame_equal(frame, intact)
     assert [damaged.name in str(p) for p in problems] == [True]
+    with pytest.raises(LogError, match=damaged.name):  # a file is checked whole
+        read_run(run, columns=["external.distance_m"])
     # pyarrow.dataset through open_dataset verifies the page checksums too
     with pytest.raises((LogError, pa.ArrowException, OSError)):
         open_dataset(run).to_table()

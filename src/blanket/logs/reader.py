@@ -176,7 +176,8 @@ def check_file(path: str | os.PathLike[str]) -> pq.ParquetFile:
 
 
 def read_episode(path: str | os.PathLike[str], columns: Sequence[str] | None = None) -> pa.Table:
-    """One episode file as an Arrow table, every page read checked against its checksum.
+    """One episode file as an Arrow table, every page of the file checked against its
+    checksum (also with ``columns``: a file reads whole or not at all).
 
     ``columns`` selects columns (names absent from the file are skipped).
 
@@ -188,12 +189,13 @@ def read_episode(path: str | os.PathLike[str], columns: Sequence[str] | None = N
     path = Path(path)
     handle = check_file(path)
     try:
-        if columns is not None:
-            present = set(handle.schema_arrow.names)
-            columns = [c for c in columns if c in present]
-        return handle.read(columns=columns)
+        table = handle.read()
     except (pa.ArrowException, OSError) as exc:
         raise LogError(f"{path}: corrupt episode data: {_first_line(exc)}") from None
+    if columns is None:
+        return table
+    present = set(table.column_names)
+    return table.select([c for c in dict.fromkeys(columns) if c in present])
 
 
 @overload
@@ -223,8 +225,8 @@ def read_run(
     path : path
         A run folder, its ``episodes/`` folder, or one episode file.
     columns : sequence of str, optional
-        Read only these columns (``episode``, ``step``, ``t`` are always included; names
-        absent from a file are skipped).
+        Return only these columns (``episode``, ``step``, ``t`` are always included; names
+        absent from a file are skipped). Every file is still checked whole.
     on_error : {"raise", "skip"}
         ``"raise"`` (default): the first damaged episode file (or a journal left by an
         interrupted run) raises. ``"skip"``: read the other episodes and return
