@@ -10,8 +10,7 @@ indirect costs).
 ``--instructions``: the same runner loop counted in machine instructions under valgrind's
 cachegrind, with and without logging, as a ratio. Instruction counts do not depend on the
 machine's speed, so this estimate is free of the timing noise of a shared VM (the counts
-still varied by ~2 % between runs here; it does not see cache misses or the encoder process,
-which runs beside the loop and is not traced). Needs
+still varied by ~2 % between runs here; it does not see cache misses). Needs
 ``valgrind`` on the PATH (``apt-get install valgrind``); takes some minutes.
 
 ``--loop planar``: ``blanket/planar-2link-v0`` for N control steps with a proportional
@@ -23,7 +22,7 @@ Acceptance: logging is at most 10 % of the loop's time with recording on.
 
 Usage::
 
-    python scripts/bench_logging.py [--loop runner|planar|both] [--rounds 16] [--pairs 40]
+    python scripts/bench_logging.py [--loop runner|planar|both|pairs] [--rounds 16] [--pairs 40]
     python scripts/bench_logging.py --instructions
 """
 
@@ -181,14 +180,13 @@ def runner_loop(rounds: int, episodes: int) -> bool:
       the same loop. Both parts run interleaved, step by step, so a change of machine speed
       between rounds (seen here: +-40 % on a shared VM) affects both alike.
     * A/B: rounds without logging and with it (no stopwatch), in rotating order, fastest
-      of each compared. It also sees indirect costs (caches, the background thread). The
+      of each compared. It also sees indirect costs (caches, the file writes). The
       fastest of 16 rounds is stable here (an A/A comparison of two plain series agreed to
       0.1 %) where means and medians of rounds scatter by +-15 %.
 
     Acceptance holds when both put logging at <= 10 % of the loop with recording on.
     """
     import blanket.logs.groups as groups
-    import blanket.logs.writer as writer_module
     from blanket.runner import run_episodes
 
     env, agent, meta = _iiwa_loop("bench-logging-runner")
@@ -197,7 +195,6 @@ def runner_loop(rounds: int, episodes: int) -> bool:
     calls = [0]
     # the loop's log observer (blanket.rollout.RunLog) takes the group builders when it is made
     original = (groups.external_group, groups.active_group, agent.diagnostics)
-    background_s = [0.0]  # CPU time of the encoder process (Parquet encoding, fsync)
 
     def timed(seed: int, run_dir: Path | None, watched: bool = True) -> float:
         if run_dir is None:
@@ -236,8 +233,6 @@ def runner_loop(rounds: int, episodes: int) -> bool:
         shares.clear()
         parts.clear()
         calls[0] = 0
-        encoder = writer_module._encoder()
-        cpu_before = encoder.cpu_s if encoder is not None else 0.0
         for r in range(rounds):
             # each kind in each position equally often (a change of machine speed within a
             # round then favours none of them)
@@ -252,8 +247,6 @@ def runner_loop(rounds: int, episodes: int) -> bool:
                 else:
                     timed(r, Path(tmp) / f"watched-{r}")
         columns = read_run(Path(tmp) / "run-0").shape[1]
-        if encoder is not None:
-            background_s[0] = encoder.cpu_s - cpu_before
     env.close()
     steps = episodes * env.unwrapped.max_steps
     t_plain, t_logged = min(plain), min(logged)
@@ -287,11 +280,6 @@ def runner_loop(rounds: int, episodes: int) -> bool:
         f"{(spent - watch_s) / (total - watch_s) * 100:.1f} % of the loop with recording on"
     )
     print(
-        f"  background thread       {background_s[0] / (2 * rounds * steps) * 1e6:.1f} us/step "
-        "of CPU in the encoder process (Parquet encoding, beside the loop; "
-        f"{background_s[0] / 2 / (total - spent) * 100:.1f} % more if it were not)"
-    )
-    print(
         f"A/B: fastest round        {t_plain / steps * 1e6:.1f} us/step without, "
         f"{t_logged / steps * 1e6:.1f} us/step with logging (no stopwatch)"
     )
@@ -317,8 +305,8 @@ def runner_loop(rounds: int, episodes: int) -> bool:
 
 
 def paired_episodes(pairs: int) -> None:
-    """Adjacent single episodes without and with logging (one writer for the logged ones,
-    its encoding finished before the next timing), alternating which comes first: the median
+    """Adjacent single episodes without and with logging (one writer for the logged ones; the
+    episode's Parquet write is inside its timing), alternating which comes first: the median
     of the per-pair ratios, with a bootstrap 95 % interval. Adjacent episodes see the same
     machine speed, which min-of-rounds comparisons cannot rely on here."""
     from blanket.runner import run_episode
@@ -332,9 +320,7 @@ def paired_episodes(pairs: int) -> None:
             t0 = time.perf_counter()
             run_episode(env, agent, seed, episode[0], writer=writer if logged else None)
             elapsed = time.perf_counter() - t0
-            if logged:
-                episode[0] += 1
-                writer.flush()
+            episode[0] += logged
             return elapsed
 
         one(True, 0)
@@ -474,9 +460,10 @@ def main() -> None:
     parser.add_argument("--rounds", type=int, default=16)
     parser.add_argument(
         "--loop",
-        choices=("planar", "runner", "both"),
+        choices=("planar", "runner", "both", "pairs"),
         default="both",
-        help="planar: a bare env loop; runner: the loop blanket demo runs",
+        help="planar: a bare env loop; runner: the loop blanket demo runs; pairs: only the "
+        "paired episodes of the runner loop (with --pairs N)",
     )
     parser.add_argument(
         "--episodes",
@@ -507,6 +494,9 @@ def main() -> None:
         return
     if args.instructions:
         instruction_counts(args.episodes)
+        return
+    if args.loop == "pairs":
+        paired_episodes(args.pairs or 40)
         return
     if args.loop in ("runner", "both"):
         runner_loop(args.rounds, args.episodes)

@@ -24,6 +24,14 @@ def test_same_scenario_and_seed_give_identical_logs(tmp_path):
     _run(a)
     _run(b)
     frame_a, frame_b = read_run(a), read_run(b)
+    # The episode files themselves are byte-identical (no wall-clock value inside).
+    for name in ("episode-00000.parquet", "episode-00001.parquet"):
+        assert (a / "episodes" / name).read_bytes() == (b / "episodes" / name).read_bytes()
+    # run.json has one wall-clock field; the timings are in timings.jsonl
+    run_a, run_b = (json.loads((x / "run.json").read_text()) for x in (a, b))
+    assert run_a.pop("started_at") and run_b.pop("started_at") and run_a == run_b
+    timings = [json.loads(x) for x in (a / "timings.jsonl").read_text().splitlines()]
+    assert [t["episode"] for t in timings] == [0, 1] and timings[0]["agent_step_us"] > 0
     assert len(frame_a) == 2 * 120
     # Every data column agrees exactly; wall-clock values live only in run.json/summary.json.
     pd.testing.assert_frame_equal(frame_a, frame_b)

@@ -35,6 +35,7 @@ BASE_ROBOTS = ("rover", "husky")
 _EXTERNAL = {
     "plot": ("blanket.logs.cli", "add_plot_parser", "run_plot"),
     "inspect": ("blanket.logs.cli", "add_inspect_parser", "run_inspect"),
+    "logs": ("blanket.logs.cli", "add_logs_parser", "run_logs"),
     "bench": ("blanket.bench.cli", "add_bench_parser", "run_bench"),
     "train-rl": ("blanket.bench.cli", "add_train_parser", "run_train"),
     "tune": ("blanket.tune.cli", "add_tune_parser", "run_tune"),
@@ -243,6 +244,15 @@ def _scenarios(args: argparse.Namespace) -> int:
     return 0
 
 
+def _out_of_resources(exc: BaseException) -> bool:
+    """Memory or capacity exhausted (e.g. a 10 MB name in the metadata of every file)."""
+    pa = sys.modules.get("pyarrow")  # not imported: the error is not pyarrow's
+    kinds: tuple[type[BaseException], ...] = (MemoryError,)
+    if pa is not None:
+        kinds += (pa.ArrowCapacityError, pa.ArrowMemoryError)
+    return isinstance(exc, kinds)
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
@@ -258,7 +268,19 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 130
     except (ConfigError, ValueError, FileNotFoundError, json.JSONDecodeError) as exc:
         msg = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        if len(msg) > 300:  # a huge value inside a message: cut, with its length shown
+            msg = f"{msg[:299]}... ({len(msg)} characters)"
         print(f"blanket: error: {msg}", file=sys.stderr)
+        return 2
+    except Exception as exc:
+        if not _out_of_resources(exc):
+            raise
+        what = shorten(str(exc).strip().splitlines()[0] if str(exc).strip() else "", 120)
+        print(
+            f"blanket: error: out of resources ({type(exc).__name__}: {what}); check the "
+            "input for oversized values (names, metadata)",
+            file=sys.stderr,
+        )
         return 2
 
 

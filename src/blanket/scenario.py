@@ -59,6 +59,7 @@ __all__ = [
 ]
 
 _TOP_KEYS = {"name": str, "env": str, "episodes": int, "seed": int}
+MAX_NAME_CHARS = 120
 _TABLES = ("env_options", "agent", "conditions")
 _PATH_OPTIONS = ("urdf",)
 #: Options whose default is None but whose value, when given, must be a string.
@@ -333,8 +334,13 @@ def scenario_from_dict(
         ):
             raise ConfigError(
                 f"{where}: {key} must be {'a string' if typ is str else 'a whole number'}, "
-                f"got {data[key]!r}"
+                f"got {shorten(data[key])}"
             )
+    if len(data.get("name", "")) > MAX_NAME_CHARS:  # it names folders, files and figures
+        raise ConfigError(
+            f"{where}: name must be at most {MAX_NAME_CHARS} characters, got "
+            f"{len(data['name'])} ({shorten(data['name'], 40)})"
+        )
     if "env" not in data:
         raise ConfigError(
             f"{where}: missing required key 'env' (an env id such as 'blanket/arm-reach-v0')"

@@ -36,10 +36,9 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 import pandas as pd  # noqa: E402
-import pyarrow.dataset as ds  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 
-from blanket.logs.reader import open_dataset, read_metadata  # noqa: E402
+from blanket.logs.reader import read_metadata, read_one_episode  # noqa: E402
 from blanket.logs.schema import LogError, unit_for_key  # noqa: E402
 
 __all__ = ["plot_run", "build_figures", "load_episode", "FIGURE_NAMES", "LOOK"]
@@ -187,19 +186,22 @@ def _heading(fig: Figure, title: str, meta: Mapping[str, Any], episode: int) -> 
 
 
 def load_episode(
-    run_dir: str | os.PathLike[str], episode: int | None = None
+    run_dir: str | os.PathLike[str],
+    episode: int | None = None,
+    *,
+    strict: bool = False,
+    problems: list[LogError] | None = None,
 ) -> tuple[pd.DataFrame, int]:
-    """One episode's rows (the first episode when ``episode`` is None) and its number."""
-    dataset = open_dataset(run_dir)
-    if episode is None:
-        numbers = dataset.to_table(columns=["episode"]).column("episode").to_numpy()
-        if numbers.size == 0:
-            raise LogError(f"{run_dir}: the run holds no rows")
-        episode = int(numbers.min())
-    table = dataset.to_table(filter=ds.field("episode") == int(episode))
+    """One episode's rows (the first episode that reads when ``episode`` is None) and its
+    number. Damaged episode files of the run are skipped (appended to ``problems`` when
+    given), or, with ``strict``, raise."""
+    table, episode, found = read_one_episode(
+        run_dir, episode, on_error="raise" if strict else "skip"
+    )
+    if problems is not None:
+        problems.extend(found)
     if table.num_rows == 0:
-        known = sorted(set(dataset.to_table(columns=["episode"]).column("episode").to_pylist()))
-        raise LogError(f"episode: {episode} is not in {run_dir}; the run has episodes {known}")
+        raise LogError(f"{run_dir}: episode {episode} holds no rows")
     frame = table.to_pandas().sort_values("step", kind="stable").reset_index(drop=True)
     return frame, int(episode)
 
@@ -579,6 +581,9 @@ def plot_run(
     run_dir: str | os.PathLike[str],
     out_dir: str | os.PathLike[str] | None = None,
     episode: int | None = None,
+    *,
+    strict: bool = False,
+    problems: list[LogError] | None = None,
 ) -> list[Path]:
     """Write the PNG figures of one episode and return their paths.
 
@@ -589,7 +594,11 @@ def plot_run(
     out_dir : path, optional
         Where to write; default ``RUN_DIR/figures``.
     episode : int, optional
-        Episode number; default the first episode of the run.
+        Episode number; default the first episode of the run that reads.
+    strict : bool
+        Refuse a run with any damaged episode file (default: skip them, see ``problems``).
+    problems : list, optional
+        Receives the :class:`LogError` of each damaged episode file skipped.
 
     Returns
     -------
@@ -597,7 +606,7 @@ def plot_run(
         The PNGs written, in the order of :data:`FIGURE_NAMES` (skipped figures absent).
     """
     run_dir = Path(run_dir)
-    frame, episode = load_episode(run_dir, episode)
+    frame, episode = load_episode(run_dir, episode, strict=strict, problems=problems)
     metadata = read_metadata(run_dir)
     if out_dir is None:
         root = run_dir.parent.parent if run_dir.is_file() else run_dir

@@ -37,6 +37,7 @@ import pandas as pd
 
 from blanket.consistency import SETTLE_S, worst_component_check
 from blanket.logs.reader import (
+    _check_on_error,
     check_file,
     episode_files,
     read_episode_info,
@@ -162,18 +163,26 @@ def _belief_joints(columns: Any) -> list[str]:
     ]
 
 
-def _episode_extras(run_dir: str | os.PathLike[str]) -> dict[int, Mapping[str, Any]]:
-    """The ``extra`` metadata of every episode file, by episode number."""
+def _episode_extras(files: list[Path]) -> dict[int, Mapping[str, Any]]:
+    """The ``extra`` metadata of the episode files that read, by episode number."""
     extras: dict[int, Mapping[str, Any]] = {}
-    for path in episode_files(run_dir):
-        info = read_episode_info(path)
+    for path in files:
+        try:
+            info = read_episode_info(path)
+        except LogError:  # a damaged file: reported by read_run
+            continue
         if isinstance(info.get("episode"), int) and isinstance(info.get("extra"), Mapping):
             extras[info["episode"]] = info["extra"]
     return extras
 
 
-def summarize_run(run_dir: str | os.PathLike[str]) -> pd.DataFrame:
-    """One row per episode (index ``episode``), see the module docstring for the columns."""
+def summarize_run(run_dir: str | os.PathLike[str], *, on_error: str = "raise") -> Any:
+    """One row per episode (index ``episode``), see the module docstring for the columns.
+
+    ``on_error="skip"`` leaves out damaged episode files and returns ``(table, problems)``
+    (see :func:`blanket.logs.reader.read_run`); the default raises the first problem.
+    """
+    _check_on_error(on_error)
     metadata = read_metadata(run_dir)
     wanted = [
         "external.distance_m",
@@ -184,16 +193,22 @@ def summarize_run(run_dir: str | os.PathLike[str]) -> pd.DataFrame:
         *(f"external.target_position_m.{c}" for c in _COMPONENTS),
     ]
     files = episode_files(run_dir)
-    if files:  # the belief's columns are named by joint: take them from the first file
-        names = check_file(files[0]).schema_arrow.names
+    for path in files:  # the belief's columns are named by joint: take them from a file
+        try:
+            names = check_file(path).schema_arrow.names
+        except LogError:
+            continue
         wanted += [c for c in names if c.startswith((_BELIEF, _BELIEF_SD, _TRUTH))]
-    frame = read_run(run_dir, columns=wanted)
+        break
+    frame, problems = read_run(run_dir, columns=wanted, on_error="skip")
     if not any(c in frame.columns for c in wanted):
         # A base run or a custom env: fall back to every column (distance heuristics).
-        frame = read_run(run_dir)
+        frame, problems = read_run(run_dir, on_error="skip")
+    if problems and on_error != "skip":
+        raise problems[0]
     tolerance = metadata.get("tolerance_m")
     tolerance = float(tolerance) if isinstance(tolerance, (int, float)) else None
-    extras = _episode_extras(run_dir)
+    extras = _episode_extras(files)
     rows = {
         int(episode): _summarize_episode(group, tolerance, extras.get(int(episode), {}))
         for episode, group in frame.groupby("episode", sort=True)
@@ -201,7 +216,7 @@ def summarize_run(run_dir: str | os.PathLike[str]) -> pd.DataFrame:
     table = pd.DataFrame.from_dict(rows, orient="index")
     table.index.name = "episode"
     table["success"] = table["success"].astype("boolean")
-    return table
+    return (table, problems) if on_error == "skip" else table
 
 
 def format_summary(table: pd.DataFrame, metadata: Mapping[str, Any], run_dir: Path | str) -> str:

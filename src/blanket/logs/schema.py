@@ -2,11 +2,15 @@
 
 A run folder holds::
 
-    RUN_DIR/run.json                        run metadata (the only place for wall-clock fields)
+    RUN_DIR/run.json                        run metadata (one wall-clock field: started_at)
     RUN_DIR/episodes/episode-00000.parquet  one Parquet file per finished episode
-    RUN_DIR/episodes/.episode-00000.journal.arrow  (hidden) an ended episode not yet encoded,
-                                            see blanket.logs.journal
+    RUN_DIR/timings.jsonl                   wall-clock timings, one JSON line per episode
     RUN_DIR/summary.json, RUN_DIR/figures/  written beside them by the runner and the plotter
+
+Hidden files (names starting with ``.``) are temporaries of a write in progress, or journals
+left by earlier blanket writers (which encoded episodes in the background). Readers never
+read or change them; ``blanket logs repair RUN_DIR`` finishes or removes them (see
+:mod:`blanket.logs.repair`).
 
 Columns
 -------
@@ -47,12 +51,21 @@ Derived from the suffix of the innermost key that carries one: ``_rad_s`` rad/s,
 File metadata (Parquet key-value)
 ---------------------------------
 ``blanket.schema_version`` ("MAJOR.MINOR"), ``blanket.run`` (run metadata JSON, without
-wall-clock fields), ``blanket.units`` (JSON) and ``blanket.episode`` (JSON: episode number,
-number of rows and the ``extra`` dict given to ``end_episode``).
+wall-clock fields), ``blanket.units`` (JSON), ``blanket.episode`` (JSON: episode number,
+number of rows and the ``extra`` dict given to ``end_episode``, without the wall-clock
+timings of :data:`TIMING_FIELDS`) and ``blanket.digest`` (see :func:`footer_digest`).
+
+Integrity
+---------
+Data pages carry Parquet's CRC-32 page checksums (pyarrow ``write_page_checksum``), verified
+by every blanket read. The footer has no checksum of its own in Parquet, so
+``blanket.digest`` holds a SHA-256 of what a reader takes from it (column names, types and
+units, the blanket metadata, the row count); a file whose footer disagrees is refused.
 """
 
 from __future__ import annotations
 
+import functools
 import json
 import re
 from collections.abc import Mapping, Sequence
@@ -65,15 +78,19 @@ __all__ = [
     "GROUPS",
     "INDEX_COLUMNS",
     "WALL_CLOCK_FIELDS",
+    "TIMING_FIELDS",
+    "footer_digest",
     "LogError",
     "unit_for_key",
     "component_labels",
     "parse_version",
+    "episode_file_name",
     "to_json",
     "META_SCHEMA",
     "META_RUN",
     "META_UNITS",
     "META_EPISODE",
+    "META_DIGEST",
 ]
 
 SCHEMA_VERSION = "1.0"
@@ -81,11 +98,14 @@ GROUPS = ("external", "sensory", "active", "internal")
 INDEX_COLUMNS = ("episode", "step", "t")
 #: Wall-clock metadata fields: kept in run.json, left out of the episode files (determinism).
 WALL_CLOCK_FIELDS = ("started_at", "start_time", "end_time", "finished_at", "wall_time_s")
+#: Wall-clock timings of an episode's ``extra``: written to ``timings.jsonl``, not to its file.
+TIMING_FIELDS = ("agent_step_us", "sim_step_us")
 
 META_SCHEMA = b"blanket.schema_version"
 META_RUN = b"blanket.run"
 META_UNITS = b"blanket.units"
 META_EPISODE = b"blanket.episode"
+META_DIGEST = b"blanket.digest"
 
 # Longest suffixes first, so "_rad_s" wins over "_s" and "_n_m" over "_m".
 _UNIT_SUFFIXES: tuple[tuple[str, str], ...] = (
@@ -177,6 +197,11 @@ def component_labels(
     return [f"c{i}" for i in range(length)]
 
 
+def episode_file_name(episode: int) -> str:
+    """``episode-00042.parquet`` for episode 42."""
+    return f"episode-{episode:05d}.parquet"
+
+
 def parse_version(text: str) -> tuple[int, int]:
     """``"1.0"`` -> ``(1, 0)``; raises :class:`LogError` on anything else."""
     match = re.fullmatch(r"(\d+)\.(\d+)", text.strip())
@@ -203,3 +228,34 @@ def to_json(value: Any, *, indent: int | None = None) -> str:
         return json.dumps(value, default=_json_default, sort_keys=True, indent=indent)
     except TypeError as exc:
         raise ValueError(f"metadata: {exc}") from None
+
+
+def footer_digest(schema: Any, num_rows: int, created_by: str | None = None) -> str:
+    """SHA-256 (hex) of what a reader takes from an episode file's footer.
+
+    Covers the column names, types and field metadata (units), the ``blanket.*`` metadata
+    other than the digest itself, ``num_rows`` and the writing library's name
+    (``created_by``; default: the installed pyarrow's). ``schema`` is a ``pyarrow.Schema``
+    (as written, or ``ParquetFile.schema_arrow`` as read back: both give the same digest).
+    """
+    import hashlib
+
+    h = hashlib.sha256((_created_by() if created_by is None else created_by).encode())
+    h.update(schema.to_string(show_field_metadata=True, show_schema_metadata=False).encode())
+    for key, value in sorted((schema.metadata or {}).items()):
+        if key.startswith(b"blanket.") and key != META_DIGEST:
+            h.update(b"\0%d:%s\0%d:%s" % (len(key), key, len(value), value))
+    h.update(b"\0rows:%d" % num_rows)
+    return h.hexdigest()
+
+
+@functools.cache
+def _created_by() -> str:
+    """The writer name pyarrow's Parquet writer puts in a footer (asked once, from a
+    one-row file in memory)."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    sink = pa.BufferOutputStream()
+    pq.write_table(pa.table({"x": [0]}), sink)
+    return pq.read_metadata(pa.BufferReader(sink.getvalue())).created_by
