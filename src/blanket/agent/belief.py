@@ -204,6 +204,39 @@ class ChannelMonitor:
         self.noise_samples = dict.fromkeys(self.noise_variance, 0)
         self.last_angle_reading: np.ndarray | None = None
         self.pending_inflation: np.ndarray | None = None
+        # the efference copy's precision per joint, and the tracking error's mean square
+        self.motor_precision = np.full(
+            n, model.motor_precision if model.control == "velocity" else 0.0
+        )
+        self.motor_alpha = -float(np.expm1(-model.dt / float(model.options["motor_window_s"])))
+        self.motor_square = 1.0 / self.precision["joint_velocity"] + 1.0 / max(
+            model.motor_precision, 1e-300
+        )
+
+    def track_motor(self, obs: Mapping[str, Any], command: np.ndarray) -> None:
+        """Learn how closely the velocity motors track the last command (velocity control).
+
+        The command ``a`` sent a step ago and the velocity encoder's reading ``y`` now give
+        the tracking residual ``r = a - y = (a - q') - n``, whose variance is the motor's
+        tracking variance ``R_m`` plus the encoder's ``R_v`` (independent). Covariance
+        matching (Mehra 1970, IEEE Trans Autom Control 15(2), sec. IV, as
+        :meth:`learn_precisions`) gives ``R_m = E[r^2] - R_v``; ``E[r^2]`` is an exponential
+        average over ``motor_window_s`` that takes this step's residual before the step uses
+        it, so a command the motors cannot follow -- a payload that saturates their torque,
+        a command the safety wrapper or the env clamped -- loosens the efference copy in the
+        same step. The precision is ``1 / max(R_m, 1 / motor_precision)``: the nominal
+        precision is the most the copy is trusted. The average pauses while the velocity
+        encoder is flagged faulty.
+        """
+        model = self.model
+        if not model.motor_learned:
+            return
+        if model.options["fault_detection"] and self.fault["joint_velocity"].any():
+            return
+        r = command - np.asarray(obs["joint_velocity_rad_s"], dtype=float)
+        self.motor_square += self.motor_alpha * (r * r - self.motor_square)
+        tracking = self.motor_square - 1.0 / self.precision["joint_velocity"]
+        np.divide(1.0, np.maximum(tracking, 1.0 / model.motor_precision), out=self.motor_precision)
 
     def effective(self, name: str) -> np.ndarray:
         """A channel's precision, down-weighted to 1e-6 of itself where it is flagged."""

@@ -46,6 +46,7 @@ __all__ = [
     "AttractorPrior",
     "generalized_motion",
     "jerk_covariance",
+    "velocity_step_covariance",
     "MOTOR_TRACKING_SD_RAD_S",
 ]
 
@@ -84,8 +85,11 @@ class AgentOptions:
         "motor_precision": None,
         "goal_precision": None,
         "jerk_intensity": 50.0,
+        "velocity_step_sd_rad_s": 0.1,
         "action_fraction": 1.0,
         "learn_precision": False,
+        "learn_motor_precision": True,
+        "motor_window_s": 0.1,
         "precision_learning_rate": 0.2,
         "fault_detection": False,
         "fault_window_s": 0.1,
@@ -127,6 +131,7 @@ class AgentOptions:
             "length_scale",
             "mass_scale",
             "fault_window_s",
+            "motor_window_s",
             "target_window_s",
             "divergence_limit",
         ):
@@ -136,6 +141,7 @@ class AgentOptions:
         for key in (
             "damping_m",
             "posture_gain_1_s",
+            "velocity_step_sd_rad_s",
             "payload_kg",
             "precision_learning_rate",
             "disturbance_time_constant_s",
@@ -193,6 +199,25 @@ def jerk_covariance(order: int, dt: float, intensity: float) -> np.ndarray:
             a, b = order - i, order - j
             W[i, j] = intensity * dt ** (a + b + 1) / ((a + b + 1) * factorial(a) * factorial(b))
     return W
+
+
+def velocity_step_covariance(order: int, dt: float, sd: float) -> np.ndarray:
+    """Covariance of a velocity step at the start of a control period, for one joint.
+
+    A velocity motor moves the joint velocity to its command within a period, and the
+    position then advances with the new velocity over the whole period (semi-implicit
+    Euler, as pybullet integrates its bodies): a step ``w`` of sd ``sd`` moves
+    ``(q, q')`` by ``b w``, ``b = (dt, 1, 0, ...)``, so the covariance is ``sd^2 b b'``
+    (common practice, no source). Without it the prior couples position to a change of
+    velocity by only ``3 dt / 8`` (the white-jerk covariance, :func:`jerk_covariance`),
+    and every change of command leaves ``5 dt / 8`` of it as an error of the believed
+    position that the belief's covariance does not hold.
+    """
+    b = np.zeros(order + 1)
+    b[0] = dt
+    if order >= 1:
+        b[1] = 1.0
+    return sd**2 * np.outer(b, b)
 
 
 @dataclass(frozen=True)
@@ -268,7 +293,11 @@ class CameraChannel:
 
 @dataclass(frozen=True)
 class EfferenceCopy:
-    """Velocity motors track the last command: ``a = q' + noise`` (order 1)."""
+    """Velocity motors track the last command: ``a = q' + noise`` (order 1).
+
+    ``precision`` is the nominal one; a step uses the precision in force (learned from the
+    tracking error, :meth:`blanket.agent.belief.ChannelMonitor.track_motor`).
+    """
 
     size: int
     jacobian: np.ndarray
@@ -278,7 +307,8 @@ class EfferenceCopy:
     def evaluate(
         self, obs: Mapping[str, Any], belief: np.ndarray, body: BodyState, context: StepContext
     ) -> Term:
-        return Term(context.command - belief[1], self.jacobian, self.precision)
+        precision = context.precision.get(self.name, self.precision)
+        return Term(context.command - belief[1], self.jacobian, precision)
 
 
 @dataclass(frozen=True)
@@ -347,7 +377,10 @@ class GenerativeModel:
         0 no goal in the belief (``goal="reference"``), 1 velocity attractor prior, 2
         acceleration attractor prior (torque control).
     precision_changing : bool
-        Whether precisions change during an episode (learning or fault down-weighting).
+        Whether the monitored channels' precisions change during an episode (learning or
+        fault down-weighting).
+    motor_learned : bool
+        Whether the efference copy's precision is learned from its tracking error.
     """
 
     description: ArmDescription
@@ -369,6 +402,7 @@ class GenerativeModel:
     extra_terms: tuple[ModelTerm, ...]
     goal_mode: int
     precision_changing: bool
+    motor_learned: bool
     fault_threshold: dict[str, float]
     fault_alpha: float
     kernel_constants: np.ndarray = field(repr=False)
@@ -426,6 +460,8 @@ class GenerativeModel:
 
         phi_t = generalized_motion(p, dt, opts["integration"])
         w_t = jerk_covariance(p, dt, float(opts["jerk_intensity"]))
+        if control == "velocity":
+            w_t += velocity_step_covariance(p, dt, float(opts["velocity_step_sd_rad_s"]))
         w_t += np.diag(np.full(p + 1, 1e-12))
         eye = np.eye(n)
 
@@ -504,6 +540,7 @@ class GenerativeModel:
             extra_terms=tuple(extra_terms),
             goal_mode=goal_mode,
             precision_changing=bool(opts["learn_precision"] or opts["fault_detection"]),
+            motor_learned=bool(pm > 0 and opts["learn_motor_precision"]),
             fault_threshold=fault_threshold,
             fault_alpha=float(fault_alpha),
             kernel_constants=constants,

@@ -165,6 +165,7 @@ def _laplace(
 def _context(model: GenerativeModel, episode: EpisodeState, f, F) -> StepContext:
     ch = episode.channels
     precision = {name: ch.effective(name) for name in ch.precision}
+    precision["motor"] = ch.motor_precision
     return StepContext(episode.command.command, precision, f, F)
 
 
@@ -271,6 +272,7 @@ def _perceive_compiled(model, belief, obs, episode, ws: CompiledWorkspace) -> di
     pq = channels.effective("joint_angle")
     pv = channels.effective("joint_velocity")
     pc = channels.effective("camera")
+    pm = channels.motor_precision
     log_errors = ws.log_errors[cam_on]
     errors = ws.active_errors[cam_on]
     log_det_extra = 0.0
@@ -284,6 +286,7 @@ def _perceive_compiled(model, belief, obs, episode, ws: CompiledWorkspace) -> di
         episode.command.command,
         pq,
         pv,
+        pm,
         pc,
         tip,
         J,
@@ -333,7 +336,7 @@ def _perceive_compiled(model, belief, obs, episode, ws: CompiledWorkspace) -> di
         )
     if status not in (_kernel.OK, _kernel.NOT_FINITE, _kernel.EXPLODED):
         raise np.linalg.LinAlgError(f"{_NOT_PD[status - 1]} is not positive definite")
-    energy -= 0.5 * (_log_det(model, ws, cam_on, pq, pv, pc) + log_det_extra)
+    energy -= 0.5 * (_log_det(model, ws, cam_on, pq, pv, pm, pc) + log_det_extra)
     new = None
     if status == _kernel.OK:
         new = Belief(ws.z_out, ws.cov_out, belief.shape, ws.sd_out)
@@ -352,20 +355,20 @@ def _perceive_compiled(model, belief, obs, episode, ws: CompiledWorkspace) -> di
     }
 
 
-def _log_det(model, ws, cam_on, pq, pv, pc) -> float:
+def _log_det(model, ws, cam_on, pq, pv, pm, pc) -> float:
     """``sum ln P`` of the built-in terms (cached while the precisions are fixed)."""
     cached = ws._log_det
     if not cached or model.precision_changing:
         n = model.n
         value = float(np.log(pq).sum() + np.log(pv).sum())
-        pm, pg = model.kernel_constants[0], model.kernel_constants[1]
-        if pm > 0:
-            value += n * np.log(pm)
         if model.goal_mode:
-            value += n * np.log(pg)
-        cached["encoders, motor, goal"] = value
+            value += n * np.log(model.kernel_constants[1])
+        cached["encoders, goal"] = value
         cached["camera"] = float(np.log(pc).sum()) if model.camera is not None else 0.0
-    return cached["encoders, motor, goal"] + (cached["camera"] if cam_on else 0.0)
+    if model.kernel_constants[0] > 0 and ("motor" not in cached or model.motor_learned):
+        cached["motor"] = float(np.log(pm).sum())
+    motor = cached.get("motor", 0.0) if model.kernel_constants[0] > 0 else 0.0
+    return cached["encoders, goal"] + motor + (cached["camera"] if cam_on else 0.0)
 
 
 def act(model: GenerativeModel, belief: Belief, command: CommandState) -> np.ndarray:
@@ -448,6 +451,7 @@ def step(
         belief = Belief.from_observation(model, obs, episode.channels.precision)
         episode.command.start(model, obs)
     episode.target.update(obs["target_position_m"])
+    episode.channels.track_motor(obs, episode.command.command)
     try:
         if episode.channels.pending_inflation is not None:
             episode.channels.inflate(belief)
