@@ -17,8 +17,8 @@ Buffer layouts: ``err`` (4n + 2) holds the errors of ``joint_angle | joint_veloc
 goal | camera``; ``vec`` (2, N) the predicted belief ``z-`` and the gradient; ``work`` (N, 4N)
 the curvature ``H`` and scratch. ``pm`` holds the efference copy's precision per joint (learned,
 see :class:`blanket.agent.belief.ChannelMonitor`). ``constants = (nominal motor precision (<= 0:
-no efference copy), goal precision, velocity gain kv, velocity limit of the belief, k, vmax, lambda^2, k_null,
-weighting_on)``; the last five are the attractor's parameters.
+no efference copy), goal precision, velocity gain kv, velocity limit of the belief, k, vmax,
+lambda^2, k_null, weighting_on)``; the last five are the attractor's parameters.
 """
 
 from __future__ import annotations

@@ -13,7 +13,7 @@
 from __future__ import annotations
 
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any, NamedTuple
 
 import numpy as np
@@ -32,6 +32,9 @@ __all__ = [
 
 #: Samples a channel averages before its learned precision is applied.
 _LEARNING_BURN_IN = 20
+#: Tracking variance, in velocity-noise variances, above which a motor counts as lagging its
+#: command (a noise 3x the declared one shows as 8; common practice, no source).
+_LAGGING = 10.0
 
 
 @dataclass
@@ -102,6 +105,8 @@ class CommandState:
         Believed unmodelled joint torque (torque control).
     last_velocity_belief : numpy.ndarray or None
         The believed velocity of the last step (for the disturbance observer).
+    change : numpy.ndarray
+        The last command less the one before it (the velocity step the motors make next).
     """
 
     command: np.ndarray
@@ -110,11 +115,12 @@ class CommandState:
     attractor_velocity: np.ndarray
     disturbance: np.ndarray
     last_velocity_belief: np.ndarray | None = None
+    change: np.ndarray = field(default_factory=lambda: np.zeros(0))
 
     @classmethod
     def empty(cls, n: int) -> CommandState:
         z = np.zeros(n)
-        return cls(z.copy(), z.copy(), z.copy(), z.copy(), z.copy())
+        return cls(z.copy(), z.copy(), z.copy(), z.copy(), z.copy(), None, z.copy())
 
     def start(self, model: GenerativeModel, obs: Mapping[str, Any]) -> None:
         """First observation of an episode: home posture, and the command the motors run."""
@@ -125,6 +131,7 @@ class CommandState:
             self.command = np.asarray(obs["joint_velocity_rad_s"], dtype=float).copy()
         else:
             self.command = np.zeros(model.n)
+        self.change = np.zeros(model.n)
 
 
 class TargetTrack:
@@ -204,29 +211,38 @@ class ChannelMonitor:
         self.noise_samples = dict.fromkeys(self.noise_variance, 0)
         self.last_angle_reading: np.ndarray | None = None
         self.pending_inflation: np.ndarray | None = None
-        # the efference copy's precision per joint, and the tracking error's mean square
+        # the efference copy's precision per joint, from the tracking residual's mean square
         self.motor_precision = np.full(
             n, model.motor_precision if model.control == "velocity" else 0.0
         )
         self.motor_alpha = -float(np.expm1(-model.dt / float(model.options["motor_window_s"])))
-        self.motor_square = 1.0 / self.precision["joint_velocity"] + 1.0 / max(
-            model.motor_precision, 1e-300
+        self.motor_square = np.full(
+            n,
+            1.0 / self.precision["joint_velocity"].mean()
+            + 1.0 / max(model.motor_precision, 1e-300),
         )
+        #: the motors' tracking variance beyond the nominal (0 while they track)
+        self.tracking_variance = np.zeros(n)
+        self.motor_ceiling = (2.0 * np.asarray(model.description.velocity_limit_rad_s)) ** 2
 
     def track_motor(self, obs: Mapping[str, Any], command: np.ndarray) -> None:
         """Learn how closely the velocity motors track the last command (velocity control).
 
         The command ``a`` sent a step ago and the velocity encoder's reading ``y`` now give
-        the tracking residual ``r = a - y = (a - q') - n``, whose variance is the motor's
+        the tracking residual ``r = a - y = (a - q') - n``, whose variance is the motors'
         tracking variance ``R_m`` plus the encoder's ``R_v`` (independent). Covariance
         matching (Mehra 1970, IEEE Trans Autom Control 15(2), sec. IV, as
         :meth:`learn_precisions`) gives ``R_m = E[r^2] - R_v``; ``E[r^2]`` is an exponential
         average over ``motor_window_s`` that takes this step's residual before the step uses
-        it, so a command the motors cannot follow -- a payload that saturates their torque,
-        a command the safety wrapper or the env clamped -- loosens the efference copy in the
-        same step. The precision is ``1 / max(R_m, 1 / motor_precision)``: the nominal
-        precision is the most the copy is trusted. The average pauses while the velocity
-        encoder is flagged faulty.
+        it, so a command the motors cannot follow -- a payload that holds them back, a
+        command the safety wrapper or the env clamped -- loosens the efference copy in the
+        same step. The copy's precision is ``1 / max(R_m, 1 / motor_precision)`` (the nominal
+        precision is the most it is trusted), and the excess ``R_m - 1 / motor_precision``
+        (:attr:`tracking_variance`) joins the velocity step of the prior
+        (:meth:`~blanket.agent.generative_model.GenerativeModel.motion_noise_at`): motors
+        that do not follow their commands change the velocity in ways no command foresees,
+        and a lag that persists then moves the position belief less than its covariance
+        admits. The average pauses while the velocity encoder is flagged faulty.
         """
         model = self.model
         if not model.motor_learned:
@@ -235,8 +251,12 @@ class ChannelMonitor:
             return
         r = command - np.asarray(obs["joint_velocity_rad_s"], dtype=float)
         self.motor_square += self.motor_alpha * (r * r - self.motor_square)
-        tracking = self.motor_square - 1.0 / self.precision["joint_velocity"]
-        np.divide(1.0, np.maximum(tracking, 1.0 / model.motor_precision), out=self.motor_precision)
+        floor = 1.0 / model.motor_precision
+        tracking = np.maximum(self.motor_square - 1.0 / self.precision["joint_velocity"], floor)
+        # no motor misses its command by more than twice its speed limit
+        np.minimum(tracking, self.motor_ceiling, out=tracking)
+        np.divide(1.0, tracking, out=self.motor_precision)
+        np.subtract(tracking, floor, out=self.tracking_variance)
 
     def effective(self, name: str) -> np.ndarray:
         """A channel's precision, down-weighted to 1e-6 of itself where it is flagged."""
@@ -276,12 +296,43 @@ class ChannelMonitor:
         sel = slice(0, n) if name == "joint_angle" else slice(n, 2 * n)
         return np.diagonal(cov_prior)[sel]
 
-    def update(self, seen: Innovations) -> None:
-        """After a step: test for faults and learn precisions, as the options ask."""
+    def update(self, seen: Innovations, new: Belief | None = None) -> None:
+        """After a step: test for faults and learn precisions, as the options ask; with
+        ``new`` (the belief the step made) rescale its covariance where an encoder was found
+        noisier than it was weighted (:meth:`rescale`)."""
         if self.model.options["fault_detection"]:
             self.detect_faults(seen)
         if self.model.options["learn_precision"]:
-            self.learn_precisions(seen)
+            before = (self.precision["joint_angle"], self.precision["joint_velocity"])
+            self.learn_precisions(seen)  # assigns new arrays when it changes a precision
+            if new is not None and (
+                before[0] is not self.precision["joint_angle"]
+                or before[1] is not self.precision["joint_velocity"]
+            ):
+                self.rescale(new, {"joint_angle": before[0], "joint_velocity": before[1]})
+
+    def rescale(self, belief: Belief, before: Mapping[str, np.ndarray]) -> None:
+        """Grow a joint's covariance by the factor its encoders' learned noise variance grew.
+
+        A belief built on readings weighted with a precision ``c`` times too high holds a
+        covariance up to ``c`` times too small in the directions those readings inform (a
+        filter dominated by one sensor has a covariance proportional to its noise variance);
+        so when an encoder's learned variance grows by ``c > 1`` the joint's block (every
+        order) is scaled by ``c``, and the belief stays as uncertain as the readings it rests
+        on (covariance rescaling of adaptive filters, common practice, no source). A learned
+        variance that shrinks leaves the covariance alone: the next readings shrink it.
+        """
+        growth = np.ones(self.model.n)
+        for name, old in before.items():
+            np.maximum(growth, old / self.precision[name], out=growth)
+        if np.all(growth <= 1.0):
+            return
+        scale = np.sqrt(np.tile(growth, self.model.order + 1))
+        cov = belief.covariance
+        cov *= scale[:, None]
+        cov *= scale[None, :]
+        if belief.sd is not None:
+            np.sqrt(np.maximum(cov.diagonal(), 0.0), out=belief.sd)
 
     def detect_faults(self, seen: Innovations) -> None:
         """Two-sided tests per channel (per joint for the encoders); flags in ``fault``.
@@ -393,7 +444,10 @@ class ChannelMonitor:
         bounded to ``[e^-7, e^7]`` times the starting precision, applied from the
         ``_LEARNING_BURN_IN``-th sample on; each sample is clipped to ``[-3, 20]`` predicted
         innovation variances (an outlier guard, common practice, no source). Samples a
-        channel takes while flagged by :meth:`detect_faults` are skipped.
+        channel takes while flagged by :meth:`detect_faults` are skipped, and so are the
+        encoders' samples of a joint whose motor lags its command by a tracking variance
+        above ``_LAGGING`` velocity-noise variances (:meth:`track_motor`), as the two
+        estimators that use the copy assume it is followed.
         """
         errors, cov_prior, g_cam, belief = seen
         model = self.model
@@ -439,6 +493,12 @@ class ChannelMonitor:
                 step_s = max(model.dt, 1.0 / model.camera.rate_hz)
             a = max(1.0 / k, -np.expm1(-rate * step_s))
             healthy = ~(high.repeat(2) if name == "camera" else high)
+            if name != "camera" and "motor" in errors:
+                # the encoders' estimators lean on the copy: not while the motors lag it by
+                # far more than the velocity noise (a smaller excess may be that noise
+                # itself, under-estimated: learning it is what removes the excess)
+                lag = self.tracking_variance * self.precision["joint_velocity"]
+                healthy = healthy & (lag <= _LAGGING)
             R = self.noise_variance[name]
             R += (a * healthy) * (sample - R)
             if k < _LEARNING_BURN_IN:

@@ -15,10 +15,18 @@ Terms (``e = y - g(z)``, ``G = dg/dz`` with respect to the flattened belief, ord
 * ``camera``: the tool tip's pixel ``y = pi(fk(q))`` on fresh frames in which it is visible,
   ``G = d pi / d x . J(q)`` (:func:`blanket.description.pinhole_projection`);
 * ``motor`` (velocity control): the efference copy, the motors track the last command,
-  ``q' ~ a``;
+  ``q' ~ a``, with a precision learned from how closely they did
+  (:meth:`blanket.agent.belief.ChannelMonitor.track_motor`);
 * ``goal`` (``goal="prior"``): the attractor as prior dynamics, ``q' = f(q)`` under velocity
   control, ``q'' = k_v (f(q) - q')`` under torque control
   (:func:`blanket.agent.attractor.damped_least_squares_attractor`).
+
+Under velocity control the prior's motion noise also holds a velocity step per period
+(:func:`velocity_step_covariance`, :meth:`GenerativeModel.motion_noise_at`): the motors move
+the joints to each new command within a period and the position advances with the new
+velocity, which the white-jerk motion alone does not foresee. With it and the learned
+efference copy the belief's covariance stays as large as its errors when commands change,
+are clamped, or are not followed (``scripts/bench_consistency.py``).
 """
 
 from __future__ import annotations
@@ -85,7 +93,8 @@ class AgentOptions:
         "motor_precision": None,
         "goal_precision": None,
         "jerk_intensity": 50.0,
-        "velocity_step_sd_rad_s": 0.1,
+        "velocity_step_sd_rad_s": 0.01,
+        "velocity_step_gain": 10.0,
         "action_fraction": 1.0,
         "learn_precision": False,
         "learn_motor_precision": True,
@@ -142,6 +151,7 @@ class AgentOptions:
             "damping_m",
             "posture_gain_1_s",
             "velocity_step_sd_rad_s",
+            "velocity_step_gain",
             "payload_kg",
             "precision_learning_rate",
             "disturbance_time_constant_s",
@@ -364,7 +374,8 @@ class GenerativeModel:
         Generalized motion over ``dt`` for one joint, (p+1, p+1); ``transition_full`` is its
         ``kron`` with ``I_n``.
     motion_noise : numpy.ndarray
-        Covariance ``W`` of the generalized motion's noise over ``dt``, (N, N).
+        Covariance ``W`` of the generalized motion's noise over ``dt``, (N, N), without the
+        velocity step of a change of command (:meth:`motion_noise_at`).
     precision : dict
         Nominal precisions of the monitored channels (``joint_angle``, ``joint_velocity``,
         ``camera``); ``motor_precision`` and ``goal_precision`` those of the efference copy
@@ -548,6 +559,44 @@ class GenerativeModel:
             camera_intrinsics=intrinsics,
             limits=limits,
         )
+
+    def motion_noise_at(
+        self,
+        change: np.ndarray,
+        tracking: np.ndarray | None = None,
+        out: np.ndarray | None = None,
+    ) -> np.ndarray:
+        """``W`` of one step: the generalized motion's noise plus a velocity step per joint
+        (velocity control; :func:`velocity_step_covariance`) of variance
+        ``(velocity_step_gain change)^2 + tracking``: ``change`` (n,) the last change of
+        command, ``tracking`` (n,) the motors' learned tracking variance beyond the nominal
+        (:meth:`blanket.agent.belief.ChannelMonitor.track_motor`).
+
+        A velocity motor moves the joint to a new command within the period that follows it,
+        so the change of command is the size of the velocity step the white-jerk motion does
+        not foresee (common practice, no source); a steady command adds nothing, and the
+        belief then averages its encoders over many periods. The step's variance is
+        ``velocity_step_sd_rad_s^2 + (velocity_step_gain change)^2``: the first part, in
+        :attr:`motion_noise`, stands for what the motors do that no command asked for (a slow
+        sag under a load they barely hold, measured on the bench's payload condition).
+        """
+        if self.control != "velocity":
+            return self.motion_noise  # read-only use: no step under torque control
+        if out is None:
+            out = np.empty_like(self.motion_noise)
+        gain = float(self.options["velocity_step_gain"])
+        var = (gain * np.asarray(change, dtype=float)) ** 2
+        if tracking is not None:
+            var += tracking
+        # kron(b b', I_n) is nonzero only on the (q, q') blocks' diagonals
+        n, dt = self.n, self.dt
+        out[:] = self.motion_noise
+        i = np.arange(n)
+        out[i, i] += dt * dt * var
+        out[i, n + i] += dt * var
+        out[n + i, i] += dt * var
+        out[n + i, n + i] += var
+        return out
 
     @property
     def terms(self) -> tuple[Any, ...]:

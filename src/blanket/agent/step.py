@@ -49,15 +49,23 @@ __all__ = [
 _NOT_PD = ("prior covariance", "free-energy curvature", "damped Jacobian product")
 
 
-def predict(model: GenerativeModel, belief: Belief) -> tuple[np.ndarray, np.ndarray]:
+def predict(
+    model: GenerativeModel,
+    belief: Belief,
+    change: np.ndarray | None = None,
+    tracking: np.ndarray | None = None,
+) -> tuple[np.ndarray, np.ndarray]:
     """Prior mean and covariance of the next step: ``z- = Phi z``, ``Sigma- = Phi Sigma Phi' + W``.
 
     ``Phi`` the generalized motion over ``dt`` (local linearisation, Ozaki 1992), ``W`` its
-    noise (Van Loan 1978, IEEE Trans Autom Control 23(3)).
+    noise (Van Loan 1978, IEEE Trans Autom Control 23(3)), plus under velocity control the
+    velocity step of the last change of command ``change`` and of the motors' learned
+    tracking variance ``tracking``
+    (:meth:`~blanket.agent.generative_model.GenerativeModel.motion_noise_at`).
     """
     z_prior = (model.transition @ belief.generalized).reshape(-1)
     cov_prior = model.transition_full @ belief.covariance @ model.transition_full.T
-    cov_prior += model.motion_noise
+    cov_prior += model.motion_noise_at(np.zeros(model.n) if change is None else change, tracking)
     return z_prior, cov_prior
 
 
@@ -180,6 +188,7 @@ class CompiledWorkspace:
         self.cov_out = np.zeros((N, N))
         self.sd_out = np.zeros(N)
         self.cov_prior = np.zeros((N, N))
+        self.motion_noise = np.zeros((N, N))
         self.f = np.zeros(n)
         self.F = np.zeros((n, n))
         self.g_cam = np.zeros((2, n))
@@ -218,7 +227,10 @@ def _perceive_reference(model, belief, obs, episode) -> dict[str, Any]:
     layout), ``cov_prior``, ``g_cam`` (camera Jacobian or None), ``attractor_velocity``.
     """
     n = model.n
-    z_prior, cov_prior = predict(model, belief)  # z- = Phi z ; Sigma- = Phi Sigma Phi' + W
+    # z- = Phi z ; Sigma- = Phi Sigma Phi' + W
+    z_prior, cov_prior = predict(
+        model, belief, episode.command.change, episode.channels.tracking_variance
+    )
     chol, info = dpotrf(cov_prior, lower=1, clean=0)
     if info != 0:
         raise np.linalg.LinAlgError("prior covariance is not positive definite")
@@ -280,7 +292,7 @@ def _perceive_compiled(model, belief, obs, episode, ws: CompiledWorkspace) -> di
         z,
         belief.covariance,
         model.transition,
-        model.motion_noise,
+        model.motion_noise_at(episode.command.change, channels.tracking_variance, ws.motion_noise),
         np.asarray(obs["joint_angle_rad"], dtype=float),
         np.asarray(obs["joint_velocity_rad_s"], dtype=float),
         episode.command.command,
@@ -469,14 +481,16 @@ def step(
     if status == _kernel.EXPLODED:
         action, diag = safe_stop(model, episode, "belief velocity exploded")
         return belief, action, diag
-    if model.precision_changing:
-        episode.channels.update(Innovations(out["errors"], out["cov_prior"], out["g_cam"], belief))
     new = out["belief"]
+    if model.precision_changing:
+        seen = Innovations(out["errors"], out["cov_prior"], out["g_cam"], belief)
+        episode.channels.update(seen, new)
     command = episode.command
     command.attractor_velocity = out["attractor_velocity"].copy()
     # a view: the compiled backend reuses this buffer only after the next successful step
     command.last_finite_q = new.mean[: model.n]
     action = act(model, new, command)
+    np.subtract(action, command.command, out=command.change)
     command.command = action
     diag = {
         "free_energy": out["free_energy"],
