@@ -32,9 +32,6 @@ __all__ = [
 
 #: Samples a channel averages before its learned precision is applied.
 _LEARNING_BURN_IN = 20
-#: Tracking variance, in velocity-noise variances, above which a motor counts as lagging its
-#: command (a noise 3x the declared one shows as 8; common practice, no source).
-_LAGGING = 10.0
 
 
 @dataclass
@@ -210,6 +207,8 @@ class ChannelMonitor:
         self.noise_variance = {k: 1.0 / v for k, v in model.precision.items() if np.all(v > 0)}
         self.noise_samples = dict.fromkeys(self.noise_variance, 0)
         self.last_angle_reading: np.ndarray | None = None
+        self.last_velocity_reading: np.ndarray | None = None
+        self.last_command: np.ndarray | None = None
         self.pending_inflation: np.ndarray | None = None
         # the efference copy's precision per joint, from the tracking residual's mean square
         self.motor_precision = np.full(
@@ -430,11 +429,11 @@ class ChannelMonitor:
         unmodelled change of command makes wrong. Encoder angles: the reading's increment
         less the commanded motion, ``d = y_k - y_(k-1) - dt a``, is ``n_k - n_(k-1)``, so
         ``R_q = E[d^2] / 2`` (the difference variance estimator, von Neumann et al. 1941, Ann
-        Math Stat 12(2), from memory). The velocity prediction misses every change of
-        command, so ``Sigma-`` understates its error; there the efference copy's error
-        ``e_m = a - q'-`` carries the same prediction error with independent noise, and
-        ``R_v = E[nu_v (nu_v - e_m)]`` is Grubbs' two-instrument estimator (Grubbs 1948, J Am
-        Stat Assoc 43(242), from memory), free of the prediction error whatever its size. The
+        Math Stat 12(2), from memory). Encoder velocities likewise: the reading's increment
+        less the commanded change of velocity (velocity control; a lag of the motors that
+        persists cancels in it) or less ``dt`` times the believed acceleration (torque
+        control), ``R_v = E[d^2] / 2`` (the velocity prediction misses every change of
+        command, so ``Sigma-`` would understate its error). The
         camera's pixel error is likewise predicted by the encoder angles' error through the
         camera Jacobian ``G``: ``R_px = E[nu_px (nu_px - G nu_q)]`` (while no encoder angle is
         flagged), which keeps the camera from absorbing an error of ``Sigma-``. Each estimate
@@ -444,10 +443,7 @@ class ChannelMonitor:
         bounded to ``[e^-7, e^7]`` times the starting precision, applied from the
         ``_LEARNING_BURN_IN``-th sample on; each sample is clipped to ``[-3, 20]`` predicted
         innovation variances (an outlier guard, common practice, no source). Samples a
-        channel takes while flagged by :meth:`detect_faults` are skipped, and so are the
-        encoders' samples of a joint whose motor lags its command by a tracking variance
-        above ``_LAGGING`` velocity-noise variances (:meth:`track_motor`), as the two
-        estimators that use the copy assume it is followed.
+        channel takes while flagged by :meth:`detect_faults` are skipped.
         """
         errors, cov_prior, g_cam, belief = seen
         model = self.model
@@ -474,9 +470,25 @@ class ChannelMonitor:
                 d = reading - last - model.dt * (errors["motor"] + v_prior)
                 sample = 0.5 * d * d
                 s = 0.0
-            elif name == "joint_velocity" and "motor" in errors:
-                # Grubbs' estimator: the efference copy sees the same prediction error.
-                sample = e * (e - errors["motor"])
+            elif name == "joint_velocity" and ("motor" in errors or model.order >= 2):
+                # The reading's increment less the commanded change of velocity (velocity
+                # control) or the believed acceleration's (torque control) is n_k - n_(k-1):
+                # a lag of the motors that persists cancels in it.
+                g = belief.generalized
+                reading = e + model.transition[1] @ g
+                if "motor" in errors:
+                    moved = errors["motor"] + model.transition[1] @ g  # the command a
+                    expected = None if self.last_command is None else moved - self.last_command
+                    self.last_command = moved
+                else:
+                    expected = model.dt * g[2]
+                last = self.last_velocity_reading
+                self.last_velocity_reading = reading
+                if last is None or expected is None:
+                    continue
+                d = reading - last - expected
+                sample = 0.5 * d * d
+                s = 0.0
             elif name == "camera" and not self.fault["joint_angle"].any():
                 # ... and the encoder angles see the camera's, through its Jacobian.
                 sample = e * (e - g_cam @ errors["joint_angle"])
@@ -493,12 +505,6 @@ class ChannelMonitor:
                 step_s = max(model.dt, 1.0 / model.camera.rate_hz)
             a = max(1.0 / k, -np.expm1(-rate * step_s))
             healthy = ~(high.repeat(2) if name == "camera" else high)
-            if name != "camera" and "motor" in errors:
-                # the encoders' estimators lean on the copy: not while the motors lag it by
-                # far more than the velocity noise (a smaller excess may be that noise
-                # itself, under-estimated: learning it is what removes the excess)
-                lag = self.tracking_variance * self.precision["joint_velocity"]
-                healthy = healthy & (lag <= _LAGGING)
             R = self.noise_variance[name]
             R += (a * healthy) * (sample - R)
             if k < _LEARNING_BURN_IN:
