@@ -16,8 +16,11 @@ per row:
 * ``reached``: episodes reached within the env's 1 cm tolerance (held 0.25 s), and the median
   final error.
 
-``--option KEY=VALUE`` (repeatable) passes agent options, e.g. ``motor_precision=40000`` to
-compare with the old fixed efference copy.
+``--option KEY=VALUE`` (repeatable) passes agent options: ``--option learn_motor_precision=false
+--option velocity_step_sd_rad_s=0 --option velocity_step_gain=0`` is the model before issue 17
+(a fixed efference copy, white-jerk motion only); ``--option learn_precision=true`` learns the
+sensors' precisions (what ``sensor-noise-x3`` needs). pybullet prints its own warnings on
+stderr (e.g. the xarm6's inertias); ``2>/dev/null`` hides them.
 
     python scripts/bench_consistency.py [--episodes 10] [--arms iiwa,arm3]
         [--conditions nominal,payload-1.5kg] [--controls velocity,torque]

@@ -161,7 +161,7 @@ def test_learned_precisions_shrink_the_overconfidence_of_noisier_sensors(planar_
 
     env = SensorNoiseScale(planar_env, 3.0)
     seeds = [0, 1, 2, 3]
-    fixed = _worst_nees(env, ArmAgent.from_env(planar_env), seeds)
+    fixed = _worst_nees(env, ArmAgent.from_env(planar_env, learn_precision=False), seeds)
     learned = _worst_nees(env, ArmAgent.from_env(planar_env, learn_precision=True), seeds)
     assert np.median(fixed) > 2 * NEES_BOUND, fixed
     assert np.all(learned < 0.6 * fixed) and np.median(learned) < 1.5 * NEES_BOUND, learned
