@@ -28,14 +28,19 @@ def _obs(env, seed=0):
     return obs
 
 
-def test_free_energy_gradient_matches_finite_differences(planar_env):
+@pytest.mark.parametrize("per_joint_motor", [False, True])
+def test_free_energy_gradient_matches_finite_differences(planar_env, per_joint_motor):
     # Encoders, camera and the efference copy have exact Jacobians; compare dF/dz with
-    # central differences at random beliefs (common practice, no source).
+    # central differences at random beliefs (common practice, no source). The copy's
+    # precision is learned per joint (ChannelMonitor.track_motor): also with two that differ.
     agent = ArmAgent.from_env(planar_env, goal="reference")
     obs = _obs(planar_env, 3)
     obs = dict(obs, camera_fresh=1, tip_visible=1)
     rng = np.random.default_rng(0)
     agent.act(obs)
+    if per_joint_motor:
+        agent.episode.command.command = np.array([0.3, -0.2])
+        agent.episode.channels.motor_precision[:] = [4e4, 25.0]
     N = agent.size
     A = rng.normal(size=(N, N))
     prior_precision = A @ A.T + N * np.eye(N)
@@ -229,10 +234,13 @@ def test_one_gauss_newton_step_zeroes_the_linearised_gradient(planar_env):
     agent.act(obs)
     z_before, cov_before = agent.state.mean.copy(), agent.state.covariance.copy()
     action_before = agent.episode.command.command.copy()
+    change_before = agent.episode.command.change.copy()
     agent.act(obs)
     z_after = agent.state.mean.copy()
     agent.episode.command.command = action_before  # the efference copy the step used
-    phi, w = agent.model.transition_full, agent.model.motion_noise
+    # the step's motion noise: its velocity step of the change of command and tracking
+    tracking = agent.episode.channels.tracking_variance
+    phi, w = agent.model.transition_full, agent.model.motion_noise_at(change_before, tracking)
     z_prior = phi @ z_before
     prec_prior = np.linalg.inv(phi @ cov_before @ phi.T + w)
     _, grad_prior = agent.free_energy_and_gradient(obs, z_prior, z_prior, prec_prior)

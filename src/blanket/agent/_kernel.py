@@ -15,9 +15,10 @@ compiled solve follows. Results go to the
 
 Buffer layouts: ``err`` (4n + 2) holds the errors of ``joint_angle | joint_velocity | motor |
 goal | camera``; ``vec`` (2, N) the predicted belief ``z-`` and the gradient; ``work`` (N, 4N)
-the curvature ``H`` and scratch. ``constants = (motor precision (<= 0: no efference copy), goal
-precision, velocity gain kv, velocity limit of the belief, k, vmax, lambda^2, k_null,
-weighting_on)``; the last five are the attractor's parameters.
+the curvature ``H`` and scratch. ``pm`` holds the efference copy's precision per joint (learned,
+see :class:`blanket.agent.belief.ChannelMonitor`). ``constants = (nominal motor precision (<= 0:
+no efference copy), goal precision, velocity gain kv, velocity limit of the belief, k, vmax,
+lambda^2, k_null, weighting_on)``; the last five are the attractor's parameters.
 """
 
 from __future__ import annotations
@@ -85,6 +86,7 @@ def perception_step(  # pragma: no cover - compiled
     command,
     pq,
     pv,
+    pm,
     pc,
     tip,
     J,
@@ -132,7 +134,7 @@ def perception_step(  # pragma: no cover - compiled
     err_m = err[2 * n : 3 * n]
     err_g = err[3 * n : 4 * n]
     err_c = err[4 * n : 4 * n + 2]
-    pm = constants[0]
+    motor_on = constants[0] > 0.0
     pg = constants[1]
     kv = constants[2]
     # -- prediction: z- = (phi kron I) z ; Sigma- = Phi Sigma Phi' + W
@@ -175,12 +177,12 @@ def perception_step(  # pragma: no cover - compiled
         H[n + i, n + i] += pv[i]
         grad[n + i] -= pv[i] * e
         energy += 0.5 * pv[i] * e * e
-        if pm > 0.0:
+        if motor_on:
             e = command[i] - zp[n + i]
             err_m[i] = e
-            H[n + i, n + i] += pm
-            grad[n + i] -= pm * e
-            energy += 0.5 * pm * e * e
+            H[n + i, n + i] += pm[i]
+            grad[n + i] -= pm[i] * e
+            energy += 0.5 * pm[i] * e * e
     # -- attractor f(q-) and F = df/dq (used by the goal prior and by the action)
     if not damped_least_squares_attractor(
         J, tip, target, target_velocity, zp[0:n], home, limits[0], limits[1], constants[4:9],

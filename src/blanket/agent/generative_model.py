@@ -15,10 +15,18 @@ Terms (``e = y - g(z)``, ``G = dg/dz`` with respect to the flattened belief, ord
 * ``camera``: the tool tip's pixel ``y = pi(fk(q))`` on fresh frames in which it is visible,
   ``G = d pi / d x . J(q)`` (:func:`blanket.description.pinhole_projection`);
 * ``motor`` (velocity control): the efference copy, the motors track the last command,
-  ``q' ~ a``;
+  ``q' ~ a``, with a precision learned from how closely they did
+  (:meth:`blanket.agent.belief.ChannelMonitor.track_motor`);
 * ``goal`` (``goal="prior"``): the attractor as prior dynamics, ``q' = f(q)`` under velocity
   control, ``q'' = k_v (f(q) - q')`` under torque control
   (:func:`blanket.agent.attractor.damped_least_squares_attractor`).
+
+Under velocity control the prior's motion noise also holds a velocity step per period
+(:func:`velocity_step_covariance`, :meth:`GenerativeModel.motion_noise_at`): the motors move
+the joints to each new command within a period and the position advances with the new
+velocity, which the white-jerk motion alone does not foresee. With it and the learned
+efference copy the belief's covariance stays as large as its errors when commands change,
+are clamped, or are not followed (``scripts/bench_consistency.py``).
 """
 
 from __future__ import annotations
@@ -46,6 +54,7 @@ __all__ = [
     "AttractorPrior",
     "generalized_motion",
     "jerk_covariance",
+    "velocity_step_covariance",
     "MOTOR_TRACKING_SD_RAD_S",
 ]
 
@@ -84,8 +93,12 @@ class AgentOptions:
         "motor_precision": None,
         "goal_precision": None,
         "jerk_intensity": 50.0,
+        "velocity_step_sd_rad_s": 0.01,
+        "velocity_step_gain": 10.0,
         "action_fraction": 1.0,
-        "learn_precision": False,
+        "learn_precision": True,
+        "learn_motor_precision": True,
+        "motor_window_s": 0.1,
         "precision_learning_rate": 0.2,
         "fault_detection": False,
         "fault_window_s": 0.1,
@@ -127,6 +140,7 @@ class AgentOptions:
             "length_scale",
             "mass_scale",
             "fault_window_s",
+            "motor_window_s",
             "target_window_s",
             "divergence_limit",
         ):
@@ -136,6 +150,8 @@ class AgentOptions:
         for key in (
             "damping_m",
             "posture_gain_1_s",
+            "velocity_step_sd_rad_s",
+            "velocity_step_gain",
             "payload_kg",
             "precision_learning_rate",
             "disturbance_time_constant_s",
@@ -193,6 +209,25 @@ def jerk_covariance(order: int, dt: float, intensity: float) -> np.ndarray:
             a, b = order - i, order - j
             W[i, j] = intensity * dt ** (a + b + 1) / ((a + b + 1) * factorial(a) * factorial(b))
     return W
+
+
+def velocity_step_covariance(order: int, dt: float, sd: float) -> np.ndarray:
+    """Covariance of a velocity step at the start of a control period, for one joint.
+
+    A velocity motor moves the joint velocity to its command within a period, and the
+    position then advances with the new velocity over the whole period (semi-implicit
+    Euler, as pybullet integrates its bodies): a step ``w`` of sd ``sd`` moves
+    ``(q, q')`` by ``b w``, ``b = (dt, 1, 0, ...)``, so the covariance is ``sd^2 b b'``
+    (common practice, no source). Without it the prior couples position to a change of
+    velocity by only ``3 dt / 8`` (the white-jerk covariance, :func:`jerk_covariance`),
+    and every change of command leaves ``5 dt / 8`` of it as an error of the believed
+    position that the belief's covariance does not hold.
+    """
+    b = np.zeros(order + 1)
+    b[0] = dt
+    if order >= 1:
+        b[1] = 1.0
+    return sd**2 * np.outer(b, b)
 
 
 @dataclass(frozen=True)
@@ -268,7 +303,11 @@ class CameraChannel:
 
 @dataclass(frozen=True)
 class EfferenceCopy:
-    """Velocity motors track the last command: ``a = q' + noise`` (order 1)."""
+    """Velocity motors track the last command: ``a = q' + noise`` (order 1).
+
+    ``precision`` is the nominal one; a step uses the precision in force (learned from the
+    tracking error, :meth:`blanket.agent.belief.ChannelMonitor.track_motor`).
+    """
 
     size: int
     jacobian: np.ndarray
@@ -278,7 +317,8 @@ class EfferenceCopy:
     def evaluate(
         self, obs: Mapping[str, Any], belief: np.ndarray, body: BodyState, context: StepContext
     ) -> Term:
-        return Term(context.command - belief[1], self.jacobian, self.precision)
+        precision = context.precision.get(self.name, self.precision)
+        return Term(context.command - belief[1], self.jacobian, precision)
 
 
 @dataclass(frozen=True)
@@ -334,7 +374,8 @@ class GenerativeModel:
         Generalized motion over ``dt`` for one joint, (p+1, p+1); ``transition_full`` is its
         ``kron`` with ``I_n``.
     motion_noise : numpy.ndarray
-        Covariance ``W`` of the generalized motion's noise over ``dt``, (N, N).
+        Covariance ``W`` of the generalized motion's noise over ``dt``, (N, N), without the
+        velocity step of a change of command (:meth:`motion_noise_at`).
     precision : dict
         Nominal precisions of the monitored channels (``joint_angle``, ``joint_velocity``,
         ``camera``); ``motor_precision`` and ``goal_precision`` those of the efference copy
@@ -347,7 +388,10 @@ class GenerativeModel:
         0 no goal in the belief (``goal="reference"``), 1 velocity attractor prior, 2
         acceleration attractor prior (torque control).
     precision_changing : bool
-        Whether precisions change during an episode (learning or fault down-weighting).
+        Whether the monitored channels' precisions change during an episode (learning or
+        fault down-weighting).
+    motor_learned : bool
+        Whether the efference copy's precision is learned from its tracking error.
     """
 
     description: ArmDescription
@@ -369,6 +413,7 @@ class GenerativeModel:
     extra_terms: tuple[ModelTerm, ...]
     goal_mode: int
     precision_changing: bool
+    motor_learned: bool
     fault_threshold: dict[str, float]
     fault_alpha: float
     kernel_constants: np.ndarray = field(repr=False)
@@ -426,6 +471,8 @@ class GenerativeModel:
 
         phi_t = generalized_motion(p, dt, opts["integration"])
         w_t = jerk_covariance(p, dt, float(opts["jerk_intensity"]))
+        if control == "velocity":
+            w_t += velocity_step_covariance(p, dt, float(opts["velocity_step_sd_rad_s"]))
         w_t += np.diag(np.full(p + 1, 1e-12))
         eye = np.eye(n)
 
@@ -504,6 +551,7 @@ class GenerativeModel:
             extra_terms=tuple(extra_terms),
             goal_mode=goal_mode,
             precision_changing=bool(opts["learn_precision"] or opts["fault_detection"]),
+            motor_learned=bool(pm > 0 and opts["learn_motor_precision"]),
             fault_threshold=fault_threshold,
             fault_alpha=float(fault_alpha),
             kernel_constants=constants,
@@ -511,6 +559,44 @@ class GenerativeModel:
             camera_intrinsics=intrinsics,
             limits=limits,
         )
+
+    def motion_noise_at(
+        self,
+        change: np.ndarray,
+        tracking: np.ndarray | None = None,
+        out: np.ndarray | None = None,
+    ) -> np.ndarray:
+        """``W`` of one step: the generalized motion's noise plus a velocity step per joint
+        (velocity control; :func:`velocity_step_covariance`) of variance
+        ``(velocity_step_gain change)^2 + tracking``: ``change`` (n,) the last change of
+        command, ``tracking`` (n,) the motors' learned tracking variance beyond the nominal
+        (:meth:`blanket.agent.belief.ChannelMonitor.track_motor`).
+
+        A velocity motor moves the joint to a new command within the period that follows it,
+        so the change of command is the size of the velocity step the white-jerk motion does
+        not foresee (common practice, no source); a steady command adds nothing, and the
+        belief then averages its encoders over many periods. The step's variance is
+        ``velocity_step_sd_rad_s^2 + (velocity_step_gain change)^2``: the first part, in
+        :attr:`motion_noise`, stands for what the motors do that no command asked for (a slow
+        sag under a load they barely hold, measured on the bench's payload condition).
+        """
+        if self.control != "velocity":
+            return self.motion_noise  # read-only use: no step under torque control
+        if out is None:
+            out = np.empty_like(self.motion_noise)
+        gain = float(self.options["velocity_step_gain"])
+        var = (gain * np.asarray(change, dtype=float)) ** 2
+        if tracking is not None:
+            var += tracking
+        # kron(b b', I_n) is nonzero only on the (q, q') blocks' diagonals
+        n, dt = self.n, self.dt
+        out[:] = self.motion_noise
+        i = np.arange(n)
+        out[i, i] += dt * dt * var
+        out[i, n + i] += dt * var
+        out[n + i, i] += dt * var
+        out[n + i, n + i] += var
+        return out
 
     @property
     def terms(self) -> tuple[Any, ...]:

@@ -49,15 +49,23 @@ __all__ = [
 _NOT_PD = ("prior covariance", "free-energy curvature", "damped Jacobian product")
 
 
-def predict(model: GenerativeModel, belief: Belief) -> tuple[np.ndarray, np.ndarray]:
+def predict(
+    model: GenerativeModel,
+    belief: Belief,
+    change: np.ndarray | None = None,
+    tracking: np.ndarray | None = None,
+) -> tuple[np.ndarray, np.ndarray]:
     """Prior mean and covariance of the next step: ``z- = Phi z``, ``Sigma- = Phi Sigma Phi' + W``.
 
     ``Phi`` the generalized motion over ``dt`` (local linearisation, Ozaki 1992), ``W`` its
-    noise (Van Loan 1978, IEEE Trans Autom Control 23(3)).
+    noise (Van Loan 1978, IEEE Trans Autom Control 23(3)), plus under velocity control the
+    velocity step of the last change of command ``change`` and of the motors' learned
+    tracking variance ``tracking``
+    (:meth:`~blanket.agent.generative_model.GenerativeModel.motion_noise_at`).
     """
     z_prior = (model.transition @ belief.generalized).reshape(-1)
     cov_prior = model.transition_full @ belief.covariance @ model.transition_full.T
-    cov_prior += model.motion_noise
+    cov_prior += model.motion_noise_at(np.zeros(model.n) if change is None else change, tracking)
     return z_prior, cov_prior
 
 
@@ -165,6 +173,7 @@ def _laplace(
 def _context(model: GenerativeModel, episode: EpisodeState, f, F) -> StepContext:
     ch = episode.channels
     precision = {name: ch.effective(name) for name in ch.precision}
+    precision["motor"] = ch.motor_precision
     return StepContext(episode.command.command, precision, f, F)
 
 
@@ -179,6 +188,7 @@ class CompiledWorkspace:
         self.cov_out = np.zeros((N, N))
         self.sd_out = np.zeros(N)
         self.cov_prior = np.zeros((N, N))
+        self.motion_noise = np.zeros((N, N))
         self.f = np.zeros(n)
         self.F = np.zeros((n, n))
         self.g_cam = np.zeros((2, n))
@@ -217,7 +227,10 @@ def _perceive_reference(model, belief, obs, episode) -> dict[str, Any]:
     layout), ``cov_prior``, ``g_cam`` (camera Jacobian or None), ``attractor_velocity``.
     """
     n = model.n
-    z_prior, cov_prior = predict(model, belief)  # z- = Phi z ; Sigma- = Phi Sigma Phi' + W
+    # z- = Phi z ; Sigma- = Phi Sigma Phi' + W
+    z_prior, cov_prior = predict(
+        model, belief, episode.command.change, episode.channels.tracking_variance
+    )
     chol, info = dpotrf(cov_prior, lower=1, clean=0)
     if info != 0:
         raise np.linalg.LinAlgError("prior covariance is not positive definite")
@@ -271,6 +284,7 @@ def _perceive_compiled(model, belief, obs, episode, ws: CompiledWorkspace) -> di
     pq = channels.effective("joint_angle")
     pv = channels.effective("joint_velocity")
     pc = channels.effective("camera")
+    pm = channels.motor_precision
     log_errors = ws.log_errors[cam_on]
     errors = ws.active_errors[cam_on]
     log_det_extra = 0.0
@@ -278,12 +292,13 @@ def _perceive_compiled(model, belief, obs, episode, ws: CompiledWorkspace) -> di
         z,
         belief.covariance,
         model.transition,
-        model.motion_noise,
+        model.motion_noise_at(episode.command.change, channels.tracking_variance, ws.motion_noise),
         np.asarray(obs["joint_angle_rad"], dtype=float),
         np.asarray(obs["joint_velocity_rad_s"], dtype=float),
         episode.command.command,
         pq,
         pv,
+        pm,
         pc,
         tip,
         J,
@@ -333,7 +348,7 @@ def _perceive_compiled(model, belief, obs, episode, ws: CompiledWorkspace) -> di
         )
     if status not in (_kernel.OK, _kernel.NOT_FINITE, _kernel.EXPLODED):
         raise np.linalg.LinAlgError(f"{_NOT_PD[status - 1]} is not positive definite")
-    energy -= 0.5 * (_log_det(model, ws, cam_on, pq, pv, pc) + log_det_extra)
+    energy -= 0.5 * (_log_det(model, ws, cam_on, pq, pv, pm, pc) + log_det_extra)
     new = None
     if status == _kernel.OK:
         new = Belief(ws.z_out, ws.cov_out, belief.shape, ws.sd_out)
@@ -352,20 +367,20 @@ def _perceive_compiled(model, belief, obs, episode, ws: CompiledWorkspace) -> di
     }
 
 
-def _log_det(model, ws, cam_on, pq, pv, pc) -> float:
+def _log_det(model, ws, cam_on, pq, pv, pm, pc) -> float:
     """``sum ln P`` of the built-in terms (cached while the precisions are fixed)."""
     cached = ws._log_det
     if not cached or model.precision_changing:
         n = model.n
         value = float(np.log(pq).sum() + np.log(pv).sum())
-        pm, pg = model.kernel_constants[0], model.kernel_constants[1]
-        if pm > 0:
-            value += n * np.log(pm)
         if model.goal_mode:
-            value += n * np.log(pg)
-        cached["encoders, motor, goal"] = value
+            value += n * np.log(model.kernel_constants[1])
+        cached["encoders, goal"] = value
         cached["camera"] = float(np.log(pc).sum()) if model.camera is not None else 0.0
-    return cached["encoders, motor, goal"] + (cached["camera"] if cam_on else 0.0)
+    if model.kernel_constants[0] > 0 and ("motor" not in cached or model.motor_learned):
+        cached["motor"] = float(np.log(pm).sum())
+    motor = cached.get("motor", 0.0) if model.kernel_constants[0] > 0 else 0.0
+    return cached["encoders, goal"] + motor + (cached["camera"] if cam_on else 0.0)
 
 
 def act(model: GenerativeModel, belief: Belief, command: CommandState) -> np.ndarray:
@@ -448,6 +463,7 @@ def step(
         belief = Belief.from_observation(model, obs, episode.channels.precision)
         episode.command.start(model, obs)
     episode.target.update(obs["target_position_m"])
+    episode.channels.track_motor(obs, episode.command.command)
     try:
         if episode.channels.pending_inflation is not None:
             episode.channels.inflate(belief)
@@ -465,14 +481,16 @@ def step(
     if status == _kernel.EXPLODED:
         action, diag = safe_stop(model, episode, "belief velocity exploded")
         return belief, action, diag
-    if model.precision_changing:
-        episode.channels.update(Innovations(out["errors"], out["cov_prior"], out["g_cam"], belief))
     new = out["belief"]
+    if model.precision_changing:
+        seen = Innovations(out["errors"], out["cov_prior"], out["g_cam"], belief)
+        episode.channels.update(seen, new)
     command = episode.command
     command.attractor_velocity = out["attractor_velocity"].copy()
     # a view: the compiled backend reuses this buffer only after the next successful step
     command.last_finite_q = new.mean[: model.n]
     action = act(model, new, command)
+    np.subtract(action, command.command, out=command.change)
     command.command = action
     diag = {
         "free_energy": out["free_energy"],
