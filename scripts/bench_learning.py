@@ -100,18 +100,26 @@ def _build(name: str, env: gym.Env, conditions: dict[str, Any]) -> Any:
     return spec.build(env, condition_model_options(conditions), {})
 
 
+def _compare(
+    env: gym.Env, label: str, plain: str, learning: str, conditions: dict, warmup: int, n: int
+) -> tuple[Any, dict[str, Any]]:
+    """Print the row without learning; warm up the learning agent, measure it, return both."""
+    seeds = list(range(warmup, warmup + n))
+    m = _measure(env, _build(plain, env, conditions), seeds)
+    print(f"  {label:<6} {plain:<30} {_reach_text(m)}", flush=True)
+    agent = _build(learning, env, conditions)
+    if warmup:
+        run_policy_episodes(env, agent, list(range(warmup)))
+    return agent, _measure(env, agent, seeds)
+
+
 def lengths(arm: str, warmup: int, episodes: int) -> None:
     conditions = {"model_length_scale": LENGTH_ERROR}
     env = _env(arm, "velocity", conditions)
-    warm = list(range(warmup))
-    seeds = list(range(warmup, warmup + episodes))
     try:
-        plain = _build("active-inference", env, conditions)
-        print(f"  {arm:<6} active-inference        {_reach_text(_measure(env, plain, seeds))}")
-        agent = _build("active-inference+learn", env, conditions)
-        if warm:
-            run_policy_episodes(env, agent, warm)
-        m = _measure(env, agent, seeds)
+        agent, m = _compare(
+            env, arm, "active-inference", "active-inference+learn", conditions, warmup, episodes
+        )
         learner = agent.body_learning
         g, g_sd = learner.shared_length_scale()
         s, sd = learner.length_scales(), learner.length_scales_sd()
@@ -119,7 +127,7 @@ def lengths(arm: str, warmup: int, episodes: int) -> None:
         err = 100 * (s * LENGTH_ERROR - 1.0)  # per cent of the true length
         worst = f"{np.abs(err[informed]).max():.2f}" if informed.any() else "-"
         print(
-            f"  {arm:<6} active-inference+learn  {_reach_text(m)}\n"
+            f"  {arm:<6} {'active-inference+learn':<30} {_reach_text(m)}\n"
             f"         learned: shared scale error {100 * (g * LENGTH_ERROR - 1):+.2f} % "
             f"(sd {100 * g_sd:.2f} %); informed links {int(informed.sum())}/{s.size}, "
             f"worst error {worst} %; all links "
@@ -136,16 +144,14 @@ def payload(warmup: int, episodes: int) -> None:
     warm = list(range(warmup))
     seeds = list(range(warmup, warmup + episodes))
     env = _env("own", "torque", conditions)
+    learning = "active-inference-torque+learn"
     try:
-        plain = _build("active-inference-torque", env, conditions)
-        print(f"  own    active-inference-torque        {_reach_text(_measure(env, plain, seeds))}")
-        agent = _build("active-inference-torque+learn", env, conditions)
-        if warm:
-            run_policy_episodes(env, agent, warm)
-        m = _measure(env, agent, seeds)
+        agent, m = _compare(
+            env, "own", "active-inference-torque", learning, conditions, warmup, episodes
+        )
         mass, _ = agent.body_learning.payload()
         print(
-            f"  own    active-inference-torque+learn  {_reach_text(m)}\n"
+            f"  own    {learning:<30} {_reach_text(m)}\n"
             f"         learned behind the safety wrapper: payload {mass:.3f} kg "
             f"({100 * (mass / PAYLOAD_KG - 1):+.1f} %), "
             f"{agent.body_learning.rejected} sensations refused by the gate",
@@ -153,7 +159,7 @@ def payload(warmup: int, episodes: int) -> None:
         )
         bare = _env("own", "torque", conditions, safety=False)
         try:
-            calibrating = _build("active-inference-torque+learn", bare, conditions)
+            calibrating = _build(learning, bare, conditions)
             if warm:
                 run_policy_episodes(bare, calibrating, warm)
             learned = calibrating.learned_options()
@@ -164,7 +170,7 @@ def payload(warmup: int, episodes: int) -> None:
         m = _measure(env, reloaded, seeds)
         mass = learned["payload_kg"]
         print(
-            f"  own    calibrate, save, reload         {_reach_text(m)}\n"
+            f"  own    {'calibrate, save, reload':<30} {_reach_text(m)}\n"
             f"         learned without the wrapper in {warmup} episodes: payload {mass:.3f} kg "
             f"({100 * (mass / PAYLOAD_KG - 1):+.1f} %, sd {mass_sd:.3f} kg), centre of mass "
             f"{learned['payload_com_m']} m; [agent] {learned}",
