@@ -30,7 +30,11 @@ Sensations used:
 
 * ``camera``: the tool tip's pixel, ``e = y - pi(fk(q; s))``; the tip is linear in the length
   factors ``s`` (:meth:`blanket.body.ArmModel.tip_length_jacobian`), so
-  ``G = d pi/dx . D(q)`` (:func:`camera_length_terms`).
+  ``G = d pi/dx . D(q)`` (:func:`camera_length_terms`). A frame's time is taken as known to
+  about one frame period ``T``: the pixel's covariance is the camera's noise plus
+  ``(u' T)(u' T)'``, ``u'`` the tip's believed pixel velocity, so frames taken while the arm
+  moves weigh less and a late frame cannot pass for a wrong length (common practice, no
+  source).
 * ``torque`` (torque control): the torque the payload-free body leaves unexplained along the
   believed motion, ``e = tau - ID_0(q, q', q'') - Y(q, q', q'') (m, h)``, with ``ID_0`` inverse
   dynamics without a payload and the payload's torque linear in its mass ``m`` and first
@@ -117,7 +121,7 @@ def camera_length_terms(
     length_jacobian : numpy.ndarray
         ``D = d fk / ds``, shape (3, L).
     precision : numpy.ndarray
-        Diagonal precision of the pixel, shape (2,) (px^-2).
+        Precision of the pixel, (2, 2), or the diagonal of a diagonal one, (2,) (px^-2).
 
     Returns
     -------
@@ -217,9 +221,9 @@ class _Motion:
     tau: np.ndarray
 
 
-def _gate(error: np.ndarray, noise_precision: np.ndarray, G: np.ndarray, cov: np.ndarray) -> bool:
-    """Whether ``e' inv(S) e``, ``S = inv(P) + G cov G'``, is inside the validation gate."""
-    S = np.diag(1.0 / np.asarray(noise_precision, dtype=float)) + G @ cov @ G.T
+def _gate(error: np.ndarray, noise_cov: np.ndarray, G: np.ndarray, cov: np.ndarray) -> bool:
+    """Whether ``e' inv(S) e``, ``S = R + G cov G'``, is inside the validation gate."""
+    S = noise_cov + G @ cov @ G.T
     nis = normalized_error(error, np.linalg.inv(S))
     return nis <= chi_square_threshold(error.size, GATE_FALSE_REJECTION)
 
@@ -426,10 +430,14 @@ class BodyLearning:
             tip, D = body.tip_length_jacobian(q)
             pixel, dpix = model.camera.project_with_jacobian(tip)
             e = np.asarray(obs["tip_pixel_px"], dtype=float) - pixel
+            # a frame's time is known to about one frame period: the tip's pixel velocity
+            # times that adds to the pixel noise, so moving frames weigh less
+            flow = dpix @ body.tip_jacobian(q) @ v / model.camera.rate_hz
+            R = np.diag(1.0 / np.asarray(camera_precision, dtype=float)) + np.outer(flow, flow)
             A = self.length_map
             cov = self.covariance
-            if _gate(e, camera_precision, dpix @ D @ A, cov[lengths, lengths]):
-                _, g_s, h_s = camera_length_terms(e, dpix, D, camera_precision)
+            if _gate(e, R, dpix @ D @ A, cov[lengths, lengths]):
+                _, g_s, h_s = camera_length_terms(e, dpix, D, np.linalg.inv(R))
                 grad[lengths] += A.T @ g_s
                 curv[lengths, lengths] += A.T @ h_s @ A
                 self.frames += 1
@@ -448,7 +456,7 @@ class BodyLearning:
                 pay = slice(self.L + 1, k)
                 theta = self.mean[pay]
                 cov = self.covariance if cov is None else cov
-                if _gate(r - Y @ theta, P, Y, cov[pay, pay]):
+                if _gate(r - Y @ theta, np.diag(1.0 / P), Y, cov[pay, pay]):
                     _, g_p, h_p = torque_payload_terms(r, Y, theta, P)
                     grad[pay] += g_p
                     curv[pay, pay] += h_p
