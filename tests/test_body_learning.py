@@ -374,3 +374,49 @@ def test_bad_learning_options_are_one_line_config_errors(options, field):
         env.close()
     message = str(info.value)
     assert field in message and "\n" not in message
+
+
+def _camera_obs(model, truth, z):
+    """A fresh frame of the true tip at the belief's posture, with no noise."""
+    q = z[: model.n]
+    return {
+        "camera_fresh": 1,
+        "tip_visible": 1,
+        "tip_pixel_px": model.camera.project(truth.tip_position(q)),
+    }
+
+
+def test_gate_refuses_an_outlier_and_moving_frames_weigh_less(arms):
+    from blanket.agent.generative_model import GenerativeModel
+
+    description = arms["potting"]
+    truth = _body(description, length_scale=0.97)
+    P = np.full(2, 0.25)
+    n = description.n_joints
+    z_still = np.zeros(3 * n)
+    z_still[:n] = [0.3, 0.4, 0.9]
+    z_moving, z_fast = z_still.copy(), z_still.copy()
+    z_moving[n : 2 * n] = [1.0, -1.0, 1.0]  # believed joint velocity, rad/s
+    z_fast[n : 2 * n] = [3.0, -3.0, 3.0]
+    steps = {}
+    for name, z in (("still", z_still), ("moving", z_moving), ("fast", z_fast)):
+        model = GenerativeModel.from_description(description, learn_body=True)
+        learner = BodyLearning.start(model)
+        learner.update(model, z, _camera_obs(model, truth, z), P, np.zeros(n))
+        steps[name] = np.trace(learner.precision - learner.prior_precision)  # information
+    assert steps["fast"] < steps["moving"] < steps["still"]
+    # after many still frames the belief is confident: a frame 200 px off is refused
+    model = GenerativeModel.from_description(description, learn_body=True)
+    learner = BodyLearning.start(model)
+    rng = np.random.default_rng(7)
+    for _ in range(200):
+        z = z_still.copy()
+        z[:n] += 0.5 * rng.standard_normal(n)
+        learner.update(model, z, _camera_obs(model, truth, z), P, np.zeros(n))
+    assert learner.rejected == 0 and learner.frames == 200
+    mean = learner.mean.copy()
+    obs = _camera_obs(model, truth, z_still)
+    obs["tip_pixel_px"] = obs["tip_pixel_px"] + 200.0
+    learner.update(model, z_still, obs, P, np.zeros(n))
+    assert learner.rejected == 1
+    np.testing.assert_array_equal(learner.mean, mean)

@@ -26,7 +26,7 @@ from collections.abc import Sequence
 import numpy as np
 import pinocchio as pin
 
-from blanket.errors import ConfigError
+from blanket.errors import ConfigError, shorten
 
 __all__ = ["ArmModel", "links_with_invalid_inertia"]
 
@@ -399,7 +399,7 @@ class ArmModel:
             if s.shape != (L,) or not np.all(np.isfinite(s)) or np.any(s <= 0.0):
                 raise ConfigError(
                     f"link_length_scales: expected {L} finite numbers > 0 "
-                    f"({', '.join(self.length_parameter_names)}), got {np.asarray(s).tolist()}"
+                    f"({', '.join(self.length_parameter_names)}), got {shorten(s.tolist())}"
                 )
             self.link_length_scales = s.copy()
         if payload_kg is not None:
@@ -409,7 +409,9 @@ class ArmModel:
         if payload_com_m is not None:
             c = np.asarray(payload_com_m, dtype=float)
             if c.shape != (3,) or not np.all(np.isfinite(c)):
-                raise ConfigError(f"payload_com_m: expected 3 finite numbers (m), got {c.tolist()}")
+                raise ConfigError(
+                    f"payload_com_m: expected 3 finite numbers (m), got {shorten(c.tolist())}"
+                )
             self.payload_com_m = c.copy()
         s = self.link_length_scales
         for i in range(1, L):
