@@ -3,7 +3,7 @@
 Usage::
 
     python scripts/bench_learning.py [--episodes 20] [--warmup 5] [--arms iiwa,panda,xarm6,own]
-                                     [--parts lengths,payload]
+                                     [--parts lengths,payload,timing]
 
 Every episode runs through the one loop (:func:`blanket.rollout.rollout`, by way of
 :func:`blanket.bench.evaluate.run_policy_episodes`) in the bench's env
@@ -28,7 +28,11 @@ measured episodes behind the safety wrapper. The wrapper turns a command it clam
 torque with the simulator's payload-free dynamics, so behind it the command the agent sent is
 not the torque that moved the arm (see the printed note).
 
-Prints one line per row. Run it on a quiet machine; nothing here is timed.
+Part ``timing``: the agent's step with and without ``learn_body`` (median ``agent_step_us``
+that the loop reports), episodes alternated, on the own arm under both controls; prints the
+ratio against the step without learning measured in the same run.
+
+Prints one line per row. Run it on a quiet machine.
 """
 
 from __future__ import annotations
@@ -48,6 +52,7 @@ from blanket.bench.metrics import episode_metrics
 from blanket.bench.policies import resolve_policy
 from blanket.bench.rl import make_bench_env
 from blanket.conditions import apply_conditions, condition_model_options
+from blanket.rollout import rollout
 
 OWN_ARM = dict(
     urdf=str(
@@ -180,19 +185,38 @@ def payload(warmup: int, episodes: int) -> None:
         env.close()
 
 
+def timing(rounds: int) -> None:
+    for control in ("velocity", "torque"):
+        env = _env("own", control, {})
+        try:
+            agents = {learn: ArmAgent.from_env(env, learn_body=learn) for learn in (False, True)}
+            times: dict[bool, list[float]] = {False: [], True: []}
+            for i in range(rounds):
+                for learn, agent in agents.items():
+                    times[learn] += [r.agent_step_us for r in rollout(env, agent, 1, seed=i)]
+            plain, learning = (float(np.median(times[k])) for k in (False, True))
+            print(
+                f"  own    {control:<8} agent step {plain:7.1f} us, with learn_body "
+                f"{learning:7.1f} us: ratio {learning / plain:.2f} ({rounds} episodes each)",
+                flush=True,
+            )
+        finally:
+            env.close()
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--episodes", type=int, default=20, help="measured episodes per row")
     parser.add_argument("--warmup", type=int, default=5, help="warm-up episodes per row")
     parser.add_argument("--arms", default="iiwa,panda,xarm6,own")
-    parser.add_argument("--parts", default="lengths,payload")
+    parser.add_argument("--parts", default="lengths,payload,timing")
     args = parser.parse_args(argv)
     if args.episodes < 1 or args.warmup < 0:
         parser.error("--episodes must be >= 1 and --warmup >= 0")
     parts = args.parts.split(",")
-    unknown = set(parts) - {"lengths", "payload"}
+    unknown = set(parts) - {"lengths", "payload", "timing"}
     if unknown:
-        parser.error(f"--parts: unknown {sorted(unknown)}; choose from lengths, payload")
+        parser.error(f"--parts: unknown {sorted(unknown)}; choose from lengths, payload, timing")
     if "lengths" in parts:
         print(
             f"link lengths {100 * (LENGTH_ERROR - 1):.0f} % long, velocity control, "
@@ -206,6 +230,9 @@ def main(argv: list[str] | None = None) -> int:
             f"{args.warmup} warm-up + {args.episodes} measured episodes"
         )
         payload(args.warmup, args.episodes)
+    if "timing" in parts:
+        print("the agent's step with and without learn_body (median over steps)")
+        timing(max(1, args.episodes // 4))
     return 0
 
 

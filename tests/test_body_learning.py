@@ -299,6 +299,7 @@ def test_agent_learns_lengths_across_episodes_and_saves_them():
             again.body.link_length_scales, saved["link_length_scales"], atol=0
         )
         q = np.array([0.3, -0.4, 0.8])
+        agent.reset()  # writes all it learned into its body model
         np.testing.assert_allclose(
             again.body.tip_position(q), agent.body.tip_position(q), atol=1e-5
         )
@@ -420,3 +421,20 @@ def test_gate_refuses_an_outlier_and_moving_frames_weigh_less(arms):
     learner.update(model, z_still, obs, P, np.zeros(n))
     assert learner.rejected == 1
     np.testing.assert_array_equal(learner.mean, mean)
+
+
+@pytest.mark.parametrize("full", [False, True])
+def test_gaussian_terms_equal_the_free_energy_module(full):
+    from blanket.agent.body_learning import gaussian_terms
+    from blanket.free_energy import belief_curvature, belief_gradient, free_energy
+
+    rng = np.random.default_rng(8)
+    e, J = rng.standard_normal(3), rng.standard_normal((3, 5))
+    P = np.array([2.0, 0.5, 4.0])
+    if full:
+        B = rng.standard_normal((3, 3))
+        P = B @ B.T + np.eye(3)
+    F, grad, curv = gaussian_terms(e, J, P)
+    assert F == pytest.approx(free_energy([e], [P]), rel=1e-12)
+    np.testing.assert_allclose(grad, belief_gradient([e], [J], [P]), rtol=1e-12)
+    np.testing.assert_allclose(curv, belief_curvature([J], [P]), rtol=1e-12)

@@ -220,6 +220,7 @@ class ArmAgent(PredictMixin):
         self._diag: dict[str, Any] = {}
         if self.body_learning is not None:
             self.body_learning.new_episode()
+            self.body_learning.apply(self.model.body)  # everything learned so far
 
     def _start(self, obs: Mapping[str, Any]) -> Belief:
         if self.state is None:

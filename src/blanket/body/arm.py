@@ -468,16 +468,27 @@ class ArmModel:
         a_model = self._v(a, self._tau_model, "a").copy()
         Y = pin.computeJointTorqueRegressor(model, data, self._q(q), v_model, a_model)
         j = self._tip_joint
-        Yj = np.asarray(Y)[:, 10 * (j - 1) : 10 * j]
-        tool = model.frames[self._frame_id].placement
-        t, R = tool.translation, tool.rotation
-        out = np.empty((Yj.shape[0], 4))
-        out[:, 0] = Yj[:, 0] + Yj[:, 1:4] @ t + Yj[:, 4:10] @ _inertia_vector(t @ t, np.outer(t, t))
-        for k in range(3):
-            u = R[:, k]  # d(R h)/dh_k
-            dI = _inertia_vector(2.0 * float(t @ u), np.outer(t, u) + np.outer(u, t))
-            out[:, 1 + k] = Yj[:, 1:4] @ u + Yj[:, 4:10] @ dI
+        out = np.asarray(Y)[:, 10 * (j - 1) : 10 * j] @ self._payload_map()
         return out if self._order is None else out[self._order]
+
+    def _payload_map(self) -> np.ndarray:
+        """``d pi / d(m, h)`` (10, 4) for the current tool placement (cached)."""
+        tool = self.model.frames[self._frame_id].placement
+        t, R = tool.translation, tool.rotation
+        key = (*t, *R.ravel())
+        if getattr(self, "_payload_map_key", None) != key:
+            T = np.zeros((10, 4))
+            T[0, 0] = 1.0
+            T[1:4, 0] = t
+            T[4:10, 0] = _inertia_vector(t @ t, np.outer(t, t))
+            for k in range(3):
+                u = R[:, k]  # d(R h)/dh_k
+                T[1:4, 1 + k] = u
+                T[4:10, 1 + k] = _inertia_vector(
+                    2.0 * float(t @ u), np.outer(t, u) + np.outer(u, t)
+                )
+            self._payload_map_key, self._payload_map_value = key, T
+        return self._payload_map_value
 
     def inverse_dynamics(self, q: np.ndarray, v: np.ndarray, a: np.ndarray) -> np.ndarray:
         """Joint torques ``M(q) a + C(q, v) v + g(q)`` (recursive Newton-Euler; Featherstone
