@@ -118,6 +118,20 @@ def _compare(
     return agent, _measure(env, agent, seeds)
 
 
+def _tip_errors_mm(env: gym.Env, body: Any, postures: int = 500) -> np.ndarray:
+    """|fk_body(q) - fk_true(q)| (mm) at random postures within the joint limits (|q| <= pi)."""
+    from blanket.body import ArmModel
+
+    d = env.unwrapped.description
+    truth = ArmModel.from_urdf(d.urdf_path, d.end_effector, d.joint_names)
+    lo, hi = np.maximum(d.lower_rad, -np.pi), np.minimum(d.upper_rad, np.pi)
+    rng = np.random.default_rng(0)
+    qs = rng.uniform(lo, hi, size=(postures, d.n_joints))
+    return np.array(
+        [1e3 * np.linalg.norm(body.tip_position(q) - truth.tip_position(q)) for q in qs]
+    )
+
+
 def lengths(arm: str, warmup: int, episodes: int) -> None:
     conditions = {"model_length_scale": LENGTH_ERROR}
     env = _env(arm, "velocity", conditions)
@@ -131,13 +145,21 @@ def lengths(arm: str, warmup: int, episodes: int) -> None:
         informed = sd < INFORMED_SD
         err = 100 * (s * LENGTH_ERROR - 1.0)  # per cent of the true length
         worst = f"{np.abs(err[informed]).max():.2f}" if informed.any() else "-"
+        agent.reset()  # writes everything learned into the body model
+        before, after = (
+            _tip_errors_mm(env, body)
+            for body in (_build("active-inference", env, conditions).body, agent.body)
+        )
         print(
             f"  {arm:<6} {'active-inference+learn':<30} {_reach_text(m)}\n"
             f"         learned: shared scale error {100 * (g * LENGTH_ERROR - 1):+.2f} % "
             f"(sd {100 * g_sd:.2f} %); informed links {int(informed.sum())}/{s.size}, "
             f"worst error {worst} %; all links "
             f"[{', '.join(f'{e:+.2f}' for e in err)}] % (sd "
-            f"[{', '.join(f'{100 * x:.2f}' for x in sd)}] %)",
+            f"[{', '.join(f'{100 * x:.2f}' for x in sd)}] %)\n"
+            f"         tip error of the body model at 500 random postures, median / 95th "
+            f"percentile: {np.median(before):.1f} / {np.percentile(before, 95):.1f} mm before, "
+            f"{np.median(after):.1f} / {np.percentile(after, 95):.1f} mm learned",
             flush=True,
         )
     finally:
