@@ -438,3 +438,23 @@ def test_gaussian_terms_equal_the_free_energy_module(full):
     assert F == pytest.approx(free_energy([e], [P]), rel=1e-12)
     np.testing.assert_allclose(grad, belief_gradient([e], [J], [P]), rtol=1e-12)
     np.testing.assert_allclose(curv, belief_curvature([J], [P]), rtol=1e-12)
+
+
+def test_a_run_saves_what_it_learned_as_a_scenario(tmp_path):
+    from blanket.runner import run_scenario
+    from blanket.scenario import load_scenario
+
+    scenario = Scenario(
+        env="blanket/arm-reach-v0",
+        env_options={"urdf": POTTING, "end_effector": "tool_tip", "episode_s": 1.0},
+        agent={"learn_body": True},
+        name="potting bench, learning",
+        conditions={"model_length_scale": 1.03},
+    )
+    summary = run_scenario(scenario, 1, 0, tmp_path, progress=False, record=False)
+    learned = summary["learned_agent_options"]
+    again = load_scenario(tmp_path / "learned.toml")
+    assert again.agent == {"learn_body": True, **learned}
+    assert again.conditions == {"model_length_scale": 1.03}
+    # one second of reaching already moved the informed lengths towards 1 / 1.03
+    assert np.median(learned["link_length_scales"]) < 0.99
