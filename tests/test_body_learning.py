@@ -458,3 +458,20 @@ def test_a_run_saves_what_it_learned_as_a_scenario(tmp_path):
     assert again.conditions == {"model_length_scale": 1.03}
     # one second of reaching already moved the informed lengths towards 1 / 1.03
     assert np.median(learned["link_length_scales"]) < 0.99
+
+
+def test_both_backends_learn_the_same():
+    from blanket.rollout import rollout
+
+    env = gym.make("blanket/arm-reach-v0", urdf=POTTING, end_effector="tool_tip", episode_s=1.0)
+    try:
+        means = []
+        for backend in ("compiled", "numpy"):
+            agent = ArmAgent.from_env(env, length_scale=1.03, learn_body=True)
+            agent.backend = backend
+            rollout(env, agent, 1, seed=0)
+            assert agent.body_learning.frames > 20
+            means.append(agent.body_learning.mean)
+    finally:
+        env.close()
+    np.testing.assert_allclose(means[0], means[1], rtol=0, atol=1e-12)
