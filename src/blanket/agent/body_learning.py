@@ -84,9 +84,11 @@ PAYLOAD_COM_PRIOR_SD_M = 0.05
 #: Start-up time of an episode left out of torque learning (s): the belief's velocity settles.
 SETTLE_S = 0.25
 #: Rate of the torque sensations learned from (Hz): the believed acceleration's errors are
-#: correlated over many control steps, so every step would add little but cost (measured: the
-#: torque agent's step 2.7x slower when learning at 240 Hz).
-TORQUE_SAMPLE_HZ = 30.0
+#: correlated over control steps. Measured on the own arm with a 1.5 kg payload
+#: (scripts/bench_learning.py): at 240 Hz the torque step cost 2.7x the step without learning;
+#: at 30 Hz 1.4x, but behind the safety wrapper 17/20 reached and the mass was 25 % low; at
+#: 120 Hz 20/20 and the same mass as at 240 Hz.
+TORQUE_SAMPLE_HZ = 120.0
 #: False-rejection probability of the validation gate.
 GATE_FALSE_REJECTION = 1e-6
 #: Below this mass (kg) the payload's centre of mass is not learned from h = m c (kept at its
