@@ -6,6 +6,7 @@ from __future__ import annotations
 import json
 import time
 from collections.abc import Callable, Mapping
+from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
@@ -345,6 +346,12 @@ def run_scenario(
             if writer is not None:
                 writer.close()
         summary = summarize(results)
+        learned = agent.learned_options() if hasattr(agent, "learned_options") else {}
+        if learned:  # learn_body: reload with `blanket run learned.toml`
+            summary["learned_agent_options"] = learned
+            if out_dir is not None:
+                again = replace(scenario, agent={**scenario.agent, **learned})
+                (out_dir / "learned.toml").write_text(again.to_toml())
         if out_dir is not None:
             (out_dir / "summary.json").write_text(json.dumps(summary, indent=2) + "\n")
             (out_dir / "figures").mkdir(exist_ok=True)

@@ -66,6 +66,7 @@ import numpy as np
 from blanket.agent._policy import PredictMixin
 from blanket.agent.attractor import joint_limit_weights
 from blanket.agent.belief import Belief, EpisodeState
+from blanket.agent.body_learning import BodyLearning
 from blanket.agent.generative_model import AgentOptions, GenerativeModel
 from blanket.agent.step import CompiledWorkspace, attractor, free_energy_at, step
 from blanket.description import ArmDescription, CameraDescription
@@ -124,6 +125,10 @@ class ArmAgent(PredictMixin):
         self.model = GenerativeModel.from_description(description, extra_terms, **options)
         self._backend = "compiled"
         self._workspace: CompiledWorkspace | None = CompiledWorkspace(self.model)
+        #: the body parameters' belief (``learn_body``), kept across episodes
+        self.body_learning: BodyLearning | None = (
+            BodyLearning.start(self.model) if self.model.options["learn_body"] else None
+        )
         self.reset()
 
     # -- construction -------------------------------------------------------------------
@@ -213,6 +218,9 @@ class ArmAgent(PredictMixin):
         self.state: Belief | None = None
         self.episode = EpisodeState.start(self.model)
         self._diag: dict[str, Any] = {}
+        if self.body_learning is not None:
+            self.body_learning.new_episode()
+            self.body_learning.apply(self.model.body)  # everything learned so far
 
     def _start(self, obs: Mapping[str, Any]) -> Belief:
         if self.state is None:
@@ -239,7 +247,17 @@ class ArmAgent(PredictMixin):
             self._diag.update(diag)
         else:
             self._diag = diag
+            if self.body_learning is not None:
+                # the slow timescale: parameters learn at the belief after perception
+                camera = self.episode.channels.effective("camera")
+                self.body_learning.update(self.model, belief.mean, obs, camera, action)
         return action
+
+    def learned_options(self) -> dict[str, Any]:
+        """What ``learn_body`` learned, as ``[agent]`` options of a scenario
+        (``link_length_scales``; under torque control ``payload_kg``, ``payload_com_m``);
+        empty without ``learn_body``."""
+        return {} if self.body_learning is None else self.body_learning.options()
 
     # -- free energy at an arbitrary belief (for checks and analysis) ----------------------
     def free_energy_and_gradient(
@@ -296,6 +314,8 @@ class ArmAgent(PredictMixin):
         channels = self.episode.channels
         out["precision"] = {k: v.copy() for k, v in channels.precision.items()}
         out["fault"] = {k: v.copy() for k, v in channels.fault.items()}
+        if self.body_learning is not None:
+            out["body"] = self.body_learning.summary()
         reason = self.episode.safe_stop_reason
         out.setdefault("safe_stop", bool(reason))
         out.setdefault("safe_stop_reason", reason)
@@ -315,6 +335,8 @@ class ArmAgent(PredictMixin):
         if self.model.precision_changing:
             out["precision"] = self.episode.channels.precision
             out["fault"] = self.episode.channels.fault
+        if self.body_learning is not None:
+            out["body"] = self.body_learning.summary()
         return out
 
     def precision_summary(self) -> dict[str, list[float]]:

@@ -107,6 +107,14 @@ class AgentOptions:
         "mass_scale": 1.0,
         "payload_kg": 0.0,
         "divergence_limit": 1e3,
+        "learn_body": False,
+        "body_learning_rate": 1.0,
+        "body_length_prior_sd": 0.1,
+        "link_length_prior_sd": 0.02,
+        "payload_prior_sd_kg": 2.0,
+        "torque_noise_sd_n_m": 3.0,
+        "link_length_scales": None,
+        "payload_com_m": None,
     }
 
     @classmethod
@@ -143,6 +151,10 @@ class AgentOptions:
             "motor_window_s",
             "target_window_s",
             "divergence_limit",
+            "body_length_prior_sd",
+            "link_length_prior_sd",
+            "payload_prior_sd_kg",
+            "torque_noise_sd_n_m",
         ):
             v = out[key]
             if not isinstance(v, int | float) or not np.isfinite(v) or v <= 0:
@@ -159,6 +171,25 @@ class AgentOptions:
             v = out[key]
             if not isinstance(v, int | float) or not np.isfinite(v) or v < 0:
                 raise ConfigError(f"agent option {key} must be a number >= 0, got {shorten(v)}")
+        if not isinstance(out["learn_body"], bool | np.bool_):
+            raise ConfigError(
+                f"agent option learn_body must be true or false, got {shorten(out['learn_body'])}"
+            )
+        v = out["body_learning_rate"]
+        if not isinstance(v, int | float) or not 0 < v <= 1:
+            raise ConfigError(
+                f"agent option body_learning_rate must be in (0, 1], got {shorten(v)}"
+            )
+        for key, size in (("link_length_scales", None), ("payload_com_m", 3)):
+            v = out[key]
+            if v is None:
+                continue
+            ok = isinstance(v, list | tuple | np.ndarray) and all(
+                isinstance(x, int | float | np.floating) and np.isfinite(x) for x in v
+            )
+            if not ok or (size is not None and len(v) != size):
+                what = "3 numbers (m)" if size else "a list of numbers > 0"
+                raise ConfigError(f"agent option {key} must be {what}, got {shorten(v)}")
         v = out["action_fraction"]
         if not isinstance(v, int | float) or not 0 < v <= 1:
             raise ConfigError(f"agent option action_fraction must be in (0, 1], got {shorten(v)}")
@@ -444,6 +475,8 @@ class GenerativeModel:
             length_scale=float(opts["length_scale"]),
             mass_scale=float(opts["mass_scale"]),
             payload_kg=float(opts["payload_kg"]),
+            link_length_scales=opts["link_length_scales"],
+            payload_com_m=opts["payload_com_m"],
         )
         n = description.n_joints
         p = opts["order"]

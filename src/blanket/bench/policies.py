@@ -304,6 +304,19 @@ POLICIES: dict[str, PolicySpec] = {
             "active-inference-torque", "ArmAgent, torque control", "torque", _agent("torque")
         ),
         PolicySpec(
+            "active-inference+learn",
+            "ArmAgent, velocity control, learning its link lengths from the camera (learn_body;"
+            " one agent per row, so what it learns carries over the row's episodes)",
+            "velocity",
+            _agent("velocity", learn_body=True),
+        ),
+        PolicySpec(
+            "active-inference-torque+learn",
+            "ArmAgent, torque control, learning link lengths and payload (learn_body)",
+            "torque",
+            _agent("torque", learn_body=True),
+        ),
+        PolicySpec(
             "active-inference-prior",
             "ArmAgent, velocity control, goal as prior dynamics (biases the belief)",
             "velocity",

@@ -26,7 +26,7 @@ from collections.abc import Sequence
 import numpy as np
 import pinocchio as pin
 
-from blanket.errors import ConfigError
+from blanket.errors import ConfigError, shorten
 
 __all__ = ["ArmModel", "links_with_invalid_inertia"]
 
@@ -135,6 +135,7 @@ class ArmModel:
             np.any(np.triu(M_probe, 1)) and not np.any(np.tril(M_probe, -1))
         )
         self._strict_lower = np.tril_indices(self.n, -1)
+        self._snapshot_body_parameters()
 
     # ------------------------------------------------------------------ construction
     @classmethod
@@ -147,6 +148,8 @@ class ArmModel:
         mass_scale: float = 1.0,
         payload_kg: float = 0.0,
         invalid_inertia: str = "zero",
+        link_length_scales: Sequence[float] | None = None,
+        payload_com_m: Sequence[float] | None = None,
     ) -> ArmModel:
         """Build the body model of a fixed-base arm from a URDF.
 
@@ -178,6 +181,13 @@ class ArmModel:
             that link's rotational inertia and keeps its mass and centre of mass -- what pybullet's
             URDF importer does, so the body model matches the simulated body; ``"keep"`` uses the
             URDF values as written. The affected links are in :attr:`zeroed_inertia_links`.
+        link_length_scales : sequence of float, optional
+            Per-link factors (> 0) on top of ``length_scale``, one per joint placement in tree
+            order and one for the tool offset (:attr:`length_parameter_names`); see
+            :meth:`set_body_parameters`. Learned values (``learn_body``) are saved this way.
+        payload_com_m : sequence of 3 float, optional
+            Where the ``payload_kg`` point mass sits in the ``end_effector`` frame (default:
+            its origin).
 
         Returns
         -------
@@ -245,19 +255,18 @@ class ArmModel:
             _scale_lengths(model, float(length_scale))
         if mass_scale != 1.0:
             _scale_masses(model, float(mass_scale))
-        if payload_kg > 0.0:
-            _add_point_mass(model, model.getFrameId(end_effector), float(payload_kg))
-
-        return cls(
+        arm = cls(
             model,
             end_effector,
             joint_names,
             urdf_path=path,
             length_scale=length_scale,
             mass_scale=mass_scale,
-            payload_kg=payload_kg,
             zeroed_inertia_links=zeroed,
         )
+        if payload_kg > 0.0 or payload_com_m is not None or link_length_scales is not None:
+            arm.set_body_parameters(link_length_scales, payload_kg, payload_com_m)
+        return arm
 
     # ------------------------------------------------------------------ helpers
     def _q(self, q: np.ndarray) -> np.ndarray:
@@ -332,12 +341,174 @@ class ArmModel:
         tau_model = self._v(tau, self._tau_model, "tau")
         return self._out(pin.aba(self.model, self.data, self._q(q), v_model, tau_model))
 
+    # ------------------------------------------------------------------ body parameters
+    def _snapshot_body_parameters(self) -> None:
+        model = self.model
+        frame = model.frames[self._frame_id]
+        self._tip_joint = int(frame.parentJoint)
+        chain = set(int(j) for j in model.supports[self._tip_joint])
+        self._nominal_placements = [pin.SE3(model.jointPlacements[i]) for i in range(model.njoints)]
+        self._nominal_tool = pin.SE3(frame.placement)
+        self._nominal_inertias = [pin.Inertia(model.inertias[i]) for i in range(model.njoints)]
+        self._on_chain = np.array([i in chain for i in range(1, model.njoints)] + [True])
+        # body i grows with the link that leaves it: its first child's placement, or the tool
+        child = {}
+        for i in range(1, model.njoints):
+            child.setdefault(int(model.parents[i]), i)
+        self._body_scale_index = [
+            (child[i] - 1 if i in child else model.njoints - 1)
+            if i != self._tip_joint
+            else model.njoints - 1
+            for i in range(model.njoints)
+        ]
+        self.link_length_scales = np.ones(model.njoints)  # joint placements, then the tool
+        self.payload_com_m = np.zeros(3)
+
+    @property
+    def length_parameter_names(self) -> tuple[str, ...]:
+        """Names of the per-link length factors: the joint each placement leads to (tree
+        order), then ``tool`` (the end effector's offset from its joint)."""
+        return (*(self.model.names[i] for i in range(1, self.model.njoints)), "tool")
+
+    @property
+    def length_parameter_informative(self) -> np.ndarray:
+        """Which length factors can move the tip at all (on the tip's chain, non-zero length)."""
+        lengths = [np.linalg.norm(p.translation) for p in self._nominal_placements[1:]]
+        lengths.append(np.linalg.norm(self._nominal_tool.translation))
+        return self._on_chain & (np.array(lengths) > 0.0)
+
+    def set_body_parameters(
+        self,
+        link_length_scales: Sequence[float] | None = None,
+        payload_kg: float | None = None,
+        payload_com_m: Sequence[float] | None = None,
+    ) -> None:
+        """Set the learnable body parameters (in place), relative to the model as built.
+
+        ``link_length_scales`` (one per :attr:`length_parameter_names`, > 0) multiply the
+        translations of the joint placements and of the tool frame; each link body's centre of
+        mass scales with the link that leaves it and its rotational inertia with the square
+        (uniform growth at constant mass, as ``length_scale``). ``payload_kg`` (>= 0) is a
+        point mass at ``payload_com_m`` in the end-effector frame; it replaces the payload the
+        model was built with. ``None`` keeps the current value.
+        """
+        model = self.model
+        L = model.njoints
+        if link_length_scales is not None:
+            s = np.asarray(link_length_scales, dtype=float)
+            if s.shape != (L,) or not np.all(np.isfinite(s)) or np.any(s <= 0.0):
+                raise ConfigError(
+                    f"link_length_scales: expected {L} finite numbers > 0 "
+                    f"({', '.join(self.length_parameter_names)}), got {shorten(s.tolist())}"
+                )
+            self.link_length_scales = s.copy()
+        if payload_kg is not None:
+            if not (np.isfinite(payload_kg) and payload_kg >= 0.0):
+                raise ConfigError(f"payload_kg: must be a finite number >= 0, got {payload_kg!r}")
+            self.payload_kg = float(payload_kg)
+        if payload_com_m is not None:
+            c = np.asarray(payload_com_m, dtype=float)
+            if c.shape != (3,) or not np.all(np.isfinite(c)):
+                raise ConfigError(
+                    f"payload_com_m: expected 3 finite numbers (m), got {shorten(c.tolist())}"
+                )
+            self.payload_com_m = c.copy()
+        s = self.link_length_scales
+        for i in range(1, L):
+            p = self._nominal_placements[i]
+            model.jointPlacements[i] = pin.SE3(p.rotation, p.translation * s[i - 1])
+            b = self._nominal_inertias[i]
+            k = s[self._body_scale_index[i]]
+            model.inertias[i] = pin.Inertia(b.mass, b.lever * k, b.inertia * k**2)
+        frame = model.frames[self._frame_id]
+        tool = pin.SE3(self._nominal_tool.rotation, self._nominal_tool.translation * s[L - 1])
+        frame.placement = tool
+        model.frames[self._frame_id] = frame
+        if self.payload_kg > 0.0:
+            point = pin.Inertia(self.payload_kg, tool.act(self.payload_com_m), np.zeros((3, 3)))
+            model.inertias[self._tip_joint] = model.inertias[self._tip_joint] + point
+
+    def tip_length_jacobian(self, q: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Tip position (3,) and its derivative with respect to the length factors (3, L).
+
+        The tip is ``sum_i R_parent(i)(q) t_i s_i + R_tip_joint(q) t_tool s_tool`` (plus the
+        travel of prismatic joints): linear in the factors ``s``, so column ``i`` is
+        ``R_parent(i)(q) t_i`` with the nominal translation ``t_i`` (forward kinematics of a
+        serial chain; Siciliano et al. 2009, *Robotics: Modelling, Planning and Control*,
+        sec. 2.9). Columns of joints off the tip's chain are zero.
+        """
+        model, data = self.model, self.data
+        pin.forwardKinematics(model, data, self._q(q))
+        pin.updateFramePlacement(model, data, self._frame_id)
+        L = model.njoints
+        D = np.zeros((3, L))
+        for i in range(1, L):
+            if self._on_chain[i - 1]:
+                R = data.oMi[int(model.parents[i])].rotation
+                D[:, i - 1] = R @ self._nominal_placements[i].translation
+        D[:, L - 1] = data.oMi[self._tip_joint].rotation @ self._nominal_tool.translation
+        return self._tip_placement.translation.copy(), D
+
+    def payload_regressor(self, q: np.ndarray, v: np.ndarray, a: np.ndarray) -> np.ndarray:
+        """Joint torque per unit of a payload's mass and first moment, shape (n, 4).
+
+        Inverse dynamics is linear in each body's inertial parameters (mass, first moment,
+        rotational inertia about the joint frame), ``tau = Y(q, v, a) pi`` (Atkeson, An &
+        Hollerbach 1986, Int J Robot Res 5(3)); pinocchio's ``computeJointTorqueRegressor``
+        gives ``Y``. A payload of mass ``m`` at ``c`` in the end-effector frame, with first
+        moment ``h = m c`` there, sits at ``p = t + R c`` in its joint's frame (``R``, ``t``
+        the tool placement): ``pi = (m, m t + R h, I)``, with the parallel-axis inertia
+        ``I = m (|p|^2 E - p p') = m (|t|^2 E - t t') + 2 (t.u) E - t u' - u t' + O(m |c|^2)``,
+        ``u = R h``. Linear in ``(m, h)`` once the payload's own ``m |c|^2`` (a few grams times
+        centimetres squared for a payload held at the tool) is left out. Columns: ``m``,
+        ``h_x``, ``h_y``, ``h_z``.
+        """
+        model, data = self.model, self.data
+        v_model = self._v(v, self._v_model, "v").copy()
+        a_model = self._v(a, self._tau_model, "a").copy()
+        Y = pin.computeJointTorqueRegressor(model, data, self._q(q), v_model, a_model)
+        j = self._tip_joint
+        out = np.asarray(Y)[:, 10 * (j - 1) : 10 * j] @ self._payload_map()
+        return out if self._order is None else out[self._order]
+
+    def _payload_map(self) -> np.ndarray:
+        """``d pi / d(m, h)`` (10, 4) for the current tool placement (cached)."""
+        tool = self.model.frames[self._frame_id].placement
+        t, R = tool.translation, tool.rotation
+        key = (*t, *R.ravel())
+        if getattr(self, "_payload_map_key", None) != key:
+            T = np.zeros((10, 4))
+            T[0, 0] = 1.0
+            T[1:4, 0] = t
+            T[4:10, 0] = _inertia_vector(t @ t, np.outer(t, t))
+            for k in range(3):
+                u = R[:, k]  # d(R h)/dh_k
+                T[1:4, 1 + k] = u
+                T[4:10, 1 + k] = _inertia_vector(
+                    2.0 * float(t @ u), np.outer(t, u) + np.outer(u, t)
+                )
+            self._payload_map_key, self._payload_map_value = key, T
+        return self._payload_map_value
+
+    def inverse_dynamics(self, q: np.ndarray, v: np.ndarray, a: np.ndarray) -> np.ndarray:
+        """Joint torques ``M(q) a + C(q, v) v + g(q)`` (recursive Newton-Euler; Featherstone
+        2008, *Rigid Body Dynamics Algorithms*, ch. 5), shape (n,)."""
+        v_model = self._v(v, self._v_model, "v").copy()
+        a_model = self._v(a, self._tau_model, "a")
+        return self._out(pin.rnea(self.model, self.data, self._q(q), v_model, a_model)).copy()
+
     def __repr__(self) -> str:
         return (
             f"ArmModel({os.path.basename(self.urdf_path)!r}, end_effector={self.end_effector!r}, "
             f"n={self.n}, length_scale={self.length_scale}, mass_scale={self.mass_scale}, "
             f"payload_kg={self.payload_kg})"
         )
+
+
+def _inertia_vector(trace_part: float, outer: np.ndarray) -> np.ndarray:
+    """``trace_part E - outer`` in pinocchio's order ``(Ixx, Ixy, Iyy, Ixz, Iyz, Izz)``."""
+    M = trace_part * np.eye(3) - outer
+    return np.array([M[0, 0], M[0, 1], M[1, 1], M[0, 2], M[1, 2], M[2, 2]])
 
 
 # ---------------------------------------------------------------------- miscalibration
@@ -364,14 +535,6 @@ def _scale_masses(model: pin.Model, scale: float) -> None:
         model.inertias[i] = pin.Inertia(
             inertia.mass * scale, inertia.lever, inertia.inertia * scale
         )
-
-
-def _add_point_mass(model: pin.Model, frame_id: int, mass_kg: float) -> None:
-    """Add a point mass at the origin of a frame to the body of its parent joint (in place)."""
-    frame = model.frames[frame_id]
-    joint = frame.parentJoint
-    point = pin.Inertia(mass_kg, frame.placement.translation.copy(), np.zeros((3, 3)))
-    model.inertias[joint] = model.inertias[joint] + point
 
 
 # ---------------------------------------------------------------------- invalid URDF inertias

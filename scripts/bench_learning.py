@@ -1,0 +1,262 @@
+"""Body learning (``learn_body``) on every arm: reach after a warm-up, and the learned values.
+
+Usage::
+
+    python scripts/bench_learning.py [--episodes 20] [--warmup 5] [--arms iiwa,panda,xarm6,own]
+                                     [--parts lengths,payload,timing]
+
+Every episode runs through the one loop (:func:`blanket.rollout.rollout`, by way of
+:func:`blanket.bench.evaluate.run_policy_episodes`) in the bench's env
+(:func:`blanket.bench.rl.make_bench_env`: the condition's wrappers, the safety wrapper
+outermost), with the bench's policies (:data:`blanket.bench.policies.POLICIES`). A row builds
+its agent once, so what it learns carries over its episodes: the first ``--warmup`` episodes
+are the warm-up, the next ``--episodes`` are measured. Both rows of a comparison see the same
+seeds. ``own`` is the project's 3-DoF potting arm (``assets/potting_arm_3dof.urdf``).
+
+Part ``lengths``: the body model's link lengths 3 % long (condition ``model_length_scale =
+1.03``), velocity control; rows ``active-inference`` (no learning) and
+``active-inference+learn``. The learned factors should be ``1 / 1.03`` on every link: the
+script prints the error of the shared scale and of each link factor the data informed
+(posterior sd < 0.25 %), in per cent of the true length.
+
+Part ``payload``: the own arm under torque control with an unmodelled 1.5 kg payload (condition
+``payload_kg = 1.5``). Rows: ``active-inference-torque`` (no learning);
+``active-inference-torque+learn`` in the bench env; and calibrate-then-reload -- the warm-up
+episodes learn in the same env without the safety wrapper, the learned values are saved as
+``[agent]`` options (``ArmAgent.learned_options``) and a fresh agent built from them runs the
+measured episodes behind the safety wrapper. The wrapper turns a command it clamps back into a
+torque with the simulator's payload-free dynamics, so behind it the command the agent sent is
+not the torque that moved the arm (see the printed note).
+
+Part ``timing``: the agent's step with and without ``learn_body`` (median ``agent_step_us``
+that the loop reports), episodes alternated, on the own arm under both controls; prints the
+ratio against the step without learning measured in the same run.
+
+Prints one line per row. Run it on a quiet machine.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from pathlib import Path
+from typing import Any
+
+import gymnasium as gym
+import numpy as np
+
+import blanket  # noqa: F401  (registers the env ids)
+from blanket.agent import ArmAgent
+from blanket.bench.evaluate import run_policy_episodes
+from blanket.bench.metrics import episode_metrics
+from blanket.bench.policies import resolve_policy
+from blanket.bench.rl import make_bench_env
+from blanket.conditions import apply_conditions, condition_model_options
+from blanket.rollout import rollout
+
+OWN_ARM = dict(
+    urdf=str(
+        Path(__file__).resolve().parents[1]
+        / "envs"
+        / "blanket_envs"
+        / "assets"
+        / "potting_arm_3dof.urdf"
+    ),
+    end_effector="tool_tip",
+)
+LENGTH_ERROR = 1.03
+PAYLOAD_KG = 1.5
+INFORMED_SD = 0.0025
+EPISODE_S = 4.0
+
+
+def _env(arm: str, control: str, conditions: dict[str, Any], safety: bool = True) -> gym.Env:
+    world = {k: v for k, v in conditions.items() if k != "model_length_scale"}
+    if arm == "own":
+        if safety:
+            return make_bench_env("iiwa", control, EPISODE_S, conditions=world, **OWN_ARM)
+        bare = gym.make("blanket/arm-reach-v0", control=control, episode_s=EPISODE_S, **OWN_ARM)
+        return apply_conditions(bare, world)[0]
+    if safety:
+        return make_bench_env(arm, control, EPISODE_S, conditions=world)
+    bare = gym.make("blanket/arm-reach-v0", robot=arm, control=control, episode_s=EPISODE_S)
+    return apply_conditions(bare, world)[0]
+
+
+def _measure(env: gym.Env, policy: Any, seeds: list[int]) -> dict[str, Any]:
+    rows = [episode_metrics(t) for t in run_policy_episodes(env, policy, seeds)]
+    finals = [r["final_error_m"] for r in rows]
+    return {
+        "n": len(rows),
+        "reached_1cm": sum(bool(r["success_1cm"]) for r in rows),
+        "median_final_cm": 100 * float(np.median(finals)) if finals else float("nan"),
+    }
+
+
+def _reach_text(m: dict[str, Any]) -> str:
+    return (
+        f"within 1 cm {m['reached_1cm']:3d}/{m['n']:<3d} ({100 * m['reached_1cm'] / m['n']:5.1f} %)"
+        f"  median final {m['median_final_cm']:5.2f} cm"
+    )
+
+
+def _build(name: str, env: gym.Env, conditions: dict[str, Any]) -> Any:
+    spec = resolve_policy(name)
+    return spec.build(env, condition_model_options(conditions), {})
+
+
+def _compare(
+    env: gym.Env, label: str, plain: str, learning: str, conditions: dict, warmup: int, n: int
+) -> tuple[Any, dict[str, Any]]:
+    """Print the row without learning; warm up the learning agent, measure it, return both."""
+    seeds = list(range(warmup, warmup + n))
+    m = _measure(env, _build(plain, env, conditions), seeds)
+    print(f"  {label:<6} {plain:<30} {_reach_text(m)}", flush=True)
+    agent = _build(learning, env, conditions)
+    if warmup:
+        run_policy_episodes(env, agent, list(range(warmup)))
+    return agent, _measure(env, agent, seeds)
+
+
+def _tip_errors_mm(env: gym.Env, body: Any, postures: int = 500) -> np.ndarray:
+    """|fk_body(q) - fk_true(q)| (mm) at random postures within the joint limits (|q| <= pi)."""
+    from blanket.body import ArmModel
+
+    d = env.unwrapped.description
+    truth = ArmModel.from_urdf(d.urdf_path, d.end_effector, d.joint_names)
+    lo, hi = np.maximum(d.lower_rad, -np.pi), np.minimum(d.upper_rad, np.pi)
+    rng = np.random.default_rng(0)
+    qs = rng.uniform(lo, hi, size=(postures, d.n_joints))
+    return np.array(
+        [1e3 * np.linalg.norm(body.tip_position(q) - truth.tip_position(q)) for q in qs]
+    )
+
+
+def lengths(arm: str, warmup: int, episodes: int) -> None:
+    conditions = {"model_length_scale": LENGTH_ERROR}
+    env = _env(arm, "velocity", conditions)
+    try:
+        agent, m = _compare(
+            env, arm, "active-inference", "active-inference+learn", conditions, warmup, episodes
+        )
+        learner = agent.body_learning
+        g, g_sd = learner.shared_length_scale()
+        s, sd = learner.length_scales(), learner.length_scales_sd()
+        informed = sd < INFORMED_SD
+        err = 100 * (s * LENGTH_ERROR - 1.0)  # per cent of the true length
+        worst = f"{np.abs(err[informed]).max():.2f}" if informed.any() else "-"
+        agent.reset()  # writes everything learned into the body model
+        before, after = (
+            _tip_errors_mm(env, body)
+            for body in (_build("active-inference", env, conditions).body, agent.body)
+        )
+        print(
+            f"  {arm:<6} {'active-inference+learn':<30} {_reach_text(m)}\n"
+            f"         learned: shared scale error {100 * (g * LENGTH_ERROR - 1):+.2f} % "
+            f"(sd {100 * g_sd:.2f} %); informed links {int(informed.sum())}/{s.size}, "
+            f"worst error {worst} %; all links "
+            f"[{', '.join(f'{e:+.2f}' for e in err)}] % (sd "
+            f"[{', '.join(f'{100 * x:.2f}' for x in sd)}] %)\n"
+            f"         tip error of the body model at 500 random postures, median / 95th "
+            f"percentile: {np.median(before):.1f} / {np.percentile(before, 95):.1f} mm before, "
+            f"{np.median(after):.1f} / {np.percentile(after, 95):.1f} mm learned",
+            flush=True,
+        )
+    finally:
+        env.close()
+
+
+def payload(warmup: int, episodes: int) -> None:
+    conditions = {"payload_kg": PAYLOAD_KG}
+    warm = list(range(warmup))
+    seeds = list(range(warmup, warmup + episodes))
+    env = _env("own", "torque", conditions)
+    learning = "active-inference-torque+learn"
+    try:
+        agent, m = _compare(
+            env, "own", "active-inference-torque", learning, conditions, warmup, episodes
+        )
+        mass, _ = agent.body_learning.payload()
+        print(
+            f"  own    {learning:<30} {_reach_text(m)}\n"
+            f"         learned behind the safety wrapper: payload {mass:.3f} kg "
+            f"({100 * (mass / PAYLOAD_KG - 1):+.1f} %), "
+            f"{agent.body_learning.rejected} sensations refused by the gate",
+            flush=True,
+        )
+        bare = _env("own", "torque", conditions, safety=False)
+        try:
+            calibrating = _build(learning, bare, conditions)
+            if warm:
+                run_policy_episodes(bare, calibrating, warm)
+            learned = calibrating.learned_options()
+            mass_sd, _ = calibrating.body_learning.payload_sd()
+        finally:
+            bare.close()
+        reloaded = ArmAgent.from_env(env, **learned)
+        m = _measure(env, reloaded, seeds)
+        mass = learned["payload_kg"]
+        print(
+            f"  own    {'calibrate, save, reload':<30} {_reach_text(m)}\n"
+            f"         learned without the wrapper in {warmup} episodes: payload {mass:.3f} kg "
+            f"({100 * (mass / PAYLOAD_KG - 1):+.1f} %, sd {mass_sd:.3f} kg), centre of mass "
+            f"{learned['payload_com_m']} m; [agent] {learned}",
+            flush=True,
+        )
+    finally:
+        env.close()
+
+
+def timing(rounds: int) -> None:
+    for control in ("velocity", "torque"):
+        env = _env("own", control, {})
+        try:
+            agents = {learn: ArmAgent.from_env(env, learn_body=learn) for learn in (False, True)}
+            times: dict[bool, list[float]] = {False: [], True: []}
+            for i in range(rounds):
+                for learn, agent in agents.items():
+                    times[learn] += [r.agent_step_us for r in rollout(env, agent, 1, seed=i)]
+            plain, learning = (float(np.median(times[k])) for k in (False, True))
+            print(
+                f"  own    {control:<8} agent step {plain:7.1f} us, with learn_body "
+                f"{learning:7.1f} us: ratio {learning / plain:.2f} ({rounds} episodes each)",
+                flush=True,
+            )
+        finally:
+            env.close()
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--episodes", type=int, default=20, help="measured episodes per row")
+    parser.add_argument("--warmup", type=int, default=5, help="warm-up episodes per row")
+    parser.add_argument("--arms", default="iiwa,panda,xarm6,own")
+    parser.add_argument("--parts", default="lengths,payload,timing")
+    args = parser.parse_args(argv)
+    if args.episodes < 1 or args.warmup < 0:
+        parser.error("--episodes must be >= 1 and --warmup >= 0")
+    parts = args.parts.split(",")
+    unknown = set(parts) - {"lengths", "payload", "timing"}
+    if unknown:
+        parser.error(f"--parts: unknown {sorted(unknown)}; choose from lengths, payload, timing")
+    if "lengths" in parts:
+        print(
+            f"link lengths {100 * (LENGTH_ERROR - 1):.0f} % long, velocity control, "
+            f"{args.warmup} warm-up + {args.episodes} measured episodes of {EPISODE_S:g} s"
+        )
+        for arm in args.arms.split(","):
+            lengths(arm, args.warmup, args.episodes)
+    if "payload" in parts:
+        print(
+            f"unmodelled {PAYLOAD_KG} kg payload, own 3-DoF arm, torque control, "
+            f"{args.warmup} warm-up + {args.episodes} measured episodes"
+        )
+        payload(args.warmup, args.episodes)
+    if "timing" in parts:
+        print("the agent's step with and without learn_body (median over steps)")
+        timing(max(1, args.episodes // 4))
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
