@@ -130,7 +130,7 @@ def test_bench_quiet_still_names_the_policies_it_leaves_out(tmp_path, capsys, mo
     monkeypatch.setattr(rl, "sb3_available", lambda: False)
     ran = {}
 
-    def run_benchmark(settings, out, progress=True):
+    def run_benchmark(settings, out, progress=True, **engine_options):
         ran["policies"] = list(settings.policies)
         return {"records": [], "wall_s": 0.0}
 
