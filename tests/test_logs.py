@@ -1104,3 +1104,28 @@ def test_arrays_of_any_dtype_or_memory_order_keep_their_values(tmp_path: Path) -
             expected[0],
         )
     np.testing.assert_array_equal(frame["sensory.tip_pixel_px.u"], np.arange(len(rows)))
+
+
+def test_flag_and_integer_arrays_keep_their_values_and_types_on_every_row(tmp_path: Path) -> None:
+    # rows after the first take the writer's fast path, which must store flag and integer
+    # arrays as the first (checked) row does: same values, typed back as bool / int64
+    rng = np.random.default_rng(3)
+    flags = rng.random((50, 4)) < 0.5
+    counts = rng.integers(-5, 5, size=(50, 3))
+    with RunWriter(tmp_path / "r", {}) as w:
+        w.begin_episode(0)
+        for k in range(50):
+            w.record(
+                k,
+                k / 10,
+                external={"x": np.full(2, float(k))},
+                sensory={},
+                active={},
+                internal={"flags": {"custom": flags[k].copy()}, "count": counts[k].copy()},
+            )
+        path = w.end_episode()
+    table = pq.read_table(path)  # reference: pyarrow's own Parquet reader
+    got_flags = np.column_stack([table[f"internal.flags.custom.c{i}"].to_numpy() for i in range(4)])
+    got_counts = np.column_stack([table[f"internal.count.c{i}"].to_numpy() for i in range(3)])
+    assert got_flags.dtype == bool and np.array_equal(got_flags, flags)
+    assert got_counts.dtype == np.int64 and np.array_equal(got_counts, counts)

@@ -171,6 +171,19 @@ def _getter(names: list[str]) -> Any:
 
 
 _dtype_of = operator.attrgetter("dtype")
+
+
+def _as_float64(arrays: tuple[np.ndarray, ...]) -> tuple[np.ndarray, ...]:
+    """The arrays as native float64, as the checked path stores them (bool, int and float
+    arrays only: any other kind raises ``TypeError``, which sends the row to that path)."""
+    out = []
+    for a in arrays:
+        if a.dtype != _FLOAT64:
+            if a.dtype.kind not in "biuf":
+                raise TypeError(a.dtype)
+            a = a.astype(np.float64, order="C")
+        out.append(a)
+    return tuple(out)
 _FLOAT64 = np.dtype(np.float64)
 
 
@@ -347,7 +360,7 @@ class _Rows:
                 # C-ordered arrays: other dtypes fail this check, other orders fail the join,
                 # another total size fails the assignment; the checked path takes those.
                 if tuple(map(_dtype_of, arrays)) != self._dtypes:
-                    raise TypeError
+                    arrays = _as_float64(arrays)  # flags and integers (others: TypeError)
                 start = row * self._row_bytes
                 self._bytes[start : start + self._row_bytes] = b"".join(arrays)
             if None in scalars:  # (an array of size > 1 among them raises here too)
