@@ -184,6 +184,8 @@ def _as_float64(arrays: tuple[np.ndarray, ...]) -> tuple[np.ndarray, ...]:
             a = a.astype(np.float64, order="C")
         out.append(a)
     return tuple(out)
+
+
 _FLOAT64 = np.dtype(np.float64)
 
 
