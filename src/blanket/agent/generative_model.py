@@ -96,7 +96,7 @@ class AgentOptions:
         "velocity_step_sd_rad_s": 0.01,
         "velocity_step_gain": 10.0,
         "action_fraction": 1.0,
-        "learn_precision": True,
+        "learn_precision": False,
         "learn_motor_precision": True,
         "motor_window_s": 0.1,
         "precision_learning_rate": 0.2,
