@@ -18,6 +18,7 @@ ENV_IDS = {
     "blanket/arm-reach-v0": "blanket_envs.arm_reach:ArmReachEnv",
     "blanket/planar-2link-v0": "blanket_envs.arm_reach:PlanarReachEnv",
     "blanket/base-goto-v0": "blanket_envs.base_goto:BaseGotoEnv",
+    "blanket/arm-hold-v0": "blanket_envs.arm_hold:ArmHoldEnv",
 }
 
 for _env_id, _entry_point in ENV_IDS.items():

@@ -120,6 +120,9 @@ class EpisodeResult:
     #: (``mean_free_energy``) is dominated by the first steps, where the belief meets its
     #: first sensations (one episode: peak 2e4, median -83, mean -21).
     median_free_energy: float | None = None
+    #: Task measures observers add at the episode's end (the hold task's
+    #: ``time_within_tolerance``, ``recovery_times_s``, ``tip_covariance_m2``), in the JSON form.
+    measures: dict[str, Any] = field(default_factory=dict)
 
     def to_dict(self) -> dict[str, Any]:
         """The JSON form (``summary.json``'s ``per_episode``, a log's episode metadata)."""
@@ -137,6 +140,7 @@ class EpisodeResult:
             "mean_free_energy": self.mean_free_energy,
             "contact": self.contact,
             "safe_stop": self.safe_stop,
+            **self.measures,
         }
 
 

@@ -27,6 +27,7 @@ __all__ = [
     "prepare_out_dir",
     "with_safety",
     "SUMMARY_KEYS",
+    "HoldRecord",
 ]
 
 SUMMARY_KEYS = (
@@ -49,7 +50,7 @@ def run_episode(
 ) -> EpisodeResult:
     """One episode from ``env.reset(seed=seed)`` through :func:`blanket.rollout.rollout`,
     logged to ``writer`` when given; ``on_step()`` is called after every step."""
-    observers: list[Observer] = []
+    observers: list[Observer] = [HoldRecord()] if is_hold_env(env) else []
     if writer is not None:
         observers.append(RunLog(writer))
     if on_step is not None:
@@ -77,11 +78,50 @@ def run_episodes(
     """``episodes`` episodes with seeds ``seed, seed + 1, ...`` through
     :func:`blanket.rollout.rollout`, logged to ``writer`` when given, with a progress bar."""
     observers: list[Observer] = []
+    if is_hold_env(env):  # before the log: its measures go into the episode's metadata
+        observers.append(HoldRecord())
     if writer is not None:
         observers.append(RunLog(writer))
     if progress:
         observers.append(ProgressBar(description))
     return rollout(env, agent, episodes, seed=seed, observers=observers)
+
+
+def is_hold_env(env: Any) -> bool:
+    """Whether ``env`` is a holding task (its forcing reported as ``disturbance_shove_n``)."""
+    return hasattr(env.unwrapped, "shove_starts_s")
+
+
+class HoldRecord(Observer):
+    """The hold task's measures of each episode (:func:`blanket.bench.metrics.hold_metrics`),
+    added to its :attr:`EpisodeResult.measures`: the fraction of steps within the env's
+    tolerance, the recovery time after each shove, the tip covariance."""
+
+    def on_episode_start(self, start: Any) -> None:
+        self._dt = start.dt
+        self._tolerance = float(start.env.unwrapped.description.tolerance_m)
+        self._distance: list[float] = []
+        self._tip: list[np.ndarray] = []
+        self._shove: list[np.ndarray] = []
+
+    def on_step(self, step: StepView) -> None:
+        ext = step.info["external"]
+        self._distance.append(float(step.info["distance_m"]))
+        self._tip.append(np.array(ext["tip_position_m"], dtype=float))
+        self._shove.append(np.array(ext["disturbance_shove_n"], dtype=float))
+
+    def on_episode_end(self, result: EpisodeResult) -> None:
+        from blanket.bench.metrics import hold_metrics
+
+        result.measures.update(
+            hold_metrics(
+                np.asarray(self._distance),
+                np.asarray(self._tip).reshape(-1, 3),
+                np.asarray(self._shove).reshape(-1, 3),
+                self._dt,
+                self._tolerance,
+            )
+        )
 
 
 def __getattr__(name: str) -> Any:
@@ -116,6 +156,11 @@ def summarize(results: list[EpisodeResult]) -> dict[str, Any]:
     headings = [r.final_heading_error_rad for r in results if r.final_heading_error_rad is not None]
     if headings:
         summary["final_heading_error_rad"] = float(np.median(headings))
+    held = [r.measures for r in results if "time_within_tolerance" in r.measures]
+    if held:  # the hold task (HoldRecord)
+        from blanket.bench.metrics import aggregate_hold
+
+        summary.update(aggregate_hold(held))
     summary["per_episode"] = [r.to_dict() for r in results]
     return summary
 

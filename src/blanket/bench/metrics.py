@@ -28,7 +28,19 @@ __all__ = [
     "bootstrap_interval",
     "episode_metrics",
     "aggregate",
+    "time_within_tolerance",
+    "shove_starts",
+    "recovery_times_s",
+    "tip_covariance",
+    "hold_metrics",
+    "aggregate_hold",
+    "HOLD_SETTLE_S",
+    "lyapunov_covariance",
 ]
+
+#: The hold task's tip covariance leaves out the first this many seconds (the controller and
+#: the belief meeting their first sensations).
+HOLD_SETTLE_S = 0.5
 
 #: Success radii reported by the benchmark (m).
 SUCCESS_TOLERANCES_M = (0.01, 0.05)
@@ -206,3 +218,93 @@ def aggregate(rows: Sequence[Mapping[str, Any]], seed: int = 0) -> dict[str, Any
     peaks = [float(p) for p in peaks if p is not None]
     out["peak_joint_speed_ratio"] = max(peaks) if peaks else None
     return out
+
+
+# ------------------------------------------------------------------------ holding a pose
+def time_within_tolerance(distance_m: np.ndarray, tolerance_m: float) -> float:
+    """Fraction of control steps whose tip distance is within ``tolerance_m`` (NaN if none)."""
+    d = np.asarray(distance_m, dtype=float)
+    return float(np.mean(d <= tolerance_m)) if d.size else math.nan
+
+
+def shove_starts(shove_n: np.ndarray) -> np.ndarray:
+    """Step indices where a shove starts: a non-zero force after a zero one (or at step 0)."""
+    on = np.any(np.asarray(shove_n, dtype=float) != 0.0, axis=1)
+    return np.flatnonzero(on & ~np.concatenate([[False], on[:-1]]))
+
+
+def recovery_times_s(
+    distance_m: np.ndarray, starts: Sequence[int], dt: float, tolerance_m: float
+) -> list[float | None]:
+    """Time from each shove's start until the tip is back inside the tolerance and stays
+    there for the hold time: the one success rule (:mod:`blanket.success`) on the trace from
+    the shove's row on. Row ``k`` is control step ``k + 1``: the force that acted during it and
+    the distance after it, so a shove starting at row ``s`` starts at time ``s dt`` and the
+    recovery time counts from there. None: not recovered by the episode's end. A tip that
+    never leaves the tolerance recovers at ``dt``.
+    """
+    inside = np.asarray(distance_m, dtype=float) <= tolerance_m
+    return [_success.time_to_success(inside[int(s) :], dt) for s in starts]
+
+
+def tip_covariance(tip_m: np.ndarray, skip: int = 0) -> np.ndarray:
+    """Empirical covariance (3, 3) of the tip positions ``tip_m[skip:]`` about their mean, m^2
+    (unbiased, ``n - 1``)."""
+    tip = np.asarray(tip_m, dtype=float)[skip:]
+    if tip.shape[0] < 2:
+        return np.full((3, 3), math.nan)
+    return np.cov(tip, rowvar=False)
+
+
+def hold_metrics(
+    distance_m: np.ndarray,
+    tip_m: np.ndarray,
+    shove_n: np.ndarray,
+    dt: float,
+    tolerance_m: float,
+    settle_s: float = HOLD_SETTLE_S,
+) -> dict[str, Any]:
+    """One hold episode's measures: ``time_within_tolerance``, ``recovery_times_s`` (one per
+    shove, None when not recovered), ``tip_covariance_m2`` (after ``settle_s``)."""
+    starts = shove_starts(shove_n)
+    skip = int(round(settle_s / dt))
+    return {
+        "time_within_tolerance": time_within_tolerance(distance_m, tolerance_m),
+        "recovery_times_s": recovery_times_s(distance_m, starts, dt, tolerance_m),
+        "tip_covariance_m2": tip_covariance(tip_m, skip).tolist(),
+    }
+
+
+def aggregate_hold(rows: Sequence[Mapping[str, Any]]) -> dict[str, Any]:
+    """Hold measures over episodes: the mean and lowest time within tolerance, the median
+    recovery time over every recovered shove, shove counts, and the tip covariance averaged
+    over episodes (the within-episode covariance, pooled) with its axis standard deviations."""
+    if not rows:
+        return {}
+    fractions = [float(r["time_within_tolerance"]) for r in rows]
+    recoveries = [t for r in rows for t in r["recovery_times_s"]]
+    done = [float(t) for t in recoveries if t is not None]
+    cov = np.mean([np.asarray(r["tip_covariance_m2"], dtype=float) for r in rows], axis=0)
+    return {
+        "time_within_tolerance": float(np.mean(fractions)),
+        "time_within_tolerance_min": float(np.min(fractions)),
+        "recovery_time_s": float(np.median(done)) if done else None,
+        "shoves": len(recoveries),
+        "shoves_recovered": len(done),
+        "tip_covariance_m2": cov.tolist(),
+        "tip_sd_m": np.sqrt(np.clip(np.diag(cov), 0.0, None)).tolist(),
+    }
+
+
+def lyapunov_covariance(A: np.ndarray, Q: np.ndarray) -> np.ndarray:
+    """Stationary covariance ``P`` of the linear SDE ``dx = A x dt + dw``, ``E[dw dw'] = Q dt``:
+    the solution of the continuous Lyapunov equation ``A P + P A' + Q = 0`` (Gardiner,
+    *Stochastic Methods*, 4th ed. 2009, sec. 4.5.6, from memory), by
+    ``scipy.linalg.solve_continuous_lyapunov`` (Bartels-Stewart). ``A`` must be Hurwitz."""
+    from scipy.linalg import solve_continuous_lyapunov
+
+    A = np.asarray(A, dtype=float)
+    if np.max(np.linalg.eigvals(A).real) >= 0.0:
+        raise ConfigError("A: the closed loop is not stable (an eigenvalue has real part >= 0)")
+    P = solve_continuous_lyapunov(A, -np.asarray(Q, dtype=float))
+    return 0.5 * (P + P.T)

@@ -200,6 +200,7 @@ class ArmWorld:
         self._payload_kg = 0.0
         self._push_force_n = np.zeros(3)
         self._push_steps_left = 0
+        self._tool_force_n: list[float] | None = None
         self._bodies: dict[int, str] = {}
         self._configure_motors("velocity")
         self._initial_state = c.saveState()
@@ -304,6 +305,7 @@ class ArmWorld:
             c.resetJointState(self.robot, j, position, 0.0)
         self._push_steps_left = 0
         self._push_force_n = np.zeros(3)
+        self._tool_force_n = None
         self._configure_motors(self._mode)
         c.performCollisionDetection()  # so contacts() describes the new posture
 
@@ -363,6 +365,15 @@ class ArmWorld:
                 flags=pybullet.WORLD_FRAME,
             )
             self._push_steps_left -= 1
+        if self._tool_force_n is not None:
+            self.client.applyExternalForce(
+                self.robot,
+                self.tip_link,
+                forceObj=self._tool_force_n,
+                posObj=self.tip_position().tolist(),
+                flags=pybullet.WORLD_FRAME,
+            )
+            self._tool_force_n = None
         self._state = None
         self._tip = None
         self.client.stepSimulation()
@@ -398,6 +409,11 @@ class ArmWorld:
             raise ConfigError(f"duration_s: must be finite and >= 0, got {duration_s}")
         self._push_force_n = force.copy()
         self._push_steps_left = int(round(duration_s * self.control_hz))
+
+    def apply_tool_force(self, force_n: np.ndarray) -> None:
+        """Apply a world-frame force (N) at the tool tip during the next step only, on top of
+        any push (an env's own forcing, e.g. a random force drawn every step)."""
+        self._tool_force_n = [float(v) for v in force_n]
 
     @property
     def push_force_n(self) -> np.ndarray:
