@@ -83,8 +83,8 @@ def shove_schedule(
     """The shove force of every control step, shape ``(steps, 3)`` (N, world frame).
 
     Shove starts form a Poisson process of rate ``rate_hz``: exponential gaps (mean
-    ``1 / rate_hz``), each counted from the end of the previous shove so shoves never overlap (and at least one
-    step without a shove parts two).
+    ``1 / rate_hz``), each counted from the end of the previous shove so shoves never overlap
+    (and at least one step without a shove parts two).
     Each shove is ``force_n`` in a uniformly random horizontal direction for
     ``max(1, round(duration_s * control_hz))`` steps. ``rate_hz = 0``: no shoves.
     """

@@ -14,7 +14,10 @@
     free energy and each sensory channel's prediction errors over time;
 ``episode-NNNNN-commands.png``
     each commanded component against its limits (``action_low``/``action_high`` in the
-    run metadata), with the applied command when a safety wrapper logged one.
+    run metadata), with the applied command when a safety wrapper logged one;
+``episode-NNNNN-hold.png``
+    a hold run only (``blanket/arm-hold-v0``): the tip's distance from the preferred point
+    over time with the tolerance band and the shoves marked, and the random force on the tool.
 
 A figure whose columns are missing (a Recorder log has no ``internal.*``) is skipped.
 :func:`build_figures` returns the figures without saving them.
@@ -43,7 +46,7 @@ from blanket.logs.schema import LogError, unit_for_key  # noqa: E402
 
 __all__ = ["plot_run", "build_figures", "load_episode", "FIGURE_NAMES", "LOOK"]
 
-FIGURE_NAMES = ("tip-path", "belief", "free-energy", "commands")
+FIGURE_NAMES = ("tip-path", "belief", "free-energy", "commands", "hold")
 
 # Greenhouse colours: leaf, clay, slate, ochre, plum, teal, soil.
 PALETTE = ("#2f6b3a", "#c8652a", "#3d5a80", "#b58b00", "#7a4e8c", "#4f9d9a", "#8c5a3c")
@@ -553,11 +556,56 @@ def _is_applied(key: str) -> bool:
     return key.startswith("applied_") or key.endswith("_applied")
 
 
+def _hold_figure(frame: pd.DataFrame, meta: Mapping[str, Any], episode: int) -> Figure | None:
+    """Hold trace: tip distance with the tolerance band and the shoves; the random force."""
+    shove = _vector(frame, "external.disturbance_shove_n")
+    force = _vector(frame, "external.disturbance_force_n")
+    if not shove or "external.distance_m" not in frame.columns:
+        return None
+    t = _values(frame, "t")
+    distance_cm = 100.0 * _values(frame, "external.distance_m")
+    pushed = np.linalg.norm(np.column_stack([_values(frame, c) for c in shove.values()]), axis=1)
+    fig, (ax, ax_f) = plt.subplots(
+        2, 1, figsize=(9.0, 4.8), sharex=True, layout="constrained", height_ratios=(2.2, 1.0)
+    )
+    tolerance = meta.get("tolerance_m")
+    if tolerance:
+        ax.axhspan(0.0, 100.0 * float(tolerance), color=PALETTE[0], alpha=0.12, lw=0)
+        ax.axhline(100.0 * float(tolerance), color=PALETTE[0], lw=0.9, label="tolerance")
+    on = pushed > 0.0
+    edges = np.flatnonzero(np.diff(np.concatenate([[0], on.astype(int), [0]])))
+    for k, (a, b) in enumerate(zip(edges[::2], edges[1::2], strict=True)):
+        end = t[min(b, len(t) - 1)]
+        for axis in (ax, ax_f):
+            axis.axvspan(
+                t[a],
+                end,
+                color=TARGET,
+                alpha=0.35,
+                lw=0,
+                label="shove" if k == 0 and axis is ax else None,
+            )
+    ax.plot(t, distance_cm, color=PALETTE[2], label="tip distance")
+    ax.set_ylabel("distance from the preferred point (cm)")
+    ax.set_ylim(0.0, max(float(np.nanmax(distance_cm)) * 1.1, 2.0 * 100.0 * float(tolerance or 0)))
+    ax.set_title("tool tip")
+    ax.legend(loc="upper right", ncols=3)
+    for k, (axis_name, column) in enumerate(sorted(force.items())):
+        ax_f.plot(t, _values(frame, column), color=PALETTE[3 + k], lw=0.9, label=axis_name)
+    ax_f.set_ylabel("random force (N)")
+    ax_f.set_xlabel("t (s)")
+    ax_f.set_title("random force on the tool, per axis")
+    ax_f.legend(loc="upper right", ncols=3)
+    _heading(fig, "Holding the nozzle over the tray", meta, episode)
+    return fig
+
+
 _BUILDERS = {
     "tip-path": _tip_path_figure,
     "belief": _belief_figure,
     "free-energy": _free_energy_figure,
     "commands": _commands_figure,
+    "hold": _hold_figure,
 }
 
 
