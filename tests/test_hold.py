@@ -203,7 +203,7 @@ def test_summary_of_a_hold_run_has_the_hold_measures(tmp_path):
     from blanket.logs import RunWriter
     from blanket.runner import run_episodes
 
-    env = gym.make(HOLD, episode_s=1.0, shove_rate_hz=3.0)
+    env = gym.make(HOLD, episode_s=1.0, shove_rate_hz=10.0)
     try:
         writer = RunWriter(tmp_path, {"scenario": {"name": "t"}}, overwrite=True)
         results = run_episodes(env, _zero(env.unwrapped), 2, seed=0, writer=writer, progress=False)
@@ -218,3 +218,79 @@ def test_summary_of_a_hold_run_has_the_hold_measures(tmp_path):
     assert np.asarray(s["tip_covariance_m2"]).shape == (3, 3)
     json.dumps(s)  # summary.json's content is plain JSON
     assert "time_within_tolerance" in s["per_episode"][0]
+
+
+# ------------------------------------------------------------------ bench, RL, figure
+def test_bench_knows_the_hold_task_and_meets_every_policy_with_the_same_forcing(tmp_path):
+    from blanket.bench.suite import BenchSettings, run_benchmark
+
+    settings = BenchSettings.from_cli(
+        policies=["classical-torque", "active-inference-torque"],
+        conditions=["nominal"],
+        episodes=1,
+        episode_s=1.0,
+        task="hold",
+    )
+    records = run_benchmark(settings, tmp_path, progress=False)["records"]
+    assert [r["policy"] for r in records] == ["classical-torque", "active-inference-torque"]
+    digests = {r["per_episode"][0]["perturbation_digest"] for r in records}
+    assert len(digests) == 1  # the forcing (disturbance_* keys) was the same for both
+    for r in records:
+        assert 0.0 <= r["time_within_tolerance"] <= 1.0
+        assert np.asarray(r["tip_covariance_m2"]).shape == (3, 3)
+    # the agent's disturbance belief holds the tip; the baseline without one drifts
+    classical, agent = records
+    assert agent["time_within_tolerance"] > classical["time_within_tolerance"]
+
+
+def test_bench_and_training_refuse_an_unknown_task():
+    from blanket.bench.rl import TrainSettings
+    from blanket.bench.suite import BenchSettings
+
+    with pytest.raises(ConfigError, match="--task must be one of reach, hold"):
+        BenchSettings.from_cli(policies=["classical"], task="hover")
+    with pytest.raises(ConfigError, match="not planar"):
+        BenchSettings.from_cli(policies=["classical"], task="hold", robot="planar")
+    with pytest.raises(ConfigError, match="--task"):
+        TrainSettings(task="hover").validate()
+
+
+def test_rl_training_env_of_the_hold_task():
+    from blanket.bench.rl import TrainSettings, make_bench_env
+
+    env = make_bench_env("iiwa", "velocity", 0.5, task="hold")
+    try:
+        assert env.unwrapped.spec.id == HOLD
+        assert env.unwrapped.control == "velocity"
+    finally:
+        env.close()
+    TrainSettings(task="hold").validate()
+
+
+def test_blanket_plot_draws_the_hold_trace(tmp_path):
+    from blanket.logs import RunWriter
+    from blanket.logs.plots import build_figures, load_episode
+    from blanket.logs.reader import read_metadata
+    from blanket.runner import run_episodes
+
+    env = gym.make(HOLD, episode_s=1.0, shove_rate_hz=10.0)
+    try:
+        meta = {"scenario": {"name": "hold"}, "tolerance_m": 0.02, "seed": 0}
+        writer = RunWriter(tmp_path, meta, overwrite=True)
+        run_episodes(env, _zero(env.unwrapped), 1, seed=0, writer=writer, progress=False)
+        writer.close()
+        assert env.unwrapped.shove_starts_s.size > 0
+    finally:
+        env.close()
+    frame, episode = load_episode(tmp_path)
+    figures = build_figures(frame, read_metadata(tmp_path), episode)
+    try:
+        assert "hold" in figures
+        ax = figures["hold"].axes[0]
+        assert any(p.get_label() == "shove" for p in ax.patches)  # shoves marked
+        assert ax.get_lines()[-1].get_label() == "tip distance"
+    finally:
+        import matplotlib.pyplot as plt
+
+        for fig in figures.values():
+            plt.close(fig)

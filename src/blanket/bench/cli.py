@@ -75,6 +75,13 @@ def add_bench_parser(sub: Any) -> argparse.ArgumentParser:
         "--rl-models", metavar="DIR", help="folder with sac.zip / ppo.zip from 'blanket train-rl'"
     )
     p.add_argument(
+        "--task",
+        default="reach",
+        metavar="NAME",
+        help="reach (blanket/arm-reach-v0) or hold (blanket/arm-hold-v0: hold the tip against "
+        "random forcing; adds time within tolerance, shove recovery, tip covariance)",
+    )
+    p.add_argument(
         "--out",
         metavar="DIR",
         help="output folder (default: a new one under "
@@ -136,6 +143,7 @@ def run_bench(args: argparse.Namespace) -> int:
         robot=args.robot,
         episode_s=args.episode_s,
         rl_models=args.rl_models,
+        task=args.task,
     )
     out = prepare_out_dir(args.out, args.overwrite or args.resume, prefix="bench")
     summary = run_benchmark(
@@ -183,6 +191,7 @@ def add_train_parser(sub: Any) -> argparse.ArgumentParser:
         help="iiwa, panda, xarm6 or planar (default iiwa)",
     )
     p.add_argument("--episode-s", type=_positive_float, default=4.0, metavar="T")
+    p.add_argument("--task", default="reach", metavar="NAME", help="reach (default) or hold")
     p.add_argument(
         "--action-repeat",
         type=_positive_int,
@@ -233,6 +242,7 @@ def run_train(args: argparse.Namespace) -> int:
         tolerance_bonus=args.tolerance_bonus,
         effort_weight=args.effort_weight,
         hyperparameters=hyper,
+        task=args.task,
     )
     meta = train(settings, Path(args.out), progress=not args.quiet)
     print(

@@ -56,6 +56,8 @@ class EpisodeTrace:
     env_tolerance_m: float | None = None
     peak_joint_speed_ratio: float | None = None
     belief_sd_q_rad: np.ndarray | None = None
+    #: The hold task's shove force of each step (``disturbance_shove_n``; None elsewhere).
+    shove_n: np.ndarray | None = None
 
 
 def _digest_update(h: Any, external: Mapping[str, Any]) -> None:
@@ -103,6 +105,7 @@ class BenchTrace(Observer):
         self._success = False
         self._success_time: float | None = None
         self._peak: float | None = None
+        self._shoves: list[np.ndarray] | None = [] if "disturbance_shove_n" in ext else None
 
     def on_step(self, step: StepView) -> None:
         diag = step.diagnostics
@@ -132,6 +135,8 @@ class BenchTrace(Observer):
             ratio = float(ratio)
             self._peak = ratio if self._peak is None else max(self._peak, ratio)
         _digest_update(self._hash, ext)
+        if self._shoves is not None:
+            self._shoves.append(np.asarray(ext["disturbance_shove_n"], dtype=float))
 
     def on_episode_end(self, result: Any) -> None:
         seen = self._seen
@@ -160,6 +165,7 @@ class BenchTrace(Observer):
                 env_time_to_success_s=self._success_time,
                 env_tolerance_m=self._tolerance,
                 peak_joint_speed_ratio=self._peak,
+                shove_n=None if self._shoves is None else np.asarray(self._shoves).reshape(-1, 3),
             )
         )
 

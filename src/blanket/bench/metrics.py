@@ -179,6 +179,9 @@ def episode_metrics(trace: Any) -> dict[str, Any]:
     out["contact"] = bool(trace.contact)
     peak = getattr(trace, "peak_joint_speed_ratio", None)
     out["peak_joint_speed_ratio"] = None if peak is None else float(peak)
+    shove = getattr(trace, "shove_n", None)
+    if shove is not None and env_tolerance is not None:  # the hold task
+        out.update(hold_metrics(trace.distance_m, trace.tip_m, shove, dt, env_tolerance))
     return out
 
 
@@ -217,6 +220,9 @@ def aggregate(rows: Sequence[Mapping[str, Any]], seed: int = 0) -> dict[str, Any
     peaks = [r.get("peak_joint_speed_ratio") for r in rows]
     peaks = [float(p) for p in peaks if p is not None]
     out["peak_joint_speed_ratio"] = max(peaks) if peaks else None
+    held = [r for r in rows if "time_within_tolerance" in r]
+    if held:  # the hold task
+        out.update(aggregate_hold(held))
     return out
 
 

@@ -42,6 +42,7 @@ __all__ = [
     "ReachReward",
     "make_training_env",
     "make_bench_env",
+    "BENCH_TASKS",
     "SB3Policy",
     "train",
     "sb3_available",
@@ -60,6 +61,9 @@ FLAT_KEYS = (
     "target_visible",
     "camera_fresh",
 )
+#: The benchmark's tasks and their env ids (the planar arm reaches only).
+BENCH_TASKS = {"reach": "blanket/arm-reach-v0", "hold": "blanket/arm-hold-v0"}
+
 #: The flat, normalised observation is clipped into +-this.
 FLAT_BOUND = 10.0
 
@@ -228,10 +232,12 @@ class TrainSettings:
     eval_seed: int = 100_000
     torch_threads: int = 1
     hyperparameters: dict[str, Any] = field(default_factory=dict)
+    task: str = "reach"
 
     def validate(self) -> None:
         if self.algo not in ALGORITHMS:
             raise ConfigError(f"--algo must be one of {', '.join(ALGORITHMS)}, got {self.algo!r}")
+        check_task(self.task, self.robot)
         for key in ("steps", "action_repeat", "eval_every", "eval_episodes", "torch_threads"):
             v = getattr(self, key)
             if not isinstance(v, int) or v < 1:
@@ -243,9 +249,11 @@ def make_bench_env(
     control: str = "velocity",
     episode_s: float = 4.0,
     conditions: Mapping[str, Any] | None = None,
+    task: str = "reach",
     **env_options: Any,
 ) -> gym.Env:
-    """The benchmark's reaching env: ``blanket/arm-reach-v0`` (or the planar arm).
+    """The benchmark's env of ``task``: ``blanket/arm-reach-v0`` (or the planar arm), or
+    ``blanket/arm-hold-v0`` (``task="hold"``, see :data:`BENCH_TASKS`).
 
     Built the way ``blanket run`` builds its env, for every policy alike: the bare env (with
     the condition's env options), the condition's perturbation wrappers
@@ -266,8 +274,13 @@ def make_bench_env(
     from blanket.conditions import apply_conditions, condition_env_options
     from blanket.runner import with_safety
 
+    check_task(task, robot)
     options = {**env_options, **condition_env_options(conditions)}
-    if robot == "planar":
+    if task != "reach":
+        env = gym.make(
+            BENCH_TASKS[task], robot=robot, control=control, episode_s=episode_s, **options
+        )
+    elif robot == "planar":
         env = gym.make("blanket/planar-2link-v0", control=control, episode_s=episode_s, **options)
     else:
         env = gym.make(
@@ -281,9 +294,18 @@ def make_bench_env(
         raise
 
 
+def check_task(task: str, robot: str) -> None:
+    """A one-line :class:`ConfigError` for a task the benchmark does not know (or a planar
+    arm asked to do anything but reach)."""
+    if task not in BENCH_TASKS:
+        raise ConfigError(f"--task must be one of {', '.join(BENCH_TASKS)}, got {task!r}")
+    if task != "reach" and robot == "planar":
+        raise ConfigError(f"--task {task}: needs a 3-D arm (iiwa, panda, xarm6), not planar")
+
+
 def make_training_env(settings: TrainSettings, monitor: bool = True) -> gym.Env:
     """The env as the RL learner sees it: bench env + reward + flat obs + [-1, 1] actions."""
-    env = make_bench_env(settings.robot, settings.control, settings.episode_s)
+    env = make_bench_env(settings.robot, settings.control, settings.episode_s, task=settings.task)
     env = ReachReward(
         env, settings.distance_scale_m, settings.tolerance_bonus, settings.effort_weight
     )
@@ -409,7 +431,7 @@ def evaluate_policy_success(policy: Any, settings: TrainSettings) -> dict[str, f
     from blanket.bench.evaluate import run_policy_episode
     from blanket.bench.metrics import episode_metrics
 
-    env = make_bench_env(settings.robot, settings.control, settings.episode_s)
+    env = make_bench_env(settings.robot, settings.control, settings.episode_s, task=settings.task)
     try:
         rows = []
         for i in range(settings.eval_episodes):

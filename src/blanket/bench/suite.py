@@ -47,6 +47,8 @@ class BenchSettings:
     smoke_rl: bool = False
     #: Policies the defaults left out, each with the reason (printed and kept in bench.json).
     left_out: list[str] = field(default_factory=list)
+    #: ``reach`` or ``hold`` (:data:`blanket.bench.rl.BENCH_TASKS`).
+    task: str = "reach"
 
     @classmethod
     def from_cli(
@@ -59,11 +61,14 @@ class BenchSettings:
         robot: str = "iiwa",
         episode_s: float | None = None,
         rl_models: str | None = None,
+        task: str = "reach",
     ) -> BenchSettings:
         """Defaults of ``blanket bench`` (and ``--quick``), checked; one-line errors."""
         if robot not in ROBOTS:
             raise ConfigError(f"--robot must be one of {', '.join(ROBOTS)}, got {robot!r}")
-        from blanket.bench.rl import sb3_available
+        from blanket.bench.rl import check_task, sb3_available
+
+        check_task(task, robot)
 
         smoke = False
         have = _available_rl(rl_models)
@@ -109,6 +114,7 @@ class BenchSettings:
             quick=quick,
             smoke_rl=smoke,
             left_out=left_out,
+            task=task,
         )
 
 
@@ -123,7 +129,11 @@ def _make_env(settings: BenchSettings, control: str, condition: Condition) -> An
     from blanket.bench.rl import make_bench_env
 
     return make_bench_env(
-        settings.robot, control, settings.episode_s, conditions=condition.parameters
+        settings.robot,
+        control,
+        settings.episode_s,
+        conditions=condition.parameters,
+        task=settings.task,
     )
 
 
@@ -180,7 +190,7 @@ def evaluate_cell(payload: dict[str, Any]) -> dict[str, Any]:
     control = spec.control
     # one env per (condition, control) and worker, shared by the policies it runs in turn
     env = cached_env(
-        ["bench", settings.robot, control, settings.episode_s, condition.name],
+        ["bench", settings.task, settings.robot, control, settings.episode_s, condition.name],
         lambda: _make_env(settings, control, condition),
     )
     model_options = dict(condition.model_options) if spec.model_based else {}
@@ -293,6 +303,7 @@ def run_benchmark(
                     episode_s=settings.episode_s,
                     eval_every=10 * SMOKE_RL_STEPS,
                     eval_episodes=1,
+                    task=settings.task,
                 ),
                 smoke_dir,
             )
