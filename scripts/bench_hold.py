@@ -16,8 +16,11 @@ Three parts (pick with ``--part``; default all):
 - ``precision``: the agent with its goal as a prior (``goal = "prior"``) at several goal
   precisions: how the precision of its preferred density trades control effort (the torque's
   standard deviation about its episode mean, RMS over joints) against spread (tip sd).
+- ``gain``: the default agent (``goal = "reference"``) at several attractor gains, without
+  shoves: effort and spread, and the tip sd the Lyapunov equation predicts for each.
 
-Usage: ``python scripts/bench_hold.py [--part compare|lyapunov|precision] [--episodes 20]``.
+Usage: ``python scripts/bench_hold.py [--part compare|lyapunov|precision|gain]
+[--episodes 20]``.
 Everything runs through :func:`blanket.rollout.rollout` with the runner's
 :class:`~blanket.runner.HoldRecord` (the one loop and the measures ``summary.json`` reports).
 """
@@ -107,7 +110,9 @@ def compare(episodes: int, seed: int) -> None:
     print(f"\nsame forcing draws for every policy (per-episode digests equal): {same}")
 
 
-def closed_loop(env: Any, agent_like: bool) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def closed_loop(
+    env: Any, agent_like: bool, attractor_gain_1_s: float | None = None
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """``(A, Q, C)`` of the linearised closed loop at the env's current (start) posture: state
     ``[q - q0, q', d, u]`` (``d`` only for the agent), tip deviation ``C x``."""
     from blanket.agent.attractor import damped_least_squares_attractor
@@ -122,7 +127,7 @@ def closed_loop(env: Any, agent_like: bool) -> tuple[np.ndarray, np.ndarray, np.
     opts = AgentOptions.defaults  # the classical baseline has the same gains by default
     params = np.array(
         [
-            opts["attractor_gain_1_s"],
+            attractor_gain_1_s or opts["attractor_gain_1_s"],
             opts["max_tip_speed_m_s"],
             opts["damping_m"] ** 2,
             opts["posture_gain_1_s"],
@@ -207,17 +212,50 @@ def precision(episodes: int, seed: int, values: list[float]) -> None:
         env.close()
 
 
+def gain(episodes: int, seed: int, episode_s: float, values: list[float]) -> None:
+    from blanket.agent import ArmAgent
+
+    print(
+        f"## the default agent's attractor gain: effort against spread, and the Lyapunov "
+        f"prediction (no shoves, {episodes} x {episode_s:g} s)"
+    )
+    print(
+        "| attractor gain, 1/s | within tolerance | tip sd x / y / z, mm | predicted | "
+        "effort, N m |"
+    )
+    print("| --- | --- | --- | --- | --- |")
+    env = make(shove_rate_hz=0.0, episode_s=episode_s)
+    try:
+        for k_goal in values:
+            agent = ArmAgent.from_env(env, attractor_gain_1_s=k_goal)
+            predicted = []
+            for k in range(episodes):
+                env.reset(seed=seed + k)
+                A, Q, C = closed_loop(env, agent_like=True, attractor_gain_1_s=k_goal)
+                predicted.append(C @ lyapunov_covariance(A, Q) @ C.T)
+            s, forcing = run(agent, env, episodes, seed)
+            fmt = lambda c: " / ".join(f"{v * 1000:.1f}" for v in np.sqrt(np.diag(c)))  # noqa: E731
+            print(
+                f"| {k_goal:g} | {s['time_within_tolerance'] * 100:.1f} % | "
+                f"{fmt(np.asarray(s['tip_covariance_m2']))} | "
+                f"{fmt(np.mean(predicted, axis=0))} | {np.mean(forcing.effort):.2f} |"
+            )
+    finally:
+        env.close()
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument(
-        "--part", choices=("compare", "lyapunov", "precision", "all"), default="all"
+        "--part", choices=("compare", "lyapunov", "precision", "gain", "all"), default="all"
     )
     parser.add_argument("--episodes", type=int, default=20)
     parser.add_argument("--seed", type=int, default=0)
     parser.add_argument("--lyapunov-episodes", type=int, default=5)
     parser.add_argument("--lyapunov-episode-s", type=float, default=16.0)
     parser.add_argument("--precision-episodes", type=int, default=5)
-    parser.add_argument("--precisions", default="10,100,1000,10000")
+    parser.add_argument("--precisions", default="1,10,30,100,300,1000,10000")
+    parser.add_argument("--gains", default="1,2,4,8")
     args = parser.parse_args()
     if args.part in ("compare", "all"):
         compare(args.episodes, args.seed)
@@ -226,6 +264,13 @@ def main() -> None:
     if args.part in ("precision", "all"):
         precision(
             args.precision_episodes, args.seed, [float(v) for v in args.precisions.split(",")]
+        )
+    if args.part in ("gain", "all"):
+        gain(
+            args.lyapunov_episodes,
+            args.seed,
+            args.lyapunov_episode_s,
+            [float(v) for v in args.gains.split(",")],
         )
 
 

@@ -188,6 +188,16 @@ def _print_summary(summary: dict[str, Any], out_dir: Path) -> None:
         )
     if summary.get("contact_rate"):
         rows.append(("episodes with contact", f"{summary['contact_rate'] * 100:.0f} %"))
+    if "time_within_tolerance" in summary:  # the hold task
+        rows[1:4] = [
+            ("time within tolerance, mean", fmt(summary["time_within_tolerance"], " %", 100, 1)),
+            ("recovery after a shove, median", fmt(summary["recovery_time_s"], " s")),
+            ("shoves recovered", f"{summary['shoves_recovered']}/{summary['shoves']}"),
+            (
+                "tip sd x / y / z",
+                " / ".join(fmt(v, "", 1000, 1) for v in summary["tip_sd_m"]) + " mm",
+            ),
+        ]
     width = max(len(r[0]) for r in rows)
     print(f"\n  {'measure':<{width}}  value")
     print(f"  {'-' * width}  {'-' * 10}")

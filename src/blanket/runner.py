@@ -88,7 +88,8 @@ def run_episodes(
 
 
 def is_hold_env(env: Any) -> bool:
-    """Whether ``env`` is a holding task (its forcing reported as ``disturbance_shove_n``)."""
+    """Whether ``env`` is a holding task (``blanket/arm-hold-v0``: it reports its forcing as
+    ``disturbance_force_n`` and ``disturbance_shove_n`` and has ``shove_starts_s``)."""
     return hasattr(env.unwrapped, "shove_starts_s")
 
 
