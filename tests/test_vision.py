@@ -209,3 +209,33 @@ def test_cnn_policy_runs_on_the_image(tmp_path):
     action, _ = model.predict(obs, deterministic=True)
     assert image_only.action_space.contains(action.astype(np.float64))
     image_only.close()
+
+
+def test_the_occluding_tray_hides_targets_in_both_camera_modes():
+    seen = {}
+    for mode in ("projected", "rendered"):
+        for occluder in (False, True):
+            env = ArmReachEnv(
+                robot="iiwa", camera=mode, camera_occluder=occluder, camera_noise_px=0.0
+            )
+            seen[mode, occluder] = sum(env.reset(seed=k)[0]["target_visible"] for k in range(16))
+            env.close()
+    for mode in ("projected", "rendered"):
+        assert seen[mode, False] == 16, seen
+        assert 0 < seen[mode, True] < 16, seen  # part of the cells hidden, not all
+    with pytest.raises(ConfigError, match="camera_occluder"):
+        ArmReachEnv(robot="iiwa", camera_occluder="yes")
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize(("robot", "control"), [("iiwa", "velocity"), ("xarm6", "velocity")])
+def test_demo_with_the_rendered_camera_reaches(robot, control, tmp_path):
+    import json
+
+    from blanket.cli import main
+
+    out = tmp_path / "run"
+    args = ["demo", "--robot", robot, "--control", control, "--camera", "rendered"]
+    assert main([*args, "--episodes", "5", "--out", str(out), "--no-log", "--quiet"]) == 0
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["success_rate"] >= 0.8

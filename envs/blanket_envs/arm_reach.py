@@ -82,6 +82,10 @@ DEFAULT_CAMERA_SIZE_PX = {"projected": (640, 480), "rendered": (320, 240)}
 ROBOT_TOOL_M = {"iiwa": 0.12, "panda": 0.03, "xarm6": 0.06}
 #: Side of the square ``image`` observation when ``image_px`` is True.
 IMAGE_PX = 84
+#: The occluding tray of ``camera_occluder``: half extents (m) of a seedling tray on a shelf,
+#: and how far along the line from the cells' centre to the camera it stands (0 .. 1).
+OCCLUDER_HALF_EXTENTS_M = (0.15, 0.10, 0.01)
+OCCLUDER_FRACTION = 0.3
 
 
 def _positive(name: str, value: float) -> float:
@@ -148,6 +152,25 @@ class ArmReachEnv(gym.Env):
         (default ``"bench"`` for built-in robots, ``"random"`` for a custom URDF).
     render_mode : {None, "rgb_array", "human"}
         ``rgb_array`` renders the scenario camera's view; ``human`` opens a pybullet GUI.
+    camera : {"projected", "rendered"}
+        ``projected``: the marker centres are projected through the pinhole model, with
+        ``camera_noise_px`` Gaussian noise and a ray test for occlusion. ``rendered``: each
+        camera frame is rendered headless (TinyRenderer) and the magenta tool-point marker and
+        the green target marker are found by colour (:mod:`blanket.sensors.render`); the
+        agent is told the measured detection error combined with ``camera_noise_px``, which
+        is added to each detected centre.
+    camera_size_px : (int, int), optional
+        Frame width and height (default 640x480 projected, 320x240 rendered).
+    tool_m : float, optional
+        A straight tool of this length (m) along the end-effector link's z axis; its end, the
+        tool point, becomes the tip (link ``tool_point`` of a generated URDF). Default 0 (the
+        end-effector link origin) in projected mode and, in rendered mode, the built-in arm's
+        :data:`ROBOT_TOOL_M` (the iiwa's link origin lies inside its wrist).
+    image_px : bool or int, optional
+        Add an ``image`` observation: the camera's view as (side, side, 3) uint8, side 84 for
+        True, updated on camera frames.
+    camera_occluder : bool
+        Put a seedling tray on a shelf between the camera and the cells, hiding part of them.
     """
 
     metadata = {"render_modes": ["rgb_array", "human"], "render_fps": 30}
@@ -171,6 +194,7 @@ class ArmReachEnv(gym.Env):
         camera_size_px: tuple[int, int] | None = None,
         tool_m: float | None = None,
         image_px: int | bool | None = None,
+        camera_occluder: bool = False,
     ) -> None:
         super().__init__()
         if camera not in CAMERA_MODES:
@@ -219,6 +243,7 @@ class ArmReachEnv(gym.Env):
             camera_size_px=camera_size_px,
             tool_m=tool_m,
             image_px=image_px,
+            camera_occluder=camera_occluder,
         )
 
     # ================================================================== setup
@@ -244,6 +269,7 @@ class ArmReachEnv(gym.Env):
         camera_size_px: tuple[int, int] | None = None,
         tool_m: float = 0.0,
         image_px: int | bool | None = None,
+        camera_occluder: bool = False,
     ) -> None:
         self.world: ArmWorld | None = None
         self.tip_view_margin_m = float(tip_view_margin_m)
@@ -255,6 +281,10 @@ class ArmReachEnv(gym.Env):
         self.camera_size_px = _camera_size(camera, camera_size_px)
         self.tool_m = _in_range("tool_m", tool_m, 0.0, 0.5, "m")
         self.image_px = _image_px(image_px)
+        if not isinstance(camera_occluder, bool | np.bool_):
+            raise ConfigError(
+                f"camera_occluder: must be true or false, got {shorten(camera_occluder)}"
+            )
         if control not in CONTROL_MODES:
             raise ConfigError(
                 f"control: must be one of {', '.join(CONTROL_MODES)}, got {control!r}"
@@ -336,6 +366,8 @@ class ArmReachEnv(gym.Env):
             "tool point", MARKER_RADIUS_M, world.tip_position(), TIP_MARKER_RGBA
         )
         self._view_matrix, self._projection_matrix = opengl_matrices(self.camera)
+        if camera_occluder:
+            self._add_occluder()
         self._camera: PointCamera | RenderedCamera
         if camera == "rendered":
             self._camera = RenderedCamera(
@@ -470,6 +502,21 @@ class ArmReachEnv(gym.Env):
         width, height = self.camera_size_px
         pose = look_at(eye, centre)
         return pinhole_camera(pose, width, height, np.deg2rad(60.0), camera_hz, noise_px)
+
+    def _add_occluder(self) -> None:
+        """A seedling tray on a shelf between the camera and the cells: its edge lies on the
+        line of sight to the cells' centre, so it hides part of the view of the targets (and
+        of the tool-point marker near them) in both camera modes (it has a collision shape,
+        so the projected camera's ray test meets it too)."""
+        world = self._world()
+        cells = self.cell_targets_m if len(self.cell_targets_m) else self._workspace_centre[None]
+        centre = np.mean(cells, axis=0)
+        eye = self.camera.base_from_camera[:3, 3]
+        point = centre + OCCLUDER_FRACTION * (eye - centre)
+        half = np.array(OCCLUDER_HALF_EXTENTS_M)
+        # the tray's top face through the line of sight; its -y edge on the line
+        position = point + np.array([0.0, half[1], -half[2]])
+        world.add_box("occluding tray", half, position, (0.1, 0.1, 0.1, 1.0))
 
     def _rendered_noise_px(self, sensor_noise_px: float) -> float:
         """The rendered camera's pixel noise as the agent is told it: the measured detection
