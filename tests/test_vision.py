@@ -239,3 +239,37 @@ def test_demo_with_the_rendered_camera_reaches(robot, control, tmp_path):
     assert main([*args, "--episodes", "5", "--out", str(out), "--no-log", "--quiet"]) == 0
     summary = json.loads((out / "summary.json").read_text())
     assert summary["success_rate"] >= 0.8
+
+
+@pytest.mark.parametrize("robot", ARMS)
+def test_the_tool_point_is_where_the_agent_models_the_tip(robot):
+    from pathlib import Path
+
+    from blanket.body import ArmModel
+    from blanket.sim.robots import builtin_robot
+    from blanket_envs.arm_reach import ROBOT_TOOL_M
+
+    env = ArmReachEnv(robot=robot, camera="rendered")
+    again = ArmReachEnv(robot=robot, tool_m=ROBOT_TOOL_M[robot])
+    d = env.description
+    assert d.end_effector == "tool_point" and again.description.urdf_path == d.urdf_path
+    package = Path(blanket.__file__).resolve().parents[2]
+    assert package not in Path(d.urdf_path).resolve().parents  # generated outside the package
+    model = ArmModel.from_urdf(d.urdf_path, d.end_effector, joint_names=d.joint_names)
+    world = env.world
+    link = world.client.getJointInfo(world.robot, world.tip_link)[16]  # the tool's parent
+    assert world.client.getJointInfo(world.robot, link)[12].decode() == (
+        builtin_robot(robot).end_effector
+    )
+    for seed in range(3):
+        _, info = env.reset(seed=seed)
+        truth = info["external"]
+        np.testing.assert_allclose(
+            model.tip_position(truth["joint_angle_rad"]), truth["tip_position_m"], atol=1e-6
+        )
+        state = world.client.getLinkState(world.robot, link, computeForwardKinematics=True)
+        axis = np.array(world.client.getMatrixFromQuaternion(state[5])).reshape(3, 3)[:, 2]
+        expected = np.array(state[4]) + ROBOT_TOOL_M[robot] * axis
+        np.testing.assert_allclose(truth["tip_position_m"], expected, atol=1e-9)
+    env.close()
+    again.close()
