@@ -273,3 +273,12 @@ def test_the_tool_point_is_where_the_agent_models_the_tip(robot):
         np.testing.assert_allclose(truth["tip_position_m"], expected, atol=1e-9)
     env.close()
     again.close()
+
+
+def test_demo_camera_flag_refuses_bad_values(tmp_path, capsys):
+    from blanket.cli import main
+
+    assert main(["demo", "--camera", "photo", "--out", str(tmp_path / "a")]) == 2
+    assert "--camera" in capsys.readouterr().err
+    assert main(["demo", "--robot", "rover", "--camera", "rendered"]) == 2
+    assert "--camera" in capsys.readouterr().err
