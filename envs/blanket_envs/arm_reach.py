@@ -197,10 +197,6 @@ class ArmReachEnv(gym.Env):
         camera_occluder: bool = False,
     ) -> None:
         super().__init__()
-        if camera not in CAMERA_MODES:
-            raise ConfigError(
-                f"camera: must be one of {', '.join(CAMERA_MODES)}, got {shorten(camera)}"
-            )
         if urdf is None:
             spec = builtin_robot(robot)
             urdf_path = spec.urdf_path
