@@ -16,7 +16,9 @@ per row:
 * ``reached``: episodes reached within the env's 1 cm tolerance (held 0.25 s), and the median
   final error.
 
-``--option KEY=VALUE`` (repeatable) passes agent options: ``--option learn_motor_precision=false
+``--env-option KEY=VALUE`` (repeatable) passes env keywords (e.g. ``--env-option
+camera=rendered --env-option camera_occluder=true``). ``--option KEY=VALUE`` (repeatable)
+passes agent options: ``--option learn_motor_precision=false
 --option velocity_step_sd_rad_s=0 --option velocity_step_gain=0`` is the model before issue 17
 (a fixed efference copy, white-jerk motion only); ``--option learn_precision=true`` learns the
 sensors' precisions (what ``sensor-noise-x3`` needs). pybullet prints its own warnings on
@@ -70,6 +72,9 @@ def main() -> None:
     parser.add_argument("--conditions", default=",".join(PRESETS))
     parser.add_argument("--controls", default="velocity,torque")
     parser.add_argument("--option", action="append", default=[], metavar="KEY=VALUE")
+    parser.add_argument(
+        "--env-option", action="append", default=[], metavar="KEY=VALUE", help="env keyword"
+    )
     parser.add_argument("--per-episode", action="store_true", help="print every episode's NEES")
     args = parser.parse_args()
     if args.episodes < 1:
@@ -84,14 +89,22 @@ def main() -> None:
             raise SystemExit(f"--controls: velocity or torque, got {c!r}")
     conditions = resolve_conditions([c for c in args.conditions.split(",") if c])
     options: dict[str, object] = {}
-    for item in args.option:
-        key, sep, raw = item.partition("=")
-        if not sep:
-            raise SystemExit(f"--option: expected KEY=VALUE, got {item!r}")
-        options[key.strip()] = _value(raw.strip())
+    env_options: dict[str, object] = {}
+    for flag, items, into in (
+        ("--option", args.option, options),
+        ("--env-option", args.env_option, env_options),
+    ):
+        for item in items:
+            key, sep, raw = item.partition("=")
+            if not sep:
+                raise SystemExit(f"{flag}: expected KEY=VALUE, got {item!r}")
+            into[key.strip()] = _value(raw.strip())
 
     seeds = [args.seed + i for i in range(args.episodes)]
-    print(f"episodes {args.episodes} (seeds {seeds[0]}..{seeds[-1]}), options {options or '{}'}")
+    print(
+        f"episodes {args.episodes} (seeds {seeds[0]}..{seeds[-1]}), options {options or '{}'}, "
+        f"env options {env_options or '{}'}"
+    )
     print(
         f"{'arm':<6}{'control':<9}{'condition':<23}{'NEES med':>9}{'max':>9}{'ratio':>7}"
         f"{'honest':>8}{'reached':>9}{'final cm':>9}{'s':>6}"
@@ -107,6 +120,7 @@ def main() -> None:
                     args.episode_s,
                     conditions=condition.parameters,
                     **{k: v for k, v in ARMS[arm].items() if k != "robot"},
+                    **env_options,
                 )
                 try:
                     agent = ArmAgent.from_env(env, **{**condition.model_options, **options})

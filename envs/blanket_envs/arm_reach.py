@@ -22,11 +22,20 @@ import numpy as np
 from gymnasium import spaces
 
 from blanket.description import ArmDescription, CameraDescription
-from blanket.errors import ConfigError
+from blanket.errors import ConfigError, shorten
 from blanket.sensors.camera import PointCamera, look_at, opengl_matrices, pinhole_camera
 from blanket.sensors.clip import clip_values as _clip
 from blanket.sensors.encoders import JointEncoders
+from blanket.sensors.render import (
+    MARKER_RADIUS_M,
+    TARGET_MARKER_RGBA,
+    TIP_MARKER_RGBA,
+    RenderedCamera,
+    detection_sd_px,
+    marker_radius_px,
+)
 from blanket.sim.arm_world import CONTROL_MODES, ArmWorld
+from blanket.sim.bullet import pybullet
 from blanket.sim.robots import builtin_robot, default_home
 from blanket.sim.urdf_limits import read_joint_limits
 from blanket.success import HOLD_S, HeldInside
@@ -38,6 +47,7 @@ from blanket_envs.greenhouse import (
     build_bench,
     horizontal_reach_m,
 )
+from blanket_envs.tool import tool_urdf
 
 __all__ = ["ArmReachEnv", "PlanarReachEnv", "PLANAR_URDF", "SUCCESS_HOLD_S"]
 
@@ -61,6 +71,21 @@ TARGET_BOUND_M = 100.0
 REACH_SAMPLES = 2000
 
 TARGET_MODES = ("bench", "random")
+#: How the camera sees: project the marker centres (a keypoint model with Gaussian noise and a
+#: ray test) or render frames and detect the markers in the pixels.
+CAMERA_MODES = ("projected", "rendered")
+#: Frame size (width, height) of each camera mode when ``camera_size_px`` is not given.
+DEFAULT_CAMERA_SIZE_PX = {"projected": (640, 480), "rendered": (320, 240)}
+#: Tool length (m, along the end-effector link's z axis) in rendered mode when ``tool_m`` is
+#: not given: the shortest of 0.03, 0.06, 0.09, 0.12 m at which the marker was seen in most
+#: random postures from the default camera (the iiwa's link origin lies inside the wrist).
+ROBOT_TOOL_M = {"iiwa": 0.12, "panda": 0.03, "xarm6": 0.06}
+#: Side of the square ``image`` observation when ``image_px`` is True.
+IMAGE_PX = 84
+#: The occluding tray of ``camera_occluder``: half extents (m) of a seedling tray on a shelf,
+#: and how far along the line from the cells' centre to the camera it stands (0 .. 1).
+OCCLUDER_HALF_EXTENTS_M = (0.15, 0.10, 0.01)
+OCCLUDER_FRACTION = 0.3
 
 
 def _positive(name: str, value: float) -> float:
@@ -127,6 +152,25 @@ class ArmReachEnv(gym.Env):
         (default ``"bench"`` for built-in robots, ``"random"`` for a custom URDF).
     render_mode : {None, "rgb_array", "human"}
         ``rgb_array`` renders the scenario camera's view; ``human`` opens a pybullet GUI.
+    camera : {"projected", "rendered"}
+        ``projected``: the marker centres are projected through the pinhole model, with
+        ``camera_noise_px`` Gaussian noise and a ray test for occlusion. ``rendered``: each
+        camera frame is rendered headless (TinyRenderer) and the magenta tool-point marker and
+        the green target marker are found by colour (:mod:`blanket.sensors.render`); the
+        agent is told the measured detection error combined with ``camera_noise_px``, which
+        is added to each detected centre.
+    camera_size_px : (int, int), optional
+        Frame width and height (default 640x480 projected, 320x240 rendered).
+    tool_m : float, optional
+        A straight tool of this length (m) along the end-effector link's z axis; its end, the
+        tool point, becomes the tip (link ``tool_point`` of a generated URDF). Default 0 (the
+        end-effector link origin) in projected mode and, in rendered mode, the built-in arm's
+        :data:`ROBOT_TOOL_M` (the iiwa's link origin lies inside its wrist).
+    image_px : bool or int, optional
+        Add an ``image`` observation: the camera's view as (side, side, 3) uint8, side 84 for
+        True, updated on camera frames.
+    camera_occluder : bool
+        Put a seedling tray on a shelf between the camera and the cells, hiding part of them.
     """
 
     metadata = {"render_modes": ["rgb_array", "human"], "render_fps": 30}
@@ -146,6 +190,11 @@ class ArmReachEnv(gym.Env):
         camera_noise_px: float = 2.0,
         targets: str | None = None,
         render_mode: str | None = None,
+        camera: str = "projected",
+        camera_size_px: tuple[int, int] | None = None,
+        tool_m: float | None = None,
+        image_px: int | bool | None = None,
+        camera_occluder: bool = False,
     ) -> None:
         super().__init__()
         if urdf is None:
@@ -157,6 +206,8 @@ class ArmReachEnv(gym.Env):
             home: np.ndarray | None = np.array(spec.home_rad)
             margin = spec.tip_view_margin_m
             targets = "bench" if targets is None else targets
+            if tool_m is None:
+                tool_m = ROBOT_TOOL_M.get(robot, 0.0) if camera == "rendered" else 0.0
         else:
             urdf_path = str(Path(urdf).expanduser().resolve())
             if not Path(urdf_path).is_file():
@@ -166,6 +217,7 @@ class ArmReachEnv(gym.Env):
             tip, controlled, held, home = end_effector, None, {}, None
             margin = TIP_VIEW_MARGIN_M
             targets = "random" if targets is None else targets
+            tool_m = 0.0 if tool_m is None else tool_m
         self._setup(
             urdf_path=urdf_path,
             end_effector=tip,
@@ -183,6 +235,11 @@ class ArmReachEnv(gym.Env):
             targets=targets,
             render_mode=render_mode,
             tip_view_margin_m=margin,
+            camera=camera,
+            camera_size_px=camera_size_px,
+            tool_m=tool_m,
+            image_px=image_px,
+            camera_occluder=camera_occluder,
         )
 
     # ================================================================== setup
@@ -204,9 +261,26 @@ class ArmReachEnv(gym.Env):
         targets: str,
         render_mode: str | None,
         tip_view_margin_m: float = TIP_VIEW_MARGIN_M,
+        camera: str = "projected",
+        camera_size_px: tuple[int, int] | None = None,
+        tool_m: float = 0.0,
+        image_px: int | bool | None = None,
+        camera_occluder: bool = False,
     ) -> None:
         self.world: ArmWorld | None = None
         self.tip_view_margin_m = float(tip_view_margin_m)
+        if camera not in CAMERA_MODES:
+            raise ConfigError(
+                f"camera: must be one of {', '.join(CAMERA_MODES)}, got {shorten(camera)}"
+            )
+        self.camera_mode = camera
+        self.camera_size_px = _camera_size(camera, camera_size_px)
+        self.tool_m = _in_range("tool_m", tool_m, 0.0, 0.5, "m")
+        self.image_px = _image_px(image_px)
+        if not isinstance(camera_occluder, bool | np.bool_):
+            raise ConfigError(
+                f"camera_occluder: must be true or false, got {shorten(camera_occluder)}"
+            )
         if control not in CONTROL_MODES:
             raise ConfigError(
                 f"control: must be one of {', '.join(CONTROL_MODES)}, got {control!r}"
@@ -244,6 +318,10 @@ class ArmReachEnv(gym.Env):
         self.targets = targets
         self.render_mode = render_mode
         read_joint_limits(urdf_path)  # fail early, with a one-line message, on a bad URDF
+        if self.tool_m > 0.0:
+            # the marker sits on a tool point outside the wrist: the tool link is the new tip
+            urdf_path, end_effector = tool_urdf(urdf_path, end_effector, self.tool_m)
+            self.tip_view_margin_m = MARKER_RADIUS_M
 
         world = ArmWorld(
             urdf_path,
@@ -273,8 +351,41 @@ class ArmReachEnv(gym.Env):
         )
         self._build_scenery()
         self.camera: CameraDescription = self._default_camera(camera_hz, camera_noise_px)
-        self._camera = PointCamera(self.camera, self.control_hz, _weak_method(self._line_of_sight))
-        self._target_marker = world.add_marker("target", 0.012, self._reach_samples[0])
+        if camera == "rendered":
+            self.camera = dataclasses.replace(
+                self.camera, pixel_noise_px=self._rendered_noise_px(camera_noise_px)
+            )
+        self._target_marker = world.add_marker(
+            "target", MARKER_RADIUS_M, self._reach_samples[0], TARGET_MARKER_RGBA
+        )
+        self._tip_marker = world.add_marker(
+            "tool point", MARKER_RADIUS_M, world.tip_position(), TIP_MARKER_RGBA
+        )
+        self._view_matrix, self._projection_matrix = opengl_matrices(self.camera)
+        if camera_occluder:
+            self._add_occluder()
+        self._camera: PointCamera | RenderedCamera
+        if camera == "rendered":
+            self._camera = RenderedCamera(
+                self.camera,
+                self.control_hz,
+                _weak_method(self._render_frame),
+                {"tip": TIP_MARKER_RGBA, "target": TARGET_MARKER_RGBA},
+                sensor_noise_px=camera_noise_px,
+            )
+        else:
+            self._camera = PointCamera(
+                self.camera, self.control_hz, _weak_method(self._line_of_sight)
+            )
+        self._image_camera: CameraDescription | None = None
+        if self.image_px is not None:
+            pose = self.camera.base_from_camera
+            fov = 2.0 * np.arctan(0.5 * self.camera.height_px / self.camera.fy_px)
+            self._image_camera = pinhole_camera(
+                pose, self.image_px, self.image_px, fov, camera_hz, 0.0
+            )
+            self._image_matrices = opengl_matrices(self._image_camera)
+            self._image = np.zeros((self.image_px, self.image_px, 3), dtype=np.uint8)
 
         self.description = ArmDescription(
             urdf_path=world.urdf_path,
@@ -328,6 +439,10 @@ class ArmReachEnv(gym.Env):
                 "camera_fresh": spaces.Discrete(2),
             }
         )
+        if self.image_px is not None:
+            self.observation_space.spaces["image"] = spaces.Box(
+                0, 255, shape=(self.image_px, self.image_px, 3), dtype=np.uint8
+            )
         # the hot path's precomputed pieces (step, _observation, _info)
         self._action_low = np.asarray(self.action_space.low, dtype=float)
         self._action_high = np.asarray(self.action_space.high, dtype=float)
@@ -380,7 +495,63 @@ class ArmReachEnv(gym.Env):
         centre = np.array([0.45 * self.reach_m, 0.0, 0.2 * self.reach_m])
         direction = np.array([1.0, -0.8, 0.5])
         eye = centre + 2.0 * self.reach_m * direction / np.linalg.norm(direction)
-        return pinhole_camera(look_at(eye, centre), 640, 480, np.deg2rad(60.0), camera_hz, noise_px)
+        width, height = self.camera_size_px
+        pose = look_at(eye, centre)
+        return pinhole_camera(pose, width, height, np.deg2rad(60.0), camera_hz, noise_px)
+
+    def _add_occluder(self) -> None:
+        """A seedling tray on a shelf between the camera and the cells: its edge lies on the
+        line of sight to the cells' centre, so it hides part of the view of the targets (and
+        of the tool-point marker near them) in both camera modes (it has a collision shape,
+        so the projected camera's ray test meets it too)."""
+        world = self._world()
+        cells = self.cell_targets_m if len(self.cell_targets_m) else self._workspace_centre[None]
+        centre = np.mean(cells, axis=0)
+        eye = self.camera.base_from_camera[:3, 3]
+        point = centre + OCCLUDER_FRACTION * (eye - centre)
+        half = np.array(OCCLUDER_HALF_EXTENTS_M)
+        # the tray's top face through the line of sight; its -y edge on the line
+        position = point + np.array([0.0, half[1], -half[2]])
+        world.add_box("occluding tray", half, position, (0.1, 0.1, 0.1, 1.0))
+
+    def _rendered_noise_px(self, sensor_noise_px: float) -> float:
+        """The rendered camera's pixel noise as the agent is told it: the measured detection
+        error of a marker at the workspace centre's distance (:func:`detection_sd_px`) and the
+        added sensor noise, independent, so their variances add."""
+        distance = float(
+            np.linalg.norm(self.camera.base_from_camera[:3, 3] - self._workspace_centre)
+        )
+        radius = marker_radius_px(self.camera, distance, MARKER_RADIUS_M)
+        return float(np.hypot(detection_sd_px(radius), sensor_noise_px))
+
+    def _render_frame(self) -> np.ndarray:
+        """The camera's view now, (height, width, 4) uint8 RGBA (TinyRenderer, headless; no
+        segmentation mask); the tool-point marker is moved onto the tip first."""
+        return self._render_view(
+            self.camera.width_px, self.camera.height_px, self._view_matrix, self._projection_matrix
+        )
+
+    def _render_view(
+        self, width: int, height: int, view: list[float], projection: list[float]
+    ) -> np.ndarray:
+        world = self._world()
+        world.move_body(self._tip_marker, world.tip_position())
+        rgba = world.client.getCameraImage(
+            width,
+            height,
+            viewMatrix=view,
+            projectionMatrix=projection,
+            renderer=pybullet.ER_TINY_RENDERER,
+            flags=pybullet.ER_NO_SEGMENTATION_MASK,
+        )[2]
+        return np.asarray(rgba, dtype=np.uint8).reshape(height, width, 4)
+
+    def _render_image(self) -> None:
+        """The ``image`` observation: a small RGB frame of the same camera (updated on camera
+        frames only)."""
+        view, projection = self._image_matrices
+        side = self._image.shape[0]
+        np.copyto(self._image, self._render_view(side, side, view, projection)[:, :, :3])
 
     def _sample_target(self) -> np.ndarray:
         if self.targets == "bench":
@@ -466,6 +637,8 @@ class ArmReachEnv(gym.Env):
         angle, velocity = world.joint_state()
         tip = world.tip_position()
         self._camera.reset(self._camera_points(tip), self.np_random)
+        if self._image_camera is not None:
+            self._render_image()
         obs = self._observation(angle, velocity, True)
         info = self._info(angle, velocity, tip, _distance(tip, self._target))
         return obs, info
@@ -498,6 +671,8 @@ class ArmReachEnv(gym.Env):
         angle, velocity = world.joint_state()
         tip = world.tip_position()
         fresh = self._camera.advance(self._camera_points(tip), self.np_random)
+        if fresh and self._image_camera is not None:
+            self._render_image()
         obs = self._observation(angle, velocity, fresh)
 
         self._step_count += 1
@@ -512,8 +687,10 @@ class ArmReachEnv(gym.Env):
         """The scenario camera's view (rgb_array) as (height, width, 3) uint8; None for human."""
         if self.render_mode != "rgb_array":
             return None
-        view, projection = opengl_matrices(self.camera)
-        return self._world().render(view, projection, self.camera.width_px, self.camera.height_px)
+        world = self._world()
+        world.move_body(self._tip_marker, world.tip_position())
+        view, projection = self._view_matrix, self._projection_matrix
+        return world.render(view, projection, self.camera.width_px, self.camera.height_px)
 
     def close(self) -> None:
         """Disconnect the pybullet client (safe to call more than once)."""
@@ -571,7 +748,7 @@ class ArmReachEnv(gym.Env):
             self._tip_pixel = _clip(pixel["tip"], self._pixel_low, self._pixel_high)
             self._target_pixel = _clip(pixel["target"], self._pixel_low, self._pixel_high)
         visible = camera.visible
-        return {
+        obs = {
             "joint_angle_rad": _clip(read_angle, self._obs_angle_low, self._obs_angle_high),
             "joint_velocity_rad_s": _clip(
                 read_velocity, self._neg_velocity_bound, self._velocity_bound
@@ -583,6 +760,9 @@ class ArmReachEnv(gym.Env):
             "target_visible": int(visible["target"]),
             "camera_fresh": int(fresh),
         }
+        if self._image_camera is not None:
+            obs["image"] = self._image.copy()
+        return obs
 
     def _info(
         self, angle: np.ndarray, velocity: np.ndarray, tip: np.ndarray, distance: float
@@ -601,12 +781,51 @@ class ArmReachEnv(gym.Env):
                 "joint_velocity_rad_s": velocity.copy(),
                 "tip_position_m": tip.copy(),
                 "target_position_m": self._target.copy(),
+                # the true projection of the marker centres, in every camera mode
+                "tip_pixel_px": self.camera.project(tip),
+                "target_pixel_px": self.camera.project(self._target),
                 "commanded_action": self._last_action.copy(),
                 "payload_kg": world.payload_kg,
                 "push_force_n": world.push_force_n,
                 "target_velocity_m_s": self._target_velocity.copy(),
             },
         }
+
+
+def _camera_size(camera: str, size: Any) -> tuple[int, int]:
+    """``camera_size_px`` checked: (width, height), each an integer in [16, 4096]."""
+    if size is None:
+        return DEFAULT_CAMERA_SIZE_PX[camera]
+    try:
+        width, height = size
+    except (TypeError, ValueError):
+        raise ConfigError(
+            f"camera_size_px: expected (width, height) in pixels, got {shorten(size)}"
+        ) from None
+    for value in (width, height):
+        if isinstance(value, bool) or not isinstance(value, int | np.integer):
+            raise ConfigError(
+                f"camera_size_px: width and height must be integers in [16, 4096], got {size!r}"
+            )
+        if not 16 <= value <= 4096:
+            raise ConfigError(
+                f"camera_size_px: width and height must be integers in [16, 4096], got {size!r}"
+            )
+    return int(width), int(height)
+
+
+def _image_px(value: Any) -> int | None:
+    """``image_px`` checked: None/False (no image), True (:data:`IMAGE_PX`) or a side in
+    [16, 512]."""
+    if value is None or value is False:
+        return None
+    if value is True:
+        return IMAGE_PX
+    if not isinstance(value, int | np.integer) or not 16 <= value <= 512:
+        raise ConfigError(
+            f"image_px: must be true, false or an integer side in [16, 512], got {shorten(value)}"
+        )
+    return int(value)
 
 
 def _distance(a: np.ndarray, b: np.ndarray) -> float:
@@ -681,7 +900,8 @@ class PlanarReachEnv(ArmReachEnv):
         height = 1.1 * self.reach_m / np.tan(0.5 * fov)
         eye = self._workspace_centre + np.array([0.0, 0.0, height])
         pose = look_at(eye, self._workspace_centre, up=(1.0, 0.0, 0.0))
-        return pinhole_camera(pose, 640, 480, fov, camera_hz, noise_px)
+        width, height = self.camera_size_px
+        return pinhole_camera(pose, width, height, fov, camera_hz, noise_px)
 
     def _sample_target(self) -> np.ndarray:
         return self._random_reachable_point(min_height=-np.inf, min_radius=self.MIN_TARGET_RADIUS_M)

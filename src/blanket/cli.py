@@ -96,6 +96,13 @@ def build_parser() -> argparse.ArgumentParser:
         metavar="MODE",
         help="velocity or torque (arms only; default velocity)",
     )
+    demo.add_argument(
+        "--camera",
+        default=None,
+        metavar="MODE",
+        help="projected (marker centres projected, default) or rendered (frames rendered and "
+        "the markers detected in the pixels; arms only)",
+    )
     _add_run_options(demo, episodes_default=5)
 
     run = sub.add_parser(
@@ -139,12 +146,19 @@ def _demo_scenario(args: argparse.Namespace) -> Any:
         control = args.control or "velocity"
         if control not in ("velocity", "torque"):
             raise ConfigError(f"--control must be velocity or torque, got {shorten(control)}")
+        camera = args.camera or "projected"
+        if camera not in ("projected", "rendered"):
+            raise ConfigError(f"--camera must be projected or rendered, got {shorten(camera)}")
+        suffix = "-rendered" if camera == "rendered" else ""
         return Scenario(
             env="blanket/arm-reach-v0",
-            env_options={"robot": robot, "control": control},
-            name=f"greenhouse-bench-{robot}-{control}",
+            env_options={"robot": robot, "control": control}
+            | ({"camera": camera} if args.camera else {}),
+            name=f"greenhouse-bench-{robot}-{control}{suffix}",
         )
     if robot in BASE_ROBOTS:
+        if args.camera is not None:
+            raise ConfigError(f"--camera applies to the arms ({', '.join(ARM_ROBOTS)})")
         if args.control is not None:
             raise ConfigError(
                 f"--control applies to the arms ({', '.join(ARM_ROBOTS)}); the {robot} takes "
