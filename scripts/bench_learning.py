@@ -4,7 +4,7 @@ Usage::
 
     python scripts/bench_learning.py [--episodes 20] [--warmup 5]
                                      [--arms iiwa,panda,xarm6,own,seedling]
-                                     [--parts lengths,payload,timing]
+                                     [--parts lengths,image,payload,timing]
 
 Every episode runs through the one loop (:func:`blanket.rollout.rollout`, by way of
 :func:`blanket.bench.evaluate.run_policy_episodes`) in the bench's env
@@ -21,6 +21,11 @@ Part ``lengths``: the body model's link lengths 3 % long (condition ``model_leng
 script prints the error of the shared scale and of each segment's factor (placements that
 point the same way in every posture share one; see ``collinear_length_segments``), with its
 posterior sd, in per cent of the true length.
+
+Part ``image``: the same miscalibration without learning, the Cartesian goal (row
+``active-inference``) against the goal in the image (``active-inference+image``,
+``goal_space = "image"``), and the image goal with 30 % of the camera frames dropped
+(condition ``camera_dropout_probability = 0.3``).
 
 Part ``payload``: the own arm under torque control with an unmodelled 1.5 kg payload (condition
 ``payload_kg = 1.5``). Rows: ``active-inference-torque`` (no learning);
@@ -179,6 +184,26 @@ def lengths(arm: str, warmup: int, episodes: int) -> None:
         env.close()
 
 
+def image(arm: str, warmup: int, episodes: int) -> None:
+    """Lengths 3 % long, no learning: the Cartesian goal against the image goal, then the
+    image goal with 30 % of the camera frames dropped; the same seeds as part ``lengths``'
+    measured episodes (the image goal has nothing to warm up)."""
+    seeds = list(range(warmup, warmup + episodes))
+    for extra, names in (
+        ({}, ("active-inference", "active-inference+image")),
+        ({"camera_dropout_probability": 0.3}, ("active-inference+image",)),
+    ):
+        conditions = {"model_length_scale": LENGTH_ERROR, **extra}
+        env = _env(arm, "velocity", conditions)
+        try:
+            for name in names:
+                m = _measure(env, _build(name, env, conditions), seeds)
+                label = name + (" (30 % frames dropped)" if extra else "")
+                print(f"  {arm:<6} {label:<44} {_reach_text(m)}", flush=True)
+        finally:
+            env.close()
+
+
 def payload(warmup: int, episodes: int) -> None:
     conditions = {"payload_kg": PAYLOAD_KG}
     warm = list(range(warmup))
@@ -244,14 +269,16 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--episodes", type=int, default=20, help="measured episodes per row")
     parser.add_argument("--warmup", type=int, default=5, help="warm-up episodes per row")
     parser.add_argument("--arms", default="iiwa,panda,xarm6,own,seedling")
-    parser.add_argument("--parts", default="lengths,payload,timing")
+    parser.add_argument("--parts", default="lengths,image,payload,timing")
     args = parser.parse_args(argv)
     if args.episodes < 1 or args.warmup < 0:
         parser.error("--episodes must be >= 1 and --warmup >= 0")
     parts = args.parts.split(",")
-    unknown = set(parts) - {"lengths", "payload", "timing"}
+    unknown = set(parts) - {"lengths", "image", "payload", "timing"}
     if unknown:
-        parser.error(f"--parts: unknown {sorted(unknown)}; choose from lengths, payload, timing")
+        parser.error(
+            f"--parts: unknown {sorted(unknown)}; choose from lengths, image, payload, timing"
+        )
     if "lengths" in parts:
         print(
             f"link lengths {100 * (LENGTH_ERROR - 1):.0f} % long, velocity control, "
@@ -259,6 +286,13 @@ def main(argv: list[str] | None = None) -> int:
         )
         for arm in args.arms.split(","):
             lengths(arm, args.warmup, args.episodes)
+    if "image" in parts:
+        print(
+            f"link lengths {100 * (LENGTH_ERROR - 1):.0f} % long, no learning, velocity control: "
+            f"goal_space cartesian against image, {args.episodes} episodes of {EPISODE_S:g} s"
+        )
+        for arm in args.arms.split(","):
+            image(arm, args.warmup, args.episodes)
     if "payload" in parts:
         print(
             f"unmodelled {PAYLOAD_KG} kg payload, own 3-DoF arm, torque control, "

@@ -26,6 +26,7 @@ from blanket.agent.body_learning import (
     camera_length_terms,
     collinear_length_segments,
     laplace_parameter_step,
+    segment_spread_step,
     torque_payload_terms,
 )
 from blanket.body import ArmModel
@@ -213,6 +214,70 @@ def test_length_factors_from_tip_positions_reach_the_bayesian_posterior(arms):
     assert learner.segment_names[0] == "base_yaw+shoulder_pitch"
     assert s[0] == s[1]
     assert 0.1 * s[0] + 0.05 * s[1] == pytest.approx(0.15 * 0.97, abs=3e-4)
+
+
+def test_segment_spread_is_the_em_update_and_keeps_the_data(arms):
+    """One EM step of the segments' shared prior variance: tau^2 = mean((m - mu)^2 + S_kk)
+    (Bishop 2006, eq. 9.63), and the new posterior is the Bayesian posterior of the same data
+    under the new prior (eqs. 3.50-3.51)."""
+    rng = np.random.default_rng(7)
+    k, N, beta = 5, 40, 1.0 / 0.05**2
+    Phi = rng.standard_normal((N, k))
+    t = Phi @ rng.normal(0.0, 0.1, k) + rng.standard_normal(N) / np.sqrt(beta)
+    m0 = np.array([1.0, 0.0, 0.01, 0.0, -0.02])
+    P0 = np.diag([1 / 0.1**2, *[1 / 0.02**2] * 4])
+    m, P = _bishop_posterior(Phi, t, m0, P0, beta)
+    block = np.arange(1, k)
+    m1, P1, P01, tau = segment_spread_step(m, P, m0, P0, block)
+    S = np.linalg.inv(P)
+    tau2 = np.mean((m[block] - m0[block]) ** 2 + np.diag(S)[block])
+    assert tau == pytest.approx(np.sqrt(tau2), rel=1e-12)
+    np.testing.assert_allclose(np.diag(P01), [1 / 0.1**2, *[1 / tau2] * 4], rtol=1e-12)
+    mN, PN = _bishop_posterior(Phi, t, m0, P01, beta)
+    np.testing.assert_allclose(m1, mN, atol=1e-10)
+    np.testing.assert_allclose(P1, PN, rtol=1e-10)
+    # the floor holds the spread when the deviations vanish
+    *_, tau_floor = segment_spread_step(m0, P0 * 1e8, m0, P0, block, floor=0.004)
+    assert tau_floor == 0.004
+
+
+@pytest.mark.parametrize("truth", ["uniform", "one segment longer"])
+def test_learned_spread_pins_weak_segments_without_hiding_a_real_one(arms, truth):
+    """Panda, tip pixels from a few postures (its short wrist offsets barely seen): with the
+    error uniform the spread shrinks and every factor lands near the truth; with one long
+    segment 2 % longer than the rest the spread stays wide enough to keep it."""
+    description = arms["panda"]
+    body = _body(description)
+    learner = BodyLearning.start(_Model(body))
+    camera = description.camera
+    factors = np.full(len(learner.names), 0.97)
+    long = learner.names.index("panda_joint5")  # 0.39 m, well seen
+    if truth != "uniform":
+        factors[long] = 0.99
+    truth_body = _body(description, link_length_scales=factors)
+    rng = np.random.default_rng(8)
+    home = np.array([0.0, -0.3, 0.0, -2.2, 0.0, 1.9, 0.785])
+    A = learner.length_map
+    for _ in range(5):
+        for q in home + 0.5 * rng.standard_normal((60, 7)):
+            y = camera.project(truth_body.tip_position(q)) + 2.0 * rng.standard_normal(2)
+            tip, D = body.tip_length_jacobian(q)
+            pixel, dpix = camera.project_with_jacobian(tip)
+            _, g_s, h_s = camera_length_terms(y - pixel, dpix, D, np.full(2, 0.25))
+            learner.mean, learner.precision = laplace_parameter_step(
+                learner.mean, learner.precision, A.T @ g_s, A.T @ h_s @ A
+            )
+            learner.frames += 1
+            learner.apply(body)
+        learner.new_episode()
+    s = learner.length_scales()
+    moves = learner.segment >= 0
+    if truth == "uniform":
+        assert learner.segment_spread < 0.005
+        assert np.abs(s[moves] / 0.97 - 1).max() < 0.005
+    else:
+        assert learner.segment_spread > 0.005
+        assert s[long] / 0.99 - 1 == pytest.approx(0.0, abs=0.005)
 
 
 class _Model:

@@ -60,6 +60,14 @@ their lengths, ``sum_i l_i s_i``, never how it splits, so they share one factor
 zero-length placement follows the shared scale alone. Which segments the camera can inform
 at all is checked once, from the tip's length Jacobian at random postures
 (:attr:`BodyLearning.segment_identifiable`).
+
+The segments' spread ``tau`` (the prior sd of ``delta``; it starts at
+``link_length_prior_sd``) is itself learned at each new episode by empirical Bayes: the EM
+update of a Gaussian prior's variance, ``tau^2 = (1/K) sum_k ((m_k - mu_k)^2 + S_kk)`` with
+the posterior mean ``m`` and covariance ``S`` (Bishop 2006, eq. 9.63, ``alpha = 1/tau^2``),
+iterated to its fixed point (:func:`segment_spread_step`). Segments the camera pins down set
+the spread; one it barely informs (a short wrist offset) is then drawn to the shared scale as
+far as the others agree with it, not held at the first guess of ``tau``.
 """
 
 from __future__ import annotations
@@ -75,6 +83,7 @@ from blanket.free_energy import chi_square_threshold
 __all__ = [
     "camera_length_terms",
     "collinear_length_segments",
+    "segment_spread_step",
     "torque_payload_terms",
     "gaussian_terms",
     "laplace_parameter_step",
@@ -101,6 +110,11 @@ GATE_FALSE_REJECTION = 1e-6
 #: Below this mass (kg) the payload's centre of mass is not learned from h = m c (kept at its
 #: prior): h / m is meaningless for a vanishing mass.
 _MIN_PAYLOAD_KG = 0.05
+#: Floor of the learned spread of the segments' factors (common practice, no source): the
+#: spread never collapses to zero, so a segment stays free to follow new data.
+MIN_SEGMENT_SPREAD = 1e-3
+#: Fixed-point iterations of the spread's EM update at a new episode (it converges in a few).
+_SPREAD_ITERATIONS = 20
 #: Floor of a learned length factor (a factor <= 0 would turn a link inside out).
 _MIN_LENGTH_SCALE = 0.2
 
@@ -191,6 +205,51 @@ def collinear_length_segments(
     rows = Vt[sv > tol * 1e3 * sv[0]]
     identifiable = np.einsum("ki,ki->i", rows, rows) > 1.0 - 1e-6
     return segment, identifiable
+
+
+def segment_spread_step(
+    mean: np.ndarray,
+    precision: np.ndarray,
+    prior_mean: np.ndarray,
+    prior_precision: np.ndarray,
+    block: np.ndarray,
+    floor: float = MIN_SEGMENT_SPREAD,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, float]:
+    """One EM step of a shared prior variance ``tau^2`` over the parameters ``block``.
+
+    E-step: the posterior ``N(m, S)``, ``S = inv(Pi)``. M-step: ``tau^2 = (1/K) sum_{k in
+    block} ((m_k - mu_k)^2 + S_kk)`` (Bishop 2006, *Pattern Recognition and Machine Learning*,
+    eq. 9.63, ``alpha = 1/tau^2``), floored at ``floor^2``. The posterior under the new prior
+    keeps the data's information ``Pi - Pi_0`` and ``Pi m - Pi_0 mu``, so
+    ``Pi' = Pi + dPi_0`` and ``m' = m + inv(Pi') dPi_0 (mu - m)`` (Bishop 2006, eqs.
+    3.50-3.51, linear-Gaussian: exact; for the camera, at the Gauss-Newton linearisation).
+
+    Parameters
+    ----------
+    mean, precision : numpy.ndarray
+        The posterior (k,), (k, k).
+    prior_mean, prior_precision : numpy.ndarray
+        The prior (k,), (k, k); its ``block`` part diagonal.
+    block : numpy.ndarray
+        Indices of the parameters that share ``tau``.
+    floor : float
+        Least ``tau``.
+
+    Returns
+    -------
+    (numpy.ndarray, numpy.ndarray, numpy.ndarray, float)
+        The new mean, precision, prior precision and ``tau``.
+    """
+    block = np.asarray(block, dtype=int)
+    cov = np.linalg.inv(precision)
+    d = mean[block] - prior_mean[block]
+    tau2 = max(float(np.mean(d * d + np.diag(cov)[block])), floor * floor)
+    new_prior = prior_precision.copy()
+    new_prior[block, block] = 1.0 / tau2
+    change = new_prior - prior_precision
+    new_precision = precision + change
+    new_mean = mean + np.linalg.solve(new_precision, change @ (prior_mean - mean))
+    return new_mean, new_precision, new_prior, float(np.sqrt(tau2))
 
 
 def torque_payload_terms(
@@ -335,6 +394,9 @@ class BodyLearning:
         Each segment's factors, joined by ``+``.
     segment_identifiable : numpy.ndarray
         Whether the tip's position can determine each segment's factor (K,).
+    segment_spread : float
+        Prior sd of the segments' deviations from the shared scale, learned by empirical
+        Bayes at each new episode.
     length_map : numpy.ndarray
         ``s = length_map @ theta[:K + 1]`` (L, K + 1).
     learn_payload : bool
@@ -387,6 +449,11 @@ class BodyLearning:
         self.length_map = np.hstack([np.ones((L, 1)), B])
         #: theta[:n_length] are the length parameters (g, delta_1..delta_K)
         self.n_length = K + 1
+        #: prior sd of the segments' deviations (learned at each new episode)
+        self.segment_spread = (
+            float(1.0 / np.sqrt(self.prior_precision[1, 1])) if K else float("nan")
+        )
+        self._frames_at_spread = 0
         self._last: _Motion | None = None
         self._episode_steps = 0
         self._applied = self.mean.copy()
@@ -504,8 +571,10 @@ class BodyLearning:
     def options(self) -> dict[str, Any]:
         """The learned values as ``[agent]`` options of a scenario (reload them to start from
         here): ``link_length_scales`` and, under torque control, ``payload_kg`` and
-        ``payload_com_m``."""
-        s = np.maximum(self.length_scales(), _MIN_LENGTH_SCALE)
+        ``payload_com_m``; with the segments' spread re-estimated, as the next episode
+        starts from them."""
+        mean = self._respread()[0] if self.frames > self._frames_at_spread else self.mean
+        s = np.maximum(self.length_map @ mean[: self.n_length], _MIN_LENGTH_SCALE)
         out: dict[str, Any] = {"link_length_scales": [round(float(x), 6) for x in s]}
         if self.learn_payload:
             m, c = self.payload()
@@ -515,9 +584,30 @@ class BodyLearning:
 
     # -- learning -------------------------------------------------------------------------
     def new_episode(self) -> None:
-        """Forget the last step's motion (the parameters stay)."""
+        """Forget the last step's motion (the parameters stay) and re-estimate the segments'
+        spread from what was learned (:func:`segment_spread_step`, iterated)."""
         self._last = None
         self._episode_steps = 0
+        if self.frames > self._frames_at_spread:
+            self._frames_at_spread = self.frames
+            self.mean, self.precision, self.prior_precision, self.segment_spread = self._respread()
+
+    def _respread(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, float]:
+        """The posterior and prior with the segments' spread at its EM fixed point (the
+        current ones with fewer than two segments)."""
+        mean, precision, prior, tau = (
+            self.mean,
+            self.precision,
+            self.prior_precision,
+            self.segment_spread,
+        )
+        if self.n_length > 2:
+            block = np.arange(1, self.n_length)
+            for _ in range(_SPREAD_ITERATIONS):
+                mean, precision, prior, tau = segment_spread_step(
+                    mean, precision, self.prior_mean, prior, block
+                )
+        return mean, precision, prior, tau
 
     def update(
         self,
