@@ -279,20 +279,15 @@ def main(argv: list[str] | None = None) -> int:
         parser.error(
             f"--parts: unknown {sorted(unknown)}; choose from lengths, image, payload, timing"
         )
-    if "lengths" in parts:
-        print(
-            f"link lengths {100 * (LENGTH_ERROR - 1):.0f} % long, velocity control, "
-            f"{args.warmup} warm-up + {args.episodes} measured episodes of {EPISODE_S:g} s"
-        )
-        for arm in args.arms.split(","):
-            lengths(arm, args.warmup, args.episodes)
-    if "image" in parts:
-        print(
-            f"link lengths {100 * (LENGTH_ERROR - 1):.0f} % long, no learning, velocity control: "
-            f"goal_space cartesian against image, {args.episodes} episodes of {EPISODE_S:g} s"
-        )
-        for arm in args.arms.split(","):
-            image(arm, args.warmup, args.episodes)
+    wrong = f"link lengths {100 * (LENGTH_ERROR - 1):.0f} % long"
+    for part, run, title in (
+        ("lengths", lengths, f"{wrong}, velocity control, {args.warmup} warm-up +"),
+        ("image", image, f"{wrong}, no learning, goal_space cartesian against image,"),
+    ):
+        if part in parts:
+            print(f"{title} {args.episodes} measured episodes of {EPISODE_S:g} s")
+            for arm in args.arms.split(","):
+                run(arm, args.warmup, args.episodes)
     if "payload" in parts:
         print(
             f"unmodelled {PAYLOAD_KG} kg payload, own 3-DoF arm, torque control, "

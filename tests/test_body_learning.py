@@ -257,18 +257,10 @@ def test_learned_spread_pins_weak_segments_without_hiding_a_real_one(arms, truth
     truth_body = _body(description, link_length_scales=factors)
     rng = np.random.default_rng(8)
     home = np.array([0.0, -0.3, 0.0, -2.2, 0.0, 1.9, 0.785])
-    A = learner.length_map
     for _ in range(5):
-        for q in home + 0.5 * rng.standard_normal((60, 7)):
-            y = camera.project(truth_body.tip_position(q)) + 2.0 * rng.standard_normal(2)
-            tip, D = body.tip_length_jacobian(q)
-            pixel, dpix = camera.project_with_jacobian(tip)
-            _, g_s, h_s = camera_length_terms(y - pixel, dpix, D, np.full(2, 0.25))
-            learner.mean, learner.precision = laplace_parameter_step(
-                learner.mean, learner.precision, A.T @ g_s, A.T @ h_s @ A
-            )
-            learner.frames += 1
-            learner.apply(body)
+        _learn_pixels(
+            learner, body, camera, truth_body, home + 0.5 * rng.standard_normal((60, 7)), rng
+        )
         learner.new_episode()
     s = learner.length_scales()
     moves = learner.segment >= 0
@@ -278,6 +270,25 @@ def test_learned_spread_pins_weak_segments_without_hiding_a_real_one(arms, truth
     else:
         assert learner.segment_spread > 0.005
         assert s[long] / 0.99 - 1 == pytest.approx(0.0, abs=0.005)
+
+
+def _learn_pixels(learner, body, camera, truth, postures, rng):
+    """Learn from the true tip's pixel (2 px noise) at each posture, one Laplace step each
+    (the camera part of ``BodyLearning.update``); returns the rows ``D(q) A`` seen."""
+    A = learner.length_map
+    seen = []
+    for q in postures:
+        y = camera.project(truth.tip_position(q)) + 2.0 * rng.standard_normal(2)
+        tip, D = body.tip_length_jacobian(q)
+        pixel, dpix = camera.project_with_jacobian(tip)
+        _, g_s, h_s = camera_length_terms(y - pixel, dpix, D, np.full(2, 0.25))
+        learner.mean, learner.precision = laplace_parameter_step(
+            learner.mean, learner.precision, A.T @ g_s, A.T @ h_s @ A
+        )
+        learner.frames += 1
+        learner.apply(body)
+        seen.append(D @ A)
+    return seen
 
 
 class _Model:
@@ -339,19 +350,8 @@ def test_a_segment_the_data_cannot_inform_is_flagged_and_keeps_its_prior(arms):
     camera = description.camera
     truth = _body(description, length_scale=0.97)
     rng = np.random.default_rng(6)
-    A = learner.length_map
-    seen = []
-    for _ in range(200):
-        q = np.array([rng.uniform(-2, 2), 0.0, 0.0])
-        y = camera.project(truth.tip_position(q)) + 2.0 * rng.standard_normal(2)
-        tip, Dq = body.tip_length_jacobian(q)
-        pixel, dpix = camera.project_with_jacobian(tip)
-        _, g_s, h_s = camera_length_terms(y - pixel, dpix, Dq, np.full(2, 0.25))
-        learner.mean, learner.precision = laplace_parameter_step(
-            learner.mean, learner.precision, A.T @ g_s, A.T @ h_s @ A
-        )
-        learner.apply(body)
-        seen.append(Dq @ A)
+    qs = np.column_stack([rng.uniform(-2, 2, 200), np.zeros(200), np.zeros(200)])
+    seen = _learn_pixels(learner, body, camera, truth, qs, rng)
     # the height is learned ...
     assert body.tip_position(np.zeros(3))[2] == pytest.approx(
         truth.tip_position(np.zeros(3))[2], abs=2e-3
