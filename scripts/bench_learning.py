@@ -121,15 +121,17 @@ def _build(name: str, env: gym.Env, conditions: dict[str, Any]) -> Any:
 
 def _compare(
     env: gym.Env, label: str, plain: str, learning: str, conditions: dict, warmup: int, n: int
-) -> tuple[Any, dict[str, Any]]:
-    """Print the row without learning; warm up the learning agent, measure it, return both."""
+) -> tuple[Any, dict[str, Any], dict[str, Any]]:
+    """Print the row without learning; warm up the learning agent, measure it; return the
+    agent, its measurement and what it had learned after the warm-up (``[agent]`` options)."""
     seeds = list(range(warmup, warmup + n))
     m = _measure(env, _build(plain, env, conditions), seeds)
     print(f"  {label:<6} {plain:<30} {_reach_text(m)}", flush=True)
     agent = _build(learning, env, conditions)
     if warmup:
         run_policy_episodes(env, agent, list(range(warmup)))
-    return agent, _measure(env, agent, seeds)
+    warm = agent.learned_options()
+    return agent, _measure(env, agent, seeds), warm
 
 
 def _tip_errors_mm(env: gym.Env, body: Any, postures: int = 500) -> np.ndarray:
@@ -150,7 +152,7 @@ def lengths(arm: str, warmup: int, episodes: int) -> None:
     conditions = {"model_length_scale": LENGTH_ERROR}
     env = _env(arm, "velocity", conditions)
     try:
-        agent, m = _compare(
+        agent, m, warm = _compare(
             env, arm, "active-inference", "active-inference+learn", conditions, warmup, episodes
         )
         learner = agent.body_learning
@@ -165,6 +167,8 @@ def lengths(arm: str, warmup: int, episodes: int) -> None:
             )
         )
         worst = max(abs(err[i]) for i in heads)
+        warm_err = 100 * (np.asarray(warm["link_length_scales"]) * LENGTH_ERROR - 1.0)
+        warm_text = ", ".join(f"{warm_err[i]:+.2f}" for i in heads)
         agent.reset()  # writes everything learned into the body model
         before, after = (
             _tip_errors_mm(env, body)
@@ -174,7 +178,8 @@ def lengths(arm: str, warmup: int, episodes: int) -> None:
             f"  {arm:<6} {'active-inference+learn':<30} {_reach_text(m)}\n"
             f"         learned: shared scale error {100 * (g * LENGTH_ERROR - 1):+.2f} % "
             f"(sd {100 * g_sd:.2f} %); worst segment {worst:.2f} %; segments (error and "
-            f"posterior sd, % of the true length): {seg}\n"
+            f"posterior sd, % of the true length): {seg}; after the {warmup} warm-up "
+            f"episodes [{warm_text}] %\n"
             f"         tip error of the body model at 500 random postures, median / 95th "
             f"percentile: {np.median(before):.1f} / {np.percentile(before, 95):.1f} mm before, "
             f"{np.median(after):.1f} / {np.percentile(after, 95):.1f} mm learned",
@@ -211,7 +216,7 @@ def payload(warmup: int, episodes: int) -> None:
     env = _env("own", "torque", conditions)
     learning = "active-inference-torque+learn"
     try:
-        agent, m = _compare(
+        agent, m, _ = _compare(
             env, "own", "active-inference-torque", learning, conditions, warmup, episodes
         )
         mass, _ = agent.body_learning.payload()
