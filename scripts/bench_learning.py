@@ -98,12 +98,20 @@ def _env(arm: str, control: str, conditions: dict[str, Any], safety: bool = True
 
 
 def _measure(env: gym.Env, policy: Any, seeds: list[int]) -> dict[str, Any]:
-    rows = [episode_metrics(t) for t in run_policy_episodes(env, policy, seeds)]
+    traces = run_policy_episodes(env, policy, seeds)
+    rows = [episode_metrics(t) for t in traces]
     finals = [r["final_error_m"] for r in rows]
+    camera = env.unwrapped.description.camera
+    # the seen tip's final distance from the target in the image (px, noise-free)
+    gaps = [
+        float(np.linalg.norm(camera.project(t.tip_m[-1]) - camera.project(t.target_start_m)))
+        for t in traces
+    ]
     return {
         "n": len(rows),
         "reached_1cm": sum(bool(r["success_1cm"]) for r in rows),
         "median_final_cm": 100 * float(np.median(finals)) if finals else float("nan"),
+        "median_pixel_gap": float(np.median(gaps)) if gaps else float("nan"),
     }
 
 
@@ -204,7 +212,11 @@ def image(arm: str, warmup: int, episodes: int) -> None:
             for name in names:
                 m = _measure(env, _build(name, env, conditions), seeds)
                 label = name + (" (30 % frames dropped)" if extra else "")
-                print(f"  {arm:<6} {label:<44} {_reach_text(m)}", flush=True)
+                print(
+                    f"  {arm:<6} {label:<44} {_reach_text(m)}  median final gap in the image "
+                    f"{m['median_pixel_gap']:.1f} px",
+                    flush=True,
+                )
         finally:
             env.close()
 
