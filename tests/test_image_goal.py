@@ -144,7 +144,7 @@ def test_the_image_goal_puts_the_real_tip_on_the_target_pixel():
             gaps[space] = np.linalg.norm(
                 camera.project(tip) - camera.project(info["external"]["target_position_m"])
             )
-        # measured: 6.4 px and 0.6 px
+        # measured: 6.4 px and 0.3 px
         assert gaps["cartesian"] > 5.0
         assert gaps["image"] < 0.3 * gaps["cartesian"] and gaps["image"] < 2.0
     finally:
