@@ -225,7 +225,7 @@ class ArmAgent(PredictMixin):
         self.state: Belief | None = None
         self.episode = EpisodeState.start(self.model)
         self._diag: dict[str, Any] = {}
-        if getattr(self, "image_goal", None) is not None:
+        if self.image_goal is not None:
             self.image_goal.reset()
         if self.body_learning is not None:
             self.body_learning.new_episode()
