@@ -24,7 +24,9 @@ from blanket.agent import ArmAgent
 from blanket.agent.body_learning import (
     BodyLearning,
     camera_length_terms,
+    collinear_length_segments,
     laplace_parameter_step,
+    segment_spread_step,
     torque_payload_terms,
 )
 from blanket.body import ArmModel
@@ -33,6 +35,8 @@ from blanket.scenario import Scenario, scenario_from_dict
 
 ASSETS = Path(__file__).resolve().parents[1] / "envs" / "blanket_envs" / "assets"
 POTTING = str(ASSETS / "potting_arm_3dof.urdf")
+#: a 4-DoF arm no setting of the project was tuned on
+SEEDLING = str(Path(__file__).resolve().parent / "data" / "seedling_picker_4dof.urdf")
 
 
 @pytest.fixture(scope="module")
@@ -42,6 +46,7 @@ def arms():
     for name, kw in (
         ("potting", dict(urdf=POTTING, end_effector="tool_tip")),
         ("panda", dict(robot="panda")),
+        ("seedling", dict(urdf=SEEDLING, end_effector="picker_tip")),
     ):
         env = gym.make("blanket/arm-reach-v0", **kw)
         out[name] = env.unwrapped.description
@@ -204,9 +209,86 @@ def test_length_factors_from_tip_positions_reach_the_bayesian_posterior(arms):
     # the links that the tip sees are pinned down (within 3 posterior sd) ...
     s, sd_s = learner.length_scales(), learner.length_scales_sd()
     assert np.all(np.abs(s[2:] - s_true[2:]) < 3 * sd_s[2:]) and sd_s[2:].max() < 2e-3
-    # ... the two collinear vertical placements only through their sum
+    # ... the two collinear vertical placements are one segment with one factor: the tip
+    # sees only their summed length
+    assert learner.segment_names[0] == "base_yaw+shoulder_pitch"
+    assert s[0] == s[1]
     assert 0.1 * s[0] + 0.05 * s[1] == pytest.approx(0.15 * 0.97, abs=3e-4)
-    assert sd_s[:2].min() > 5 * sd_s[2:].max()
+
+
+def test_segment_spread_is_the_em_update_and_keeps_the_data(arms):
+    """One EM step of the segments' shared prior variance: tau^2 = mean((m - mu)^2 + S_kk)
+    (Bishop 2006, eq. 9.63), and the new posterior is the Bayesian posterior of the same data
+    under the new prior (eqs. 3.50-3.51)."""
+    rng = np.random.default_rng(7)
+    k, N, beta = 5, 40, 1.0 / 0.05**2
+    Phi = rng.standard_normal((N, k))
+    t = Phi @ rng.normal(0.0, 0.1, k) + rng.standard_normal(N) / np.sqrt(beta)
+    m0 = np.array([1.0, 0.0, 0.01, 0.0, -0.02])
+    P0 = np.diag([1 / 0.1**2, *[1 / 0.02**2] * 4])
+    m, P = _bishop_posterior(Phi, t, m0, P0, beta)
+    block = np.arange(1, k)
+    m1, P1, P01, tau = segment_spread_step(m, P, m0, P0, block)
+    S = np.linalg.inv(P)
+    tau2 = np.mean((m[block] - m0[block]) ** 2 + np.diag(S)[block])
+    assert tau == pytest.approx(np.sqrt(tau2), rel=1e-12)
+    np.testing.assert_allclose(np.diag(P01), [1 / 0.1**2, *[1 / tau2] * 4], rtol=1e-12)
+    mN, PN = _bishop_posterior(Phi, t, m0, P01, beta)
+    np.testing.assert_allclose(m1, mN, atol=1e-10)
+    np.testing.assert_allclose(P1, PN, rtol=1e-10)
+    # the floor holds the spread when the deviations vanish
+    *_, tau_floor = segment_spread_step(m0, P0 * 1e8, m0, P0, block, floor=0.004)
+    assert tau_floor == 0.004
+
+
+@pytest.mark.parametrize("truth", ["uniform", "one segment longer"])
+def test_learned_spread_pins_weak_segments_without_hiding_a_real_one(arms, truth):
+    """Panda, tip pixels from a few postures (its short wrist offsets barely seen): with the
+    error uniform the spread shrinks and every factor lands near the truth; with one long
+    segment 2 % longer than the rest the spread stays wide enough to keep it."""
+    description = arms["panda"]
+    body = _body(description)
+    learner = BodyLearning.start(_Model(body))
+    camera = description.camera
+    factors = np.full(len(learner.names), 0.97)
+    long = learner.names.index("panda_joint5")  # 0.39 m, well seen
+    if truth != "uniform":
+        factors[long] = 0.99
+    truth_body = _body(description, link_length_scales=factors)
+    rng = np.random.default_rng(8)
+    home = np.array([0.0, -0.3, 0.0, -2.2, 0.0, 1.9, 0.785])
+    for _ in range(5):
+        _learn_pixels(
+            learner, body, camera, truth_body, home + 0.5 * rng.standard_normal((60, 7)), rng
+        )
+        learner.new_episode()
+    s = learner.length_scales()
+    moves = learner.segment >= 0
+    if truth == "uniform":
+        assert learner.segment_spread < 0.005
+        assert np.abs(s[moves] / 0.97 - 1).max() < 0.005
+    else:
+        assert learner.segment_spread > 0.005
+        assert s[long] / 0.99 - 1 == pytest.approx(0.0, abs=0.005)
+
+
+def _learn_pixels(learner, body, camera, truth, postures, rng):
+    """Learn from the true tip's pixel (2 px noise) at each posture, one Laplace step each
+    (the camera part of ``BodyLearning.update``); returns the rows ``D(q) A`` seen."""
+    A = learner.length_map
+    seen = []
+    for q in postures:
+        y = camera.project(truth.tip_position(q)) + 2.0 * rng.standard_normal(2)
+        tip, D = body.tip_length_jacobian(q)
+        pixel, dpix = camera.project_with_jacobian(tip)
+        _, g_s, h_s = camera_length_terms(y - pixel, dpix, D, np.full(2, 0.25))
+        learner.mean, learner.precision = laplace_parameter_step(
+            learner.mean, learner.precision, A.T @ g_s, A.T @ h_s @ A
+        )
+        learner.frames += 1
+        learner.apply(body)
+        seen.append(D @ A)
+    return seen
 
 
 class _Model:
@@ -225,47 +307,65 @@ class _Model:
 
 
 # ------------------------------------------------------------------------ identifiability
-def test_uninformed_parameters_stay_at_their_prior(arms):
-    """Panda placements of zero length, and the 3-DoF arm's two vertical placements that are
-    always collinear: the data cannot inform them, so their posterior is their prior."""
+@pytest.mark.parametrize(
+    "arm, segments",
+    [
+        # base and shoulder placements are both vertical in every posture: one segment
+        ("potting", ("base_yaw+shoulder_pitch", "elbow_pitch", "tool")),
+        # two zero-length placements (joint2, joint6) move nothing and get no parameter
+        (
+            "panda",
+            ("panda_joint1", "panda_joint3", "panda_joint4", "panda_joint5", "panda_joint7")
+            + ("tool",),
+        ),
+        ("seedling", ("turntable", "lift", "reach", "wrist", "tool")),
+    ],
+)
+def test_collinear_placements_share_one_factor_and_zero_lengths_none(arms, arm, segments):
+    body = _body(arms[arm])
+    learner = BodyLearning.start(_Model(body))
+    assert learner.segment_names == segments
+    assert learner.segment_identifiable.all()
+    assert learner.mean.size == 1 + len(segments)
+    idle = learner.segment < 0
+    assert idle.sum() == len(learner.names) - sum(len(n.split("+")) for n in segments)
+    # a factor that moves nothing follows the shared scale alone
+    np.testing.assert_array_equal(learner.length_map[idle, 1:], 0.0)
+
+
+def test_a_segment_the_data_cannot_inform_is_flagged_and_keeps_its_prior(arms):
+    """With the 3-DoF arm held upright (only the yaw joint turns) the tip stays on the yaw
+    axis: it sees only the arm's total height. Every direction of theta that no sensation
+    informs keeps its prior mean and precision (the identifiability guard)."""
+    description = arms["potting"]
+    body = _body(description)
+    D = np.vstack(
+        [body.tip_length_jacobian(np.array([y, 0.0, 0.0]))[1] for y in np.linspace(-2, 2, 9)]
+    )
+    segment, identifiable = collinear_length_segments(D)
+    # all four placements point up: one segment, determined (its factor is the height's)
+    np.testing.assert_array_equal(segment, [0, 0, 0, 0])
+    assert identifiable.tolist() == [True]
+    learner = BodyLearning.start(_Model(body))  # segments from postures over the limits
+    camera = description.camera
+    truth = _body(description, length_scale=0.97)
     rng = np.random.default_rng(6)
-    for arm in ("panda", "potting"):
-        description = arms[arm]
-        body = _body(description)
-        learner = BodyLearning.start(_Model(body))
-        camera = description.camera
-        informative = body.length_parameter_informative
-        mid = 0.5 * (description.lower_rad + description.upper_rad)
-        truth = _body(description, length_scale=0.97)
-        for _ in range(300):
-            q = mid + 0.4 * rng.standard_normal(description.n_joints)
-            y = camera.project(truth.tip_position(q)) + 2.0 * rng.standard_normal(2)
-            tip, D = body.tip_length_jacobian(q)
-            pixel, dpix = camera.project_with_jacobian(tip)
-            _, g_s, h_s = camera_length_terms(y - pixel, dpix, D, np.full(2, 0.25))
-            A = learner.length_map
-            learner.mean, learner.precision = laplace_parameter_step(
-                learner.mean, learner.precision, A.T @ g_s, A.T @ h_s @ A
-            )
-            learner.apply(body)
-        # informed: the shared scale moved to the truth
-        assert abs(learner.mean[0] - 0.97) < 0.01
-        if arm == "panda":
-            idle = 1 + np.flatnonzero(~informative)
-            assert idle.size >= 2
-            np.testing.assert_array_equal(learner.mean[idle], learner.prior_mean[idle])
-            np.testing.assert_array_equal(
-                learner.precision[np.ix_(idle, idle)], learner.prior_precision[np.ix_(idle, idle)]
-            )
-        else:
-            # base-to-yaw (0.1 m) and yaw-to-shoulder (0.05 m) are both vertical for every q:
-            # only 0.1 s_1 + 0.05 s_2 is seen; the direction (0.05, -0.1) keeps its prior
-            u = np.zeros(learner.mean.size)
-            u[1:3] = [0.05, -0.1]
-            assert u @ learner.precision @ u == pytest.approx(
-                u @ learner.prior_precision @ u, rel=1e-9
-            )
-            assert abs(u @ (learner.mean - learner.prior_mean)) < 1e-9
+    qs = np.column_stack([rng.uniform(-2, 2, 200), np.zeros(200), np.zeros(200)])
+    seen = _learn_pixels(learner, body, camera, truth, qs, rng)
+    # the height is learned ...
+    assert body.tip_position(np.zeros(3))[2] == pytest.approx(
+        truth.tip_position(np.zeros(3))[2], abs=2e-3
+    )
+    # ... and the directions w the data never saw (Phi w = 0) keep their prior: the same
+    # precision, and the mean moves only where the prior couples them to what was seen
+    # (m - m0 lies in the span of S0 Phi'; Bishop 2006, eq. 3.53 with Woodbury's identity)
+    _, sv, Vt = np.linalg.svd(np.vstack(seen))
+    null = Vt[np.flatnonzero(sv < 1e-9 * sv[0])]
+    assert null.shape[0] == learner.mean.size - 1  # only the height was seen
+    P0 = learner.prior_precision
+    for w in null:
+        assert w @ learner.precision @ w == pytest.approx(w @ P0 @ w, rel=1e-9)
+        assert abs((P0 @ w) @ (learner.mean - learner.prior_mean)) < 1e-9 * np.abs(P0).max()
 
 
 # ------------------------------------------------------------------------ the agent

@@ -68,6 +68,7 @@ from blanket.agent.attractor import joint_limit_weights
 from blanket.agent.belief import Belief, EpisodeState
 from blanket.agent.body_learning import BodyLearning
 from blanket.agent.generative_model import AgentOptions, GenerativeModel
+from blanket.agent.image_goal import ImageGoal
 from blanket.agent.step import CompiledWorkspace, attractor, free_energy_at, step
 from blanket.description import ArmDescription, CameraDescription
 from blanket.errors import ConfigError, did_you_mean, shorten
@@ -129,6 +130,12 @@ class ArmAgent(PredictMixin):
         self.body_learning: BodyLearning | None = (
             BodyLearning.start(self.model) if self.model.options["learn_body"] else None
         )
+        #: the goal in the image (``goal_space="image"``)
+        self.image_goal: ImageGoal | None = None
+        if self.model.options["goal_space"] == "image":
+            if self.model.camera is None:
+                raise ConfigError("agent option goal_space='image' needs an env with a camera")
+            self.image_goal = ImageGoal(self.model.camera)
         self.reset()
 
     # -- construction -------------------------------------------------------------------
@@ -218,6 +225,8 @@ class ArmAgent(PredictMixin):
         self.state: Belief | None = None
         self.episode = EpisodeState.start(self.model)
         self._diag: dict[str, Any] = {}
+        if self.image_goal is not None:
+            self.image_goal.reset()
         if self.body_learning is not None:
             self.body_learning.new_episode()
             self.body_learning.apply(self.model.body)  # everything learned so far
@@ -241,6 +250,8 @@ class ArmAgent(PredictMixin):
     # -- one step -----------------------------------------------------------------------
     def act(self, obs: Mapping[str, Any]) -> np.ndarray:
         """Update the belief from ``obs`` and return the next command."""
+        if self.image_goal is not None:
+            obs = self.image_goal.goal_observation(obs, self._predicted_tip())
         belief, action, diag = step(self.model, self.state, obs, self.episode, self._workspace)
         self.state = belief
         if diag["safe_stop"]:
@@ -252,6 +263,13 @@ class ArmAgent(PredictMixin):
                 camera = self.episode.channels.effective("camera")
                 self.body_learning.update(self.model, belief.mean, obs, camera, action)
         return action
+
+    def _predicted_tip(self) -> np.ndarray | None:
+        """The model's tip at the belief carried one step forward (``q + dt q'``)."""
+        if self.state is None:
+            return None
+        z, n = self.state.mean, self.model.n
+        return self.model.body.tip_position(z[:n] + self.model.dt * z[n : 2 * n])
 
     def learned_options(self) -> dict[str, Any]:
         """What ``learn_body`` learned, as ``[agent]`` options of a scenario

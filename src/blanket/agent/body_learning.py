@@ -50,10 +50,24 @@ Kirubarajan 2001, *Estimation with Applications to Tracking and Navigation*, sec
 5.4) is not learned from: pushes, contacts and stale frames would otherwise enter as if the
 body had changed.
 
-The length factors are a two-level (hierarchical) model: ``s = g + delta``, a shared scale
-``g`` (prior sd ``body_length_prior_sd``) and per-link deviations ``delta`` (prior sd
-``link_length_prior_sd``), so a uniform error is learned from every link at once while a
-single link's error is still expressible.
+The length factors are a two-level (hierarchical) model: ``s = g + B delta``, a shared scale
+``g`` (prior sd ``body_length_prior_sd``) and one deviation ``delta_k`` per *segment* (prior
+sd ``link_length_prior_sd``), so a uniform error is learned from every link at once while a
+single segment's error is still expressible. A segment is a set of placements that point the
+same way in every posture (:func:`collinear_length_segments`): the tip sees only the sum of
+their lengths, ``sum_i l_i s_i``, never how it splits, so they share one factor
+(``B`` maps segments to placements). This learns only the identifiable combinations; a
+zero-length placement follows the shared scale alone. Which segments the camera can inform
+at all is checked once, from the tip's length Jacobian at random postures
+(:attr:`BodyLearning.segment_identifiable`).
+
+The segments' spread ``tau`` (the prior sd of ``delta``; it starts at
+``link_length_prior_sd``) is itself learned at each new episode by empirical Bayes: the EM
+update of a Gaussian prior's variance, ``tau^2 = (1/K) sum_k ((m_k - mu_k)^2 + S_kk)`` with
+the posterior mean ``m`` and covariance ``S`` (Bishop 2006, eq. 9.63, ``alpha = 1/tau^2``),
+iterated to its fixed point (:func:`segment_spread_step`). Segments the camera pins down set
+the spread; one it barely informs (a short wrist offset) is then drawn to the shared scale as
+far as the others agree with it, not held at the first guess of ``tau``.
 """
 
 from __future__ import annotations
@@ -68,6 +82,8 @@ from blanket.free_energy import chi_square_threshold
 
 __all__ = [
     "camera_length_terms",
+    "collinear_length_segments",
+    "segment_spread_step",
     "torque_payload_terms",
     "gaussian_terms",
     "laplace_parameter_step",
@@ -94,6 +110,11 @@ GATE_FALSE_REJECTION = 1e-6
 #: Below this mass (kg) the payload's centre of mass is not learned from h = m c (kept at its
 #: prior): h / m is meaningless for a vanishing mass.
 _MIN_PAYLOAD_KG = 0.05
+#: Floor of the learned spread of the segments' factors (common practice, no source): the
+#: spread never collapses to zero, so a segment stays free to follow new data.
+MIN_SEGMENT_SPREAD = 1e-3
+#: Fixed-point iterations of the spread's EM update at a new episode (it converges in a few).
+_SPREAD_ITERATIONS = 20
 #: Floor of a learned length factor (a factor <= 0 would turn a link inside out).
 _MIN_LENGTH_SCALE = 0.2
 
@@ -131,6 +152,104 @@ def camera_length_terms(
     """
     G = np.asarray(pixel_jacobian, dtype=float) @ np.asarray(length_jacobian, dtype=float)
     return gaussian_terms(error_px, -G, precision)
+
+
+def collinear_length_segments(
+    length_jacobians: np.ndarray, tol: float = 1e-9
+) -> tuple[np.ndarray, np.ndarray]:
+    """Group length factors that the tip position cannot tell apart, and test the groups.
+
+    ``length_jacobians`` stacks ``D(q) = d fk / ds`` over postures, shape (3 P, L). The tip is
+    ``sum_i D_i(q) s_i``: two placements whose columns are parallel over every posture (two
+    links along one joint axis, e.g. base and shoulder of an arm whose first joint turns
+    about the vertical) add up to one vector, so only ``l_a s_a + l_b s_b`` is seen (the
+    column space of a regression with collinear regressors; Bishop 2006, *Pattern
+    Recognition and Machine Learning*, sec. 3.1.1: ``Phi' Phi`` is singular along their
+    difference). A column of zero norm (a zero-length placement, or one off the tip's
+    chain) moves nothing.
+
+    Parameters
+    ----------
+    length_jacobians : numpy.ndarray
+        ``D`` stacked over postures, (3 P, L).
+    tol : float
+        Relative tolerance of "zero" and "parallel".
+
+    Returns
+    -------
+    (numpy.ndarray, numpy.ndarray)
+        ``segment`` (L,) int: the segment of each factor (0..K-1, in order of first
+        appearance), -1 for a factor that moves nothing; and ``identifiable`` (K,) bool:
+        whether the stacked data determine each segment's factor (its unit vector lies in the
+        row space of ``D B``).
+    """
+    D = np.asarray(length_jacobians, dtype=float)
+    norms = np.linalg.norm(D, axis=0)
+    top = float(norms.max()) if norms.size else 0.0
+    segment = np.full(D.shape[1], -1, dtype=int)
+    heads: list[int] = []
+    for i in np.flatnonzero(norms > tol * max(top, 1e-300)):
+        for k, j in enumerate(heads):
+            if abs(float(D[:, i] @ D[:, j])) >= (1.0 - tol) * norms[i] * norms[j]:
+                segment[i] = k
+                break
+        else:
+            segment[i] = len(heads)
+            heads.append(int(i))
+    B = np.zeros((D.shape[1], len(heads)))
+    B[segment >= 0, segment[segment >= 0]] = 1.0
+    M = D @ B
+    if not heads:
+        return segment, np.zeros(0, dtype=bool)
+    _, sv, Vt = np.linalg.svd(M, full_matrices=False)
+    rows = Vt[sv > tol * 1e3 * sv[0]]
+    identifiable = np.einsum("ki,ki->i", rows, rows) > 1.0 - 1e-6
+    return segment, identifiable
+
+
+def segment_spread_step(
+    mean: np.ndarray,
+    precision: np.ndarray,
+    prior_mean: np.ndarray,
+    prior_precision: np.ndarray,
+    block: np.ndarray,
+    floor: float = MIN_SEGMENT_SPREAD,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, float]:
+    """One EM step of a shared prior variance ``tau^2`` over the parameters ``block``.
+
+    E-step: the posterior ``N(m, S)``, ``S = inv(Pi)``. M-step: ``tau^2 = (1/K) sum_{k in
+    block} ((m_k - mu_k)^2 + S_kk)`` (Bishop 2006, *Pattern Recognition and Machine Learning*,
+    eq. 9.63, ``alpha = 1/tau^2``), floored at ``floor^2``. The posterior under the new prior
+    keeps the data's information ``Pi - Pi_0`` and ``Pi m - Pi_0 mu``, so
+    ``Pi' = Pi + dPi_0`` and ``m' = m + inv(Pi') dPi_0 (mu - m)`` (Bishop 2006, eqs.
+    3.50-3.51, linear-Gaussian: exact; for the camera, at the Gauss-Newton linearisation).
+
+    Parameters
+    ----------
+    mean, precision : numpy.ndarray
+        The posterior (k,), (k, k).
+    prior_mean, prior_precision : numpy.ndarray
+        The prior (k,), (k, k); its ``block`` part diagonal.
+    block : numpy.ndarray
+        Indices of the parameters that share ``tau``.
+    floor : float
+        Least ``tau``.
+
+    Returns
+    -------
+    (numpy.ndarray, numpy.ndarray, numpy.ndarray, float)
+        The new mean, precision, prior precision and ``tau``.
+    """
+    block = np.asarray(block, dtype=int)
+    cov = np.linalg.inv(precision)
+    d = mean[block] - prior_mean[block]
+    tau2 = max(float(np.mean(d * d + np.diag(cov)[block])), floor * floor)
+    new_prior = prior_precision.copy()
+    new_prior[block, block] = 1.0 / tau2
+    change = new_prior - prior_precision
+    new_precision = precision + change
+    new_mean = mean + np.linalg.solve(new_precision, change @ (prior_mean - mean))
+    return new_mean, new_precision, new_prior, float(np.sqrt(tau2))
 
 
 def torque_payload_terms(
@@ -229,6 +348,18 @@ class _Motion:
     tau: np.ndarray
 
 
+def _length_jacobians(body: Any, postures: int = 64, seed: int = 0) -> np.ndarray:
+    """``D(q) = d fk / ds`` of ``body`` stacked over random postures within its joint limits
+    (clipped to +-pi), (3 P, L); ``postures=1`` gives the home posture ``q = 0`` clipped into
+    the limits (each column's norm is then the placement's nominal length)."""
+    lo = np.maximum(np.asarray(body.lower, dtype=float), -np.pi)
+    hi = np.minimum(np.asarray(body.upper, dtype=float), np.pi)
+    if postures == 1:
+        return body.tip_length_jacobian(np.clip(np.zeros(lo.size), lo, hi))[1]
+    rng = np.random.default_rng(seed)
+    return np.vstack([body.tip_length_jacobian(rng.uniform(lo, hi))[1] for _ in range(postures)])
+
+
 _GATE = {k: chi_square_threshold(k, GATE_FALSE_REJECTION) for k in range(1, 13)}
 
 
@@ -250,12 +381,24 @@ class BodyLearning:
     Attributes
     ----------
     mean, precision : numpy.ndarray
-        ``theta = (g, delta_1..delta_L[, m, h_x, h_y, h_z])`` and its precision: shared length
-        scale, per-link deviations, payload mass and first moment (end-effector frame).
+        ``theta = (g, delta_1..delta_K[, m, h_x, h_y, h_z])`` and its precision: shared length
+        scale, per-segment deviations, payload mass and first moment (end-effector frame).
     prior_mean, prior_precision : numpy.ndarray
         The Gaussian prior.
     names : tuple of str
         Names of the length factors (:attr:`blanket.body.ArmModel.length_parameter_names`).
+    segment : numpy.ndarray
+        Segment of each length factor (L,), -1 for a factor that moves nothing
+        (:func:`collinear_length_segments`).
+    segment_names : tuple of str
+        Each segment's factors, joined by ``+``.
+    segment_identifiable : numpy.ndarray
+        Whether the tip's position can determine each segment's factor (K,).
+    segment_spread : float
+        Prior sd of the segments' deviations from the shared scale, learned by empirical
+        Bayes at each new episode.
+    length_map : numpy.ndarray
+        ``s = length_map @ theta[:K + 1]`` (L, K + 1).
     learn_payload : bool
         Whether the payload part is present (torque control).
     frames, steps, rejected : int
@@ -271,6 +414,8 @@ class BodyLearning:
         rate: float,
         torque_precision: float,
         prior_com_m: np.ndarray | None = None,
+        segment: np.ndarray | None = None,
+        segment_identifiable: np.ndarray | None = None,
     ) -> None:
         self.prior_mean = np.asarray(prior_mean, dtype=float).copy()
         self.prior_precision = np.asarray(prior_precision, dtype=float).copy()
@@ -286,8 +431,29 @@ class BodyLearning:
         self.rejected = 0
         L = len(self.names)
         self.L = L
-        #: s = A theta_length (shared scale plus per-link deviation)
-        self.length_map = np.hstack([np.ones((L, 1)), np.eye(L)])
+        self.segment = np.arange(L) if segment is None else np.asarray(segment, dtype=int)
+        K = int(self.segment.max()) + 1 if self.segment.size else 0
+        self.segment_names = tuple(
+            "+".join(n for n, g in zip(self.names, self.segment, strict=True) if g == k)
+            for k in range(K)
+        )
+        self.segment_identifiable = (
+            np.ones(K, dtype=bool)
+            if segment_identifiable is None
+            else np.asarray(segment_identifiable, dtype=bool)
+        )
+        #: s = A theta_length (shared scale plus the deviation of the link's segment)
+        B = np.zeros((L, K))
+        moves = self.segment >= 0
+        B[moves, self.segment[moves]] = 1.0
+        self.length_map = np.hstack([np.ones((L, 1)), B])
+        #: theta[:n_length] are the length parameters (g, delta_1..delta_K)
+        self.n_length = K + 1
+        #: prior sd of the segments' deviations (learned at each new episode)
+        self.segment_spread = (
+            float(1.0 / np.sqrt(self.prior_precision[1, 1])) if K else float("nan")
+        )
+        self._frames_at_spread = 0
         self._last: _Motion | None = None
         self._episode_steps = 0
         self._applied = self.mean.copy()
@@ -300,10 +466,18 @@ class BodyLearning:
         ``payload_com_m`` (torque control only)."""
         opts = model.options
         body = model.body
-        L = len(body.length_parameter_names)
+        segment, identifiable = collinear_length_segments(_length_jacobians(body))
+        K = int(segment.max()) + 1 if segment.size else 0
         s0 = np.asarray(body.link_length_scales, dtype=float)
-        mean = [1.0, *(s0 - 1.0)]
-        sd = [float(opts["body_length_prior_sd"]), *[float(opts["link_length_prior_sd"])] * L]
+        # start each segment at its placements' mean factor (weighted by nominal length, the
+        # combination the tip sees), the shared scale at 1
+        lengths = np.linalg.norm(_length_jacobians(body, postures=1), axis=0)
+        dev = [
+            float(np.average(s0[segment == k], weights=lengths[segment == k]) - 1.0)
+            for k in range(K)
+        ]
+        mean = [1.0, *dev]
+        sd = [float(opts["body_length_prior_sd"]), *[float(opts["link_length_prior_sd"])] * K]
         payload = model.control == "torque"
         c0 = np.asarray(body.payload_com_m, dtype=float)
         if payload:
@@ -319,6 +493,8 @@ class BodyLearning:
             float(opts["body_learning_rate"]),
             1.0 / float(opts["torque_noise_sd_n_m"]) ** 2,
             c0,
+            segment,
+            identifiable,
         )
 
     # -- the parameters -------------------------------------------------------------------
@@ -327,13 +503,13 @@ class BodyLearning:
         return np.linalg.inv(self.precision)
 
     def length_scales(self) -> np.ndarray:
-        """The learned length factors ``s = g + delta`` (L,)."""
-        return self.length_map @ self.mean[: self.L + 1]
+        """The learned length factors ``s = g + B delta`` (L,)."""
+        return self.length_map @ self.mean[: self.n_length]
 
     def length_scales_sd(self) -> np.ndarray:
         """Posterior sd of each length factor (L,)."""
         A = self.length_map
-        cov = self.covariance[: self.L + 1, : self.L + 1]
+        cov = self.covariance[: self.n_length, : self.n_length]
         return np.sqrt(np.einsum("ij,jk,ik->i", A, cov, A))
 
     def shared_length_scale(self) -> tuple[float, float]:
@@ -343,7 +519,7 @@ class BodyLearning:
     def payload(self) -> tuple[float, np.ndarray]:
         """The learned payload mass (kg) and centre of mass ``h / m`` (m, end-effector frame;
         the prior's below a few grams)."""
-        k = self.L + 1
+        k = self.n_length
         m = float(self.mean[k])
         if m < _MIN_PAYLOAD_KG:
             return m, self.prior_com_m.copy()
@@ -351,7 +527,7 @@ class BodyLearning:
 
     def payload_sd(self) -> tuple[float, np.ndarray]:
         """Posterior sd of the mass and of the centre of mass (first order in ``h / m``)."""
-        k = self.L + 1
+        k = self.n_length
         cov = self.covariance[k : k + 4, k : k + 4]
         m, c = self.payload()
         if m < _MIN_PAYLOAD_KG:
@@ -395,8 +571,10 @@ class BodyLearning:
     def options(self) -> dict[str, Any]:
         """The learned values as ``[agent]`` options of a scenario (reload them to start from
         here): ``link_length_scales`` and, under torque control, ``payload_kg`` and
-        ``payload_com_m``."""
-        s = np.maximum(self.length_scales(), _MIN_LENGTH_SCALE)
+        ``payload_com_m``; with the segments' spread re-estimated, as the next episode
+        starts from them."""
+        mean = self._respread()[0] if self.frames > self._frames_at_spread else self.mean
+        s = np.maximum(self.length_map @ mean[: self.n_length], _MIN_LENGTH_SCALE)
         out: dict[str, Any] = {"link_length_scales": [round(float(x), 6) for x in s]}
         if self.learn_payload:
             m, c = self.payload()
@@ -406,9 +584,30 @@ class BodyLearning:
 
     # -- learning -------------------------------------------------------------------------
     def new_episode(self) -> None:
-        """Forget the last step's motion (the parameters stay)."""
+        """Forget the last step's motion (the parameters stay) and re-estimate the segments'
+        spread from what was learned (:func:`segment_spread_step`, iterated)."""
         self._last = None
         self._episode_steps = 0
+        if self.frames > self._frames_at_spread:
+            self._frames_at_spread = self.frames
+            self.mean, self.precision, self.prior_precision, self.segment_spread = self._respread()
+
+    def _respread(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, float]:
+        """The posterior and prior with the segments' spread at its EM fixed point (the
+        current ones with fewer than two segments)."""
+        mean, precision, prior, tau = (
+            self.mean,
+            self.precision,
+            self.prior_precision,
+            self.segment_spread,
+        )
+        if self.n_length > 2:
+            block = np.arange(1, self.n_length)
+            for _ in range(_SPREAD_ITERATIONS):
+                mean, precision, prior, tau = segment_spread_step(
+                    mean, precision, self.prior_mean, prior, block
+                )
+        return mean, precision, prior, tau
 
     def update(
         self,
@@ -443,7 +642,7 @@ class BodyLearning:
         curv = np.zeros((k, k))
         changed = False
         cov = None
-        lengths = slice(0, self.L + 1)
+        lengths = slice(0, self.n_length)
         if (
             model.camera is not None
             and obs.get("camera_fresh", 0)
@@ -481,7 +680,7 @@ class BodyLearning:
                 # the torque the payload-free body leaves unexplained
                 r = last.tau - body.inverse_dynamics(last.q, last.v, a) + Y @ [m_b, *(m_b * c_b)]
                 P = np.full(n, self.torque_precision)
-                pay = slice(self.L + 1, k)
+                pay = slice(self.n_length, k)
                 theta = self.mean[pay]
                 cov = self.covariance if cov is None else cov
                 if _gate(r - Y @ theta, np.diag(1.0 / P), Y, cov[pay, pay]):

@@ -59,6 +59,7 @@ __all__ = [
 ]
 
 _GOALS = ("prior", "reference")
+_GOAL_SPACES = ("cartesian", "image")  # the goal's space (blanket.agent.image_goal)
 _INTEGRATIONS = ("ozaki", "euler")
 #: How closely velocity motors are assumed to track the last command (rad/s): pybullet's
 #: velocity motors tracked to ~2e-4 rad/s on the built-in arms (measured); 5e-3 leaves margin.
@@ -77,6 +78,7 @@ class AgentOptions:
     defaults: dict[str, Any] = {
         "order": 2,
         "goal": "reference",
+        "goal_space": "cartesian",
         "integration": "ozaki",
         "attractor_gain_1_s": 4.0,
         "max_tip_speed_m_s": 0.6,
@@ -134,6 +136,12 @@ class AgentOptions:
         if out["goal"] not in _GOALS:
             raise ConfigError(
                 f"agent option goal must be one of {_GOALS}, got {shorten(out['goal'])}"
+            )
+        space = out["goal_space"]
+        if space not in _GOAL_SPACES:
+            raise ConfigError(
+                f"agent option goal_space must be one of {_GOAL_SPACES}, got "
+                f"{shorten(space)}; {did_you_mean(str(space), _GOAL_SPACES)}"
             )
         if out["integration"] not in _INTEGRATIONS:
             raise ConfigError(

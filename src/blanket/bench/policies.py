@@ -317,6 +317,13 @@ POLICIES: dict[str, PolicySpec] = {
             _agent("torque", learn_body=True),
         ),
         PolicySpec(
+            "active-inference+image",
+            "ArmAgent, velocity control, goal in the camera image (goal_space='image': the "
+            "seen tip's pixel onto the target's, depth from the model)",
+            "velocity",
+            _agent("velocity", goal_space="image"),
+        ),
+        PolicySpec(
             "active-inference-prior",
             "ArmAgent, velocity control, goal as prior dynamics (biases the belief)",
             "velocity",
