@@ -478,8 +478,12 @@ class BodyLearning:
                 a = (v - last.v) / model.dt
                 Y = body.payload_regressor(last.q, last.v, a)
                 m_b, c_b = body.payload_kg, body.payload_com_m
-                # the torque the payload-free body leaves unexplained
-                r = last.tau - body.inverse_dynamics(last.q, last.v, a) + Y @ [m_b, *(m_b * c_b)]
+                # the torque that acted (the applied one, when the observation reports it:
+                # a clamped command did not move the arm) less what the payload-free body
+                # explains
+                applied = obs.get("applied_command")
+                tau = last.tau if applied is None else np.asarray(applied, dtype=float)
+                r = tau - body.inverse_dynamics(last.q, last.v, a) + Y @ [m_b, *(m_b * c_b)]
                 P = np.full(n, self.torque_precision)
                 pay = slice(self.L + 1, k)
                 theta = self.mean[pay]

@@ -462,6 +462,10 @@ def step(
     if belief is None:
         belief = Belief.from_observation(model, obs, episode.channels.precision)
         episode.command.start(model, obs)
+        if workspace is not None and model.guarded:
+            workspace._log_det.clear()  # the guard starts each episode at the nominal
+    else:
+        episode.command.sense_applied(obs)
     episode.target.update(obs["target_position_m"])
     episode.channels.track_motor(obs, episode.command.command)
     try:
@@ -485,6 +489,11 @@ def step(
     if model.precision_changing:
         seen = Innovations(out["errors"], out["cov_prior"], out["g_cam"], belief)
         episode.channels.update(seen, new)
+    elif model.guarded:
+        change = episode.command.change if model.control == "velocity" else None
+        if episode.channels.guard(obs, change, out["errors"], out["g_cam"], new):
+            if workspace is not None:
+                workspace._log_det.clear()  # the precisions' log-determinant changed
     command = episode.command
     command.attractor_velocity = out["attractor_velocity"].copy()
     # a view: the compiled backend reuses this buffer only after the next successful step
