@@ -295,8 +295,9 @@ def encoder_noise_guard(  # pragma: no cover - compiled
     nominal variance (an outlier guard, common practice, no source). The variance in force
     ``applied`` (2, n) leaves the ``nominal`` one when the estimate exceeds ``depart`` times
     it, then follows the estimate, and returns to the nominal one when the estimate falls
-    below ``back`` times it (hysteresis, ``1 <= back <= depart``): the guard only ever lowers a precision; a reading less noisy than
-    the nominal leaves it alone. It skips a change below 10 % (few recomputations).
+    below ``back`` times it (hysteresis, ``1 <= back <= depart``): the guard only ever
+    lowers a precision; a reading less noisy than the nominal leaves it alone. It skips a
+    change below 10 % (few recomputations).
 
     ``history`` (4, n): the last two angle readings and the last two velocity readings
     (NaN before the first), updated in place.
