@@ -39,6 +39,20 @@ _LEARNING_BURN_IN = 20
 #: encoders of the planar arm left the nominal in a nominal episode (motors that lag a
 #: change of command look like noise), measured.
 _GUARD_DEPART = 4.0
+#: The same for the camera, whose pixel errors no motor lag confounds: 2 (a noise sd 41 %
+#: above the nominal; with 4 a body model 3 % too long left the camera at its nominal
+#: precision, its error variance 2.8x the nominal, and the iiwa's belief at NEES 4.4).
+_GUARD_DEPART_CAMERA = 2.0
+#: Frames the camera's guard averages before it may depart (20 pixel errors: the mean's
+#: relative sd is about 0.3, so 2x is about 3 sd); with 20 frames (0.67 s at 30 Hz) two
+#: delayed frames left the iiwa's belief at NEES 4 over its first reach, measured.
+_GUARD_CAMERA_BURN_IN = 10
+#: The camera's guard departs at the smaller of ``_GUARD_DEPART_CAMERA`` and the upper
+#: quantile of this probability of the mean of its pixel errors' squares under the nominal
+#: noise (an innovation test, Bar-Shalom, Li & Kirubarajan 2001, sec. 5.4.2): with more
+#: frames a smaller excess is strong evidence (a body model 3 % too long left one iiwa
+#: episode's camera errors 1.4x the nominal and its belief at NEES 3.5, measured).
+_GUARD_FALSE_ALARM = 1e-3
 #: Growth of a learned encoder variance that rescales the belief's covariance (1: any
 #: growth; 1.05 and 1.25 left the 3-DoF arm's worst episode at NEES 3.0 and 3.1, measured).
 _RESCALE_STEP = 1.0
@@ -322,9 +336,12 @@ class ChannelMonitor:
         from which the motion cancels; covariance matching, Mehra 1970). Camera, on fresh
         frames: the pixel error less the part the encoder angles' error predicts through the
         camera Jacobian ``G``, ``R_px = E[nu_px (nu_px - G nu_q)]`` (as
-        :meth:`learn_precisions`). A variance leaves the nominal one only above
+        :meth:`learn_precisions`). An encoder's variance leaves the nominal one only above
         ``_GUARD_DEPART`` times it after ``_LEARNING_BURN_IN`` samples, and comes back below
-        it. Only channels whose precision the user did not set are guarded
+        the square root of that; the camera's departs at a chi-square test of its mean
+        (``_GUARD_FALSE_ALARM``, at most ``_GUARD_DEPART_CAMERA``) after
+        ``_GUARD_CAMERA_BURN_IN`` frames, and comes back below the nominal. Only channels
+        whose precision the user did not set are guarded
         (:attr:`~blanket.agent.generative_model.GenerativeModel.guarded`): a tuned precision
         is the user's choice. When an encoder's variance grows, the joint's covariance grows
         with it (:meth:`rescale`). Returns whether a precision changed.
@@ -365,9 +382,17 @@ class ChannelMonitor:
             step_s = max(model.dt, 1.0 / model.camera.rate_hz)
             w = max(1.0 / cam[1], -float(np.expm1(-self.guard_rate * step_s)))
             cam[0] += w * (sample - cam[0])
-            depart_c = _GUARD_DEPART if cam[1] >= _LEARNING_BURN_IN else np.inf
+            # the frames' effective count in the average (an EWMA of weight w holds the
+            # variance of (2 - w) / w samples) and the upper chi-square quantile of its
+            # mean under the nominal noise, two pixel components per frame
+            w_min = -float(np.expm1(-self.guard_rate * step_s))
+            frames = min(cam[1], (2.0 - w_min) / w_min)
+            depart_c = np.inf
+            if cam[1] >= _GUARD_CAMERA_BURN_IN:
+                dof = 2.0 * frames
+                depart_c = min(_GUARD_DEPART_CAMERA, chdtri(dof, _GUARD_FALSE_ALARM) / dof)
             if cam[2] > r0:
-                target = cam[0] if cam[0] > np.sqrt(_GUARD_DEPART) * r0 else r0
+                target = cam[0] if cam[0] > r0 else r0
             else:
                 target = cam[0] if cam[0] > depart_c * r0 else r0
             if abs(target - cam[2]) > 0.1 * cam[2]:
