@@ -26,6 +26,11 @@ stderr (e.g. the xarm6's inertias); ``2>/dev/null`` hides them.
 
     python scripts/bench_consistency.py [--episodes 10] [--arms iiwa,arm3]
         [--conditions nominal,payload-1.5kg] [--controls velocity,torque]
+
+``--timing BASE`` instead times the agent's step (``act``, median over steps) with the
+``--option`` values against the same agent with the options ``BASE`` (``KEY=VALUE,...``),
+episodes of the two alternated in one run on each arm and control of the first condition,
+and prints the ratio: ``--timing robust_precision=false`` is the cost of the noise guard.
 """
 
 from __future__ import annotations
@@ -76,6 +81,7 @@ def main() -> None:
         "--env-option", action="append", default=[], metavar="KEY=VALUE", help="env keyword"
     )
     parser.add_argument("--per-episode", action="store_true", help="print every episode's NEES")
+    parser.add_argument("--timing", metavar="KEY=VALUE,...", help="time against these options")
     args = parser.parse_args()
     if args.episodes < 1:
         raise SystemExit("--episodes must be >= 1")
@@ -101,6 +107,13 @@ def main() -> None:
             into[key.strip()] = _value(raw.strip())
 
     seeds = [args.seed + i for i in range(args.episodes)]
+    if args.timing is not None:
+        base: dict[str, object] = {}
+        for item in filter(None, args.timing.split(",")):
+            key, _, raw = item.partition("=")
+            base[key.strip()] = _value(raw.strip())
+        _timing(arms, controls, conditions[0], options, base, seeds, args.episode_s)
+        return
     print(
         f"episodes {args.episodes} (seeds {seeds[0]}..{seeds[-1]}), options {options or '{}'}, "
         f"env options {env_options or '{}'}"
@@ -144,6 +157,45 @@ def main() -> None:
                 if args.per_episode:
                     print("      " + " ".join(f"{v:.3g}" for v in nees))
     print(f"worst episode NEES / {NEES_BOUND:g}: {worst / NEES_BOUND:.2f}")
+
+
+def _timing(arms, controls, condition, options, base, seeds, episode_s) -> None:
+    """Median ``act`` time with ``options`` over that with ``base``, episodes alternated."""
+    from blanket.agent import ArmAgent
+    from blanket.bench.rl import make_bench_env
+
+    print(f"timing: {options or '{}'} against {base}; condition {condition.name}")
+    print(f"{'arm':<6}{'control':<9}{'base us':>9}{'new us':>9}{'ratio':>7}")
+    for arm in arms:
+        for control in controls:
+            env = make_bench_env(
+                "iiwa" if "robot" not in ARMS[arm] else ARMS[arm]["robot"],
+                control,
+                episode_s,
+                conditions=condition.parameters,
+                **{k: v for k, v in ARMS[arm].items() if k != "robot"},
+            )
+            try:
+                agents = [
+                    ArmAgent.from_env(env, **{**condition.model_options, **o})
+                    for o in (base, options)
+                ]
+                times: list[list[float]] = [[], []]
+                for seed in seeds:
+                    for k, agent in enumerate(agents):
+                        obs, _ = env.reset(seed=seed)
+                        agent.reset()
+                        done = False
+                        while not done:
+                            t0 = time.perf_counter()
+                            action = agent.act(obs)
+                            times[k].append(time.perf_counter() - t0)
+                            obs, _, term, trunc, _ = env.step(action)
+                            done = term or trunc
+            finally:
+                env.close()
+            a, b = (float(np.median(t)) * 1e6 for t in times)
+            print(f"{arm:<6}{control:<9}{a:>9.1f}{b:>9.1f}{b / a:>7.2f}", flush=True)
 
 
 if __name__ == "__main__":

@@ -683,3 +683,31 @@ def test_safety_wrapper_never_loads_the_agents_body_model() -> None:
         [sys.executable, "-c", code], capture_output=True, text=True, timeout=120, check=True
     )
     assert proc.stdout.strip().splitlines()[-1] == "[]"
+
+
+@pytest.mark.parametrize("control", ["velocity", "torque"])
+def test_applied_command_is_sensed_and_the_wrapped_env_passes_check_env(control) -> None:
+    # The wrapper adds the command that reached the env to the Dict observation (a drive
+    # reports its applied setpoint): zeros after reset, then info["action_applied"].
+    import warnings
+
+    from gymnasium.utils.env_checker import check_env
+
+    env = SafetyLimits(gym.make("blanket/planar-2link-v0", control=control))
+    try:
+        assert "applied_command" in env.observation_space.spaces
+        assert env.observation_space["applied_command"] == env.action_space
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # "the env is wrapped": intended here
+            check_env(env, skip_render_check=True)
+        obs, _ = env.reset(seed=0)
+        np.testing.assert_array_equal(obs["applied_command"], np.zeros(2))
+        clamped = 0
+        for _ in range(60):
+            obs, _, _, _, info = env.step(100.0 * env.command_limit * np.array([1.0, -0.5]))
+            np.testing.assert_array_equal(obs["applied_command"], info["action_applied"])
+            assert env.observation_space.contains(obs)
+            clamped += info["safety"]["clamped"]
+        assert clamped == 60  # every command was beyond the limits: what was applied differs
+    finally:
+        env.close()

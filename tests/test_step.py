@@ -237,3 +237,57 @@ def test_backends_agree_with_precision_learning_and_fault_tests():
         assert flagged  # the frozen encoder was caught, on both backends alike
     finally:
         env.close()
+
+
+def test_agent_takes_the_applied_command_as_its_efference_copy(planar_env):
+    # With applied_command in the observation the agent's last command becomes the applied
+    # one, and the change of command (the prior's velocity step) becomes the applied change.
+    agent = ArmAgent.from_env(planar_env)
+    obs, _ = planar_env.reset(seed=0)
+    sent = agent.act(obs)
+    command = agent.episode.command
+    np.testing.assert_array_equal(command.command, sent)
+    before = sent - command.change  # what was applied before this command
+    obs, *_ = planar_env.step(sent)
+    applied = 0.5 * sent
+    command.sense_applied({**obs, "applied_command": applied})
+    np.testing.assert_array_equal(command.command, applied)
+    np.testing.assert_allclose(command.change, applied - before, atol=1e-15)
+    command.sense_applied(obs)  # no key: the sent command stands
+    np.testing.assert_array_equal(command.command, applied)
+
+
+def test_encoder_noise_guard_recovers_a_noisier_encoder_and_ignores_a_nominal_one():
+    # Readings of a joint moving at constant acceleration plus white noise: the second
+    # difference of white noise of variance R has mean square 6 R (the variate difference
+    # method, Tintner 1940, from memory), the first difference less the known change 2 R
+    # (von Neumann et al. 1941). Joint 0 is 3x noisier than nominal (variance 9x), joint 1
+    # nominal: the guard's variance in force goes to ~9x for joint 0 and stays at the nominal
+    # for joint 1.
+    rng = np.random.default_rng(0)
+    n, dt, steps = 2, 1.0 / 240.0, 2400
+    sd = np.array([[0.03, 0.01], [0.15, 0.05]])  # rows: angle, velocity; joint 0 is 3x
+    nominal = np.array([[1e-4, 1e-4], [2.5e-3, 2.5e-3]])
+    history = np.full((4, n), np.nan)
+    square, applied = nominal.copy(), nominal.copy()
+    no_change = np.full(n, np.nan)
+    weight_min = -np.expm1(-0.2 * dt)
+    for k in range(1, steps + 1):
+        t = k * dt
+        q = 0.3 * t * t + sd[0] * rng.standard_normal(n)
+        v = 0.6 * t + sd[1] * rng.standard_normal(n)
+        _kernel.encoder_noise_guard(
+            q,
+            v,
+            no_change,
+            history,
+            square,
+            nominal,
+            applied,
+            max(1.0 / k, weight_min),
+            4.0 if k >= 20 else np.inf,
+            2.0,
+        )
+    np.testing.assert_allclose(applied[:, 0], 9.0 * nominal[:, 0], rtol=0.15)
+    np.testing.assert_array_equal(applied[:, 1], nominal[:, 1])
+    np.testing.assert_allclose(square[:, 1], nominal[:, 1], rtol=0.15)

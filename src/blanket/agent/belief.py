@@ -19,6 +19,7 @@ from typing import Any, NamedTuple
 import numpy as np
 from scipy.special import chdtri
 
+from blanket.agent import _kernel
 from blanket.agent.generative_model import MONITORED_CHANNELS, GenerativeModel
 
 __all__ = [
@@ -32,6 +33,26 @@ __all__ = [
 
 #: Samples a channel averages before its learned precision is applied.
 _LEARNING_BURN_IN = 20
+#: How many times its nominal variance a guarded channel's estimate must reach before the
+#: guard lowers its precision (``robust_precision``; a noise sd twice the nominal); it
+#: returns to the nominal below the square root of that (hysteresis). With 2 the velocity
+#: encoders of the planar arm left the nominal in a nominal episode (motors that lag a
+#: change of command look like noise), measured.
+_GUARD_DEPART = 4.0
+#: The same for the camera, whose pixel errors no motor lag confounds: 2 (a noise sd 41 %
+#: above the nominal; with 4 a body model 3 % too long left the camera at its nominal
+#: precision, its error variance 2.8x the nominal, and the iiwa's belief at NEES 4.4).
+_GUARD_DEPART_CAMERA = 2.0
+#: Frames the camera's guard averages before it may depart (20 pixel errors: the mean's
+#: relative sd is about 0.3, so 2x is about 3 sd); with 20 frames (0.67 s at 30 Hz) two
+#: delayed frames left the iiwa's belief at NEES 4 over its first reach, measured.
+_GUARD_CAMERA_BURN_IN = 10
+#: The camera's guard departs at the smaller of ``_GUARD_DEPART_CAMERA`` and the upper
+#: quantile of this probability of the mean of its pixel errors' squares under the nominal
+#: noise (an innovation test, Bar-Shalom, Li & Kirubarajan 2001, sec. 5.4.2): with more
+#: frames a smaller excess is strong evidence (a body model 3 % too long left one iiwa
+#: episode's camera errors 1.4x the nominal and its belief at NEES 3.5, measured).
+_GUARD_FALSE_ALARM = 1e-3
 #: Growth of a learned encoder variance that rescales the belief's covariance (1: any
 #: growth; 1.05 and 1.25 left the 3-DoF arm's worst episode at NEES 3.0 and 3.1, measured).
 _RESCALE_STEP = 1.0
@@ -116,6 +137,26 @@ class CommandState:
     disturbance: np.ndarray
     last_velocity_belief: np.ndarray | None = None
     change: np.ndarray = field(default_factory=lambda: np.zeros(0))
+
+    def sense_applied(self, obs: Mapping[str, Any]) -> None:
+        """Take the command that reached the motors, when the observation reports it.
+
+        A drive reports the setpoint it applied (the safety wrapper adds it as
+        ``applied_command``, :mod:`blanket.wrappers.safety_limits`); a command that was
+        clamped or replaced by a protective stop is then not mistaken for the one that moved
+        the arm: the efference copy, the velocity step of the prior (:attr:`change`), the
+        disturbance observer and the payload's torque residual all use what was applied.
+        Without the key the sent command stands for it.
+        """
+        applied = obs.get("applied_command")
+        if applied is None:
+            return
+        applied = np.asarray(applied, dtype=float)
+        if applied.shape != self.command.shape:
+            return
+        # change = sent - applied before; make it applied - applied before
+        self.change += applied - self.command
+        self.command = applied.copy()
 
     @classmethod
     def empty(cls, n: int) -> CommandState:
@@ -230,6 +271,22 @@ class ChannelMonitor:
         #: the motors' tracking variance beyond the nominal (0 while they track)
         self.tracking_variance = np.zeros(n)
         self.motor_ceiling = (2.0 * np.asarray(model.description.velocity_limit_rad_s)) ** 2
+        # the noise guard (robust_precision): readings' history and variance estimates
+        nominal = np.stack(
+            [1.0 / model.precision["joint_angle"], 1.0 / model.precision["joint_velocity"]]
+        )
+        self.guard_history = np.full((4, n), np.nan)
+        self.guard_square = nominal.copy()
+        self.guard_nominal = nominal
+        self.guard_variance = nominal.copy()  # the encoders' variances in force
+        self.guard_samples = 0
+        self.guard_rate = float(model.options["precision_learning_rate"])
+        self.guard_alpha = -float(np.expm1(-self.guard_rate * model.dt))
+        self.guard_no_change = np.full(n, np.nan)
+        cam0 = model.precision["camera"]
+        self.guard_camera = np.array(
+            [1.0 / cam0[0] if cam0[0] > 0 else np.nan, 0.0, 1.0 / cam0[0] if cam0[0] > 0 else 0.0]
+        )  # estimate, frames, variance in force
 
     def track_motor(self, obs: Mapping[str, Any], command: np.ndarray) -> None:
         """Learn how closely the velocity motors track the last command (velocity control).
@@ -263,6 +320,86 @@ class ChannelMonitor:
         np.minimum(tracking, self.motor_ceiling, out=tracking)
         np.divide(1.0, tracking, out=self.motor_precision)
         np.subtract(tracking, floor, out=self.tracking_variance)
+
+    def guard(
+        self,
+        obs: Mapping[str, Any],
+        command_change: np.ndarray | None,
+        errors: Mapping[str, np.ndarray],
+        g_cam: np.ndarray | None,
+        belief: Belief,
+    ) -> bool:
+        """The noise guard (``robust_precision``): lower a channel's precision when its
+        readings show more noise than the precision says; never raise it.
+
+        Encoders: :func:`blanket.agent._kernel.encoder_noise_guard` (differences of readings
+        from which the motion cancels; covariance matching, Mehra 1970). Camera, on fresh
+        frames: the pixel error less the part the encoder angles' error predicts through the
+        camera Jacobian ``G``, ``R_px = E[nu_px (nu_px - G nu_q)]`` (as
+        :meth:`learn_precisions`). An encoder's variance leaves the nominal one only above
+        ``_GUARD_DEPART`` times it after ``_LEARNING_BURN_IN`` samples, and comes back below
+        the square root of that; the camera's departs at a chi-square test of its mean
+        (``_GUARD_FALSE_ALARM``, at most ``_GUARD_DEPART_CAMERA``) after
+        ``_GUARD_CAMERA_BURN_IN`` frames, and comes back below the nominal. Only channels
+        whose precision the user did not set are guarded
+        (:attr:`~blanket.agent.generative_model.GenerativeModel.guarded`): a tuned precision
+        is the user's choice. When an encoder's variance grows, the joint's covariance grows
+        with it (:meth:`rescale`). Returns whether a precision changed.
+        """
+        model = self.model
+        guarded = model.guarded
+        self.guard_samples += 1
+        k = self.guard_samples
+        weight = max(1.0 / k, self.guard_alpha)
+        depart = _GUARD_DEPART if k >= _LEARNING_BURN_IN else np.inf
+        changed = False
+        if "joint_angle" in guarded or "joint_velocity" in guarded:
+            command = self.guard_no_change if command_change is None else command_change
+            if _kernel.encoder_noise_guard(
+                np.asarray(obs["joint_angle_rad"], dtype=float),
+                np.asarray(obs["joint_velocity_rad_s"], dtype=float),
+                command,
+                self.guard_history,
+                self.guard_square,
+                self.guard_nominal,
+                self.guard_variance,
+                weight,
+                depart,
+                np.sqrt(_GUARD_DEPART),
+            ):
+                for row, name in enumerate(("joint_angle", "joint_velocity")):
+                    if name in guarded:
+                        self.precision[name] = 1.0 / self.guard_variance[row]
+                self.rescale(belief)
+                changed = True
+        if "camera" in guarded and g_cam is not None and "camera" in errors:
+            e = errors["camera"]
+            cam = self.guard_camera
+            cam[1] += 1.0
+            r0 = 1.0 / model.precision["camera"][0]
+            sample = float(np.mean(e * (e - g_cam @ errors["joint_angle"])))
+            sample = min(sample, 20.0 * max(cam[0], r0))
+            step_s = max(model.dt, 1.0 / model.camera.rate_hz)
+            w = max(1.0 / cam[1], -float(np.expm1(-self.guard_rate * step_s)))
+            cam[0] += w * (sample - cam[0])
+            # the frames' effective count in the average (an EWMA of weight w holds the
+            # variance of (2 - w) / w samples) and the upper chi-square quantile of its
+            # mean under the nominal noise, two pixel components per frame
+            w_min = -float(np.expm1(-self.guard_rate * step_s))
+            frames = min(cam[1], (2.0 - w_min) / w_min)
+            depart_c = np.inf
+            if cam[1] >= _GUARD_CAMERA_BURN_IN:
+                dof = 2.0 * frames
+                depart_c = min(_GUARD_DEPART_CAMERA, chdtri(dof, _GUARD_FALSE_ALARM) / dof)
+            if cam[2] > r0:
+                target = cam[0] if cam[0] > r0 else r0
+            else:
+                target = cam[0] if cam[0] > depart_c * r0 else r0
+            if abs(target - cam[2]) > 0.1 * cam[2]:
+                cam[2] = target
+                self.precision["camera"] = np.full(2, 1.0 / target)
+                changed = True
+        return changed
 
     def effective(self, name: str) -> np.ndarray:
         """A channel's precision, down-weighted to 1e-6 of itself where it is flagged."""

@@ -100,6 +100,7 @@ class AgentOptions:
         "action_fraction": 1.0,
         "learn_precision": False,
         "learn_motor_precision": True,
+        "robust_precision": True,
         "motor_window_s": 0.1,
         "precision_learning_rate": 0.2,
         "fault_detection": False,
@@ -179,6 +180,11 @@ class AgentOptions:
             v = out[key]
             if not isinstance(v, int | float) or not np.isfinite(v) or v < 0:
                 raise ConfigError(f"agent option {key} must be a number >= 0, got {shorten(v)}")
+        for key in ("learn_body", "robust_precision"):
+            if not isinstance(out[key], bool | np.bool_):
+                raise ConfigError(
+                    f"agent option {key} must be true or false, got {shorten(out[key])}"
+                )
         if not isinstance(out["learn_body"], bool | np.bool_):
             raise ConfigError(
                 f"agent option learn_body must be true or false, got {shorten(out['learn_body'])}"
@@ -431,6 +437,10 @@ class GenerativeModel:
         fault down-weighting).
     motor_learned : bool
         Whether the efference copy's precision is learned from its tracking error.
+    guarded : tuple of str
+        The monitored channels the noise guard watches (``robust_precision``, without
+        ``learn_precision``): those whose precision the options did not set
+        (:meth:`blanket.agent.belief.ChannelMonitor.guard`).
     """
 
     description: ArmDescription
@@ -459,6 +469,7 @@ class GenerativeModel:
     camera_pose: np.ndarray = field(repr=False)
     camera_intrinsics: np.ndarray = field(repr=False)
     limits: np.ndarray = field(repr=False)
+    guarded: tuple[str, ...] = ()
 
     @classmethod
     def from_description(
@@ -545,6 +556,14 @@ class GenerativeModel:
             name: chdtri(w_eff * dof, float(opts["fault_false_alarm"])) / w_eff
             for name, dof in (("joint_angle", 1), ("joint_velocity", 1), ("camera", 2))
         }
+        guarded: tuple[str, ...] = ()
+        if opts["robust_precision"] and not opts["learn_precision"]:
+            given = {
+                "joint_angle": opts["joint_angle_precision"],
+                "joint_velocity": opts["joint_velocity_precision"],
+                "camera": opts["camera_precision"] if camera is not None else 0.0,
+            }
+            guarded = tuple(k for k in MONITORED_CHANNELS if given[k] is None)
         constants = np.array(
             [
                 pm,
@@ -599,6 +618,7 @@ class GenerativeModel:
             camera_pose=pose,
             camera_intrinsics=intrinsics,
             limits=limits,
+            guarded=guarded,
         )
 
     def motion_noise_at(

@@ -46,6 +46,12 @@ __all__ = [
     "CompiledWorkspace",
 ]
 
+#: Under torque control the attractor's velocity is scaled (direction kept) to at most this
+#: fraction of the joints' velocity limits; the rest is room for the velocity loop's
+#: overshoot. Own 3-DoF arm, 6 episodes: the safety wrapper clamped 29 % of the commands
+#: without the scaling, 14 % with 1.0 and 9.5 % with 0.9, same final errors (measured).
+TORQUE_REFERENCE_SPEED_FRACTION = 0.9
+
 _NOT_PD = ("prior covariance", "free-energy curvature", "damped Jacobian product")
 
 
@@ -389,7 +395,9 @@ def act(model: GenerativeModel, belief: Belief, command: CommandState) -> np.nda
     Velocity control: ``F_a = 1/2 P (y_v(a) - v*)^2`` with ``y_v(a) = a``, so the step is
     ``a += action_fraction (v* - a)``, ``v*`` the believed velocity (``goal="prior"``) or the
     attractor's (``goal="reference"``). Torque control: ``q''(tau) = inv(M)(tau - h)``; the
-    Newton step gives ``tau = h + M q''_wanted`` (see
+    Newton step gives ``tau = h + M q''_wanted``, ``q''_wanted = k_v (f - q')`` with the
+    attractor's velocity ``f`` scaled into ``TORQUE_REFERENCE_SPEED_FRACTION`` of the
+    velocity limits (see
     :func:`blanket.agent.arm.torque_action_free_energy`), less the believed disturbance.
     Clipped to the command limits of the description.
     """
@@ -408,6 +416,12 @@ def act(model: GenerativeModel, belief: Belief, command: CommandState) -> np.nda
     if opts["goal"] == "prior":
         qdd = z[2 * n : 3 * n]
     else:
+        # the reference velocity within the joints' speed limits, its direction kept (as
+        # under velocity control, where the command is clipped to them): a reference beyond
+        # them only drives the joints into the safety wrapper's velocity limit
+        ratio = float(np.max(np.abs(f) / d.velocity_limit_rad_s))
+        if ratio > TORQUE_REFERENCE_SPEED_FRACTION:
+            f = f * (TORQUE_REFERENCE_SPEED_FRACTION / ratio)
         qdd = opts["velocity_gain_1_s"] * (f - v)
     h = model.body.nonlinear_effects(q, v)
     M = model.body.mass_matrix(q)
@@ -462,6 +476,10 @@ def step(
     if belief is None:
         belief = Belief.from_observation(model, obs, episode.channels.precision)
         episode.command.start(model, obs)
+        if workspace is not None and model.guarded:
+            workspace._log_det.clear()  # the guard starts each episode at the nominal
+    else:
+        episode.command.sense_applied(obs)
     episode.target.update(obs["target_position_m"])
     episode.channels.track_motor(obs, episode.command.command)
     try:
@@ -485,6 +503,11 @@ def step(
     if model.precision_changing:
         seen = Innovations(out["errors"], out["cov_prior"], out["g_cam"], belief)
         episode.channels.update(seen, new)
+    elif model.guarded:
+        change = episode.command.change if model.control == "velocity" else None
+        if episode.channels.guard(obs, change, out["errors"], out["g_cam"], new):
+            if workspace is not None:
+                workspace._log_det.clear()  # the precisions' log-determinant changed
     command = episode.command
     command.attractor_velocity = out["attractor_velocity"].copy()
     # a view: the compiled backend reuses this buffer only after the next successful step

@@ -41,6 +41,14 @@ What the wrapper does, each step (arm envs):
    makes them approximate). This is the "restoring or zeroing" choice for torque mode: a
    joint in the margin is driven to zero velocity toward the limit, not pushed back out.
 
+**The applied command as a sensation.** A real drive reports the setpoint it applied, and
+the wrapper knows it: an arm env's Dict observation gains the key ``applied_command`` (the
+command that reached the env on the step that led to this observation; zeros after
+``reset()``, before any command). Its space is the env's action space. An agent that treats
+its own last command as what moved the arm (the efference copy of velocity control, the
+disturbance observer and the payload learning of torque control) reads it instead, so a
+clamped or stopped command does not leave it believing in a motion that did not happen.
+
 Every command is logged: ``info["action_applied"]`` is the command sent to the env, and
 ``info["safety"]`` is ``dict(clamped, reason, safe_stop, safe_stop_reason, contact_stops,
 profile, joint_speed_ratio)``; ``info["external"]["safe_stop"]`` and ``["safety_clamped"]``
@@ -77,7 +85,10 @@ from blanket.robot_limits import SafetyProfile, profile_for, profile_named
 from blanket.sensors.clip import clip_values
 from blanket.wrappers.perturbations import number_in_range
 
-__all__ = ["SafetyLimits"]
+__all__ = ["SafetyLimits", "APPLIED_COMMAND_KEY"]
+
+#: Observation key of the command that reached the env (arm envs with a Dict observation).
+APPLIED_COMMAND_KEY = "applied_command"
 
 #: Damping of the tip-Jacobian pseudo-inverse used for the workspace projection (m).
 _WORKSPACE_DAMPING_M = 1e-3
@@ -217,6 +228,22 @@ class SafetyLimits(gym.Wrapper, gym.utils.RecordConstructorArgs):
             self.control = "velocity"
             self.command_limit = np.minimum(high, -np.asarray(space.low, dtype=float))
             self._profile_name = "action space"
+        # The applied command as a sensation (arm envs with a Dict observation).
+        obs_space = env.observation_space
+        self._sense_applied = bool(
+            self._arm
+            and isinstance(obs_space, gym.spaces.Dict)
+            and APPLIED_COMMAND_KEY not in obs_space.spaces
+        )
+        if self._sense_applied:
+            self.observation_space = gym.spaces.Dict(
+                {
+                    **obs_space.spaces,
+                    APPLIED_COMMAND_KEY: gym.spaces.Box(
+                        space.low, space.high, shape=space.shape, dtype=space.dtype
+                    ),
+                }
+            )
         self.contact_stops = 0
         self._stop_reason = ""
         self._contact_pending = False
@@ -269,7 +296,15 @@ class SafetyLimits(gym.Wrapper, gym.utils.RecordConstructorArgs):
         external["safe_stop"] = False
         external["safety_clamped"] = False
         info["external"] = external
-        return obs, info
+        return self._with_applied(obs, np.zeros(self._shape)), info
+
+    def _with_applied(self, obs: Any, applied: np.ndarray) -> Any:
+        """The observation with the applied command added (arm envs with a Dict observation)."""
+        if not self._sense_applied:
+            return obs
+        out = dict(obs)
+        out[APPLIED_COMMAND_KEY] = applied
+        return out
 
     def step(self, action: Any) -> tuple[Any, SupportsFloat, bool, bool, dict[str, Any]]:
         requested = self._parse(action)
@@ -287,7 +322,7 @@ class SafetyLimits(gym.Wrapper, gym.utils.RecordConstructorArgs):
         external["safe_stop"] = bool(stop_reason)
         external["safety_clamped"] = clamped
         info["external"] = external
-        return obs, reward, terminated, truncated, info
+        return self._with_applied(obs, applied.copy()), reward, terminated, truncated, info
 
     def _safety_info(
         self, clamped: bool, reason: str, safe_stop: bool, stop_reason: str, speed_ratio: float
