@@ -2,33 +2,41 @@
 
 A route is scored by the expected free energy of the policy "drive along this route to the
 dock", in its risk-plus-ambiguity form (Friston, Rigoli, Ognibene, Mathys, Fitzgerald & Pezzulo
-2015, "Active inference and epistemic value", Cogn Neurosci 6(4), sec. "Active inference";
-with risk taken over hidden states as in Da Costa, Parr, Sajid, Veselic, Neacsu & Friston 2020,
-"Active inference on discrete state-spaces: a synthesis", J Math Psychol 99, sec. 4):
+2015, "Active inference and epistemic value", Cogn Neurosci 6(4); risk over hidden states as in
+Da Costa, Parr, Sajid, Veselic, Neacsu & Friston 2020, "Active inference on discrete
+state-spaces: a synthesis", J Math Psychol 99), here with Gaussian densities:
 
-    G(pi) = KL[ q(s_T | pi) || p*(s) ]  +  sum_k E_{q(s_k | pi)} H[ p(o_k | s_k) ]
-            \\________ risk ________/       \\____________ ambiguity ____________/
+    G(pi) = KL[q(s_T|pi) || p*(s)] + KL[q(t_a|pi) || p*(t)] + sum_k KL[q(o_k|pi) || p*(o)]
+            + sum_k E_{q(s_k|pi)} H[p(o_k|s_k)]
 
-- ``q(s_k | pi) = N(m_k, Sigma_k)`` is the predicted belief over the pose ``(x, y, heading)``
-  at camera frame ``k`` along the route, from the same linearised Gaussian model the agent
-  filters with: an extended-Kalman predict step with the pose's motion Jacobian and the
-  dead-reckoning noise, and an update with the range-bearing Jacobians
+the first three terms the risk, the last the ambiguity (:func:`expected_free_energy`).
+
+- ``q(s_k|pi) = N(m_k, Sigma_k)`` is the predicted belief over the pose ``(x, y, heading)``
+  at camera frame ``k``, from the linearised Gaussian model the agent filters with: an
+  extended-Kalman predict step with the motion Jacobian and the agent's dead-reckoning noise,
+  and an update with the range-bearing Jacobians
   (:func:`blanket.planar_motion.bearing_range_jacobian`) of the posts that would be in view
   from the predicted mean (Thrun, Burgard & Fox 2005, *Probabilistic Robotics*, table 3.3);
-- ``p*(s) = N(dock, Sigma*)`` is the preferred (dock) density; the risk is taken at arrival,
-  ``s_T``, after the information gathered on the way has shaped ``Sigma_T``;
-- ``p(o_k | s_k)``: at every frame the camera reports a bearing and a range for each mapped
-  post. A post in view is measured with Gaussian noise (entropy ``1/2 ln(2 pi e sigma^2)``);
-  a post out of view tells nothing about the pose, its report spread uniformly over the
-  sensor's span (entropy ``ln(2 pi)`` for the bearing, ``ln(range_max)`` for the range). The
-  ambiguity therefore falls where posts are in view and grows with every frame spent with
-  posts out of view (a long dark route is ambiguous for longer).
+  :func:`predict_route`. All candidates are compared over one horizon (the longest route's
+  arrival; a shorter one stands at the dock for the rest).
+- ``p*(s) = N(dock, Sigma*)``: the preferred (dock) density; the risk is taken at the horizon,
+  after the information gathered on the way has shaped ``Sigma_T``. ``p*(t) = N(0, sd*^2)``
+  over the arrival time ``t_a``: a preference for arriving soon. Without it nothing in ``G``
+  prices time, and a route with posts in view always wins, however sure the start.
+- outcomes: at every frame the camera reports a bearing and a range for each mapped post. A
+  post in view is read with Gaussian noise, ``H[p(o|s)] = 1/2 ln(2 pi e sigma^2)``; a post
+  out of view tells nothing about the pose, its report spread uniformly over the sensor's span
+  (entropy ``ln(2 pi)`` for a bearing, ``ln(range_max)`` for a range). The preferred outcome
+  density ``p*(o)`` is that flat one: the base has no wish about what the camera sees.
 
-For a linear-Gaussian measurement the expected information gain (epistemic value) is
-``1/2 ln(det Sigma_prior / det Sigma_post)`` (:func:`information_gain`); it equals the entropy of
-the predicted observations minus the ambiguity, ``H[q(o)] - E_q H[p(o|s)]`` (the mutual
-information of a Gaussian channel, Cover & Thomas 2006, *Elements of Information Theory*, 2nd
-ed., sec. 9.1 / eq. 8.56 for the entropy of a Gaussian), which the tests check.
+For a linear-Gaussian measurement the expected information gain is
+``1/2 ln(det Sigma_prior / det Sigma_post)`` (:func:`information_gain`), the mutual information
+of a Gaussian channel (Cover & Thomas 2006, *Elements of Information Theory*, 2nd ed.,
+sec. 9.1), and equals ``H[q(o)] - E_q H[p(o|s)]``. So per frame the camera's two terms add up
+to ``L H_out - IG_k``, and on one horizon routes differ by
+``KL_pose + KL_time - sum_k IG_k``: a route earns its length back in information gain only
+when the belief is unsure (the tests check this decomposition and every formula against
+sampling).
 """
 
 from __future__ import annotations

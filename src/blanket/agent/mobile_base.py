@@ -48,6 +48,20 @@ ACM 22) gives the waypoints the attractor follows; planning happens once, when t
 localises. Limits: axis-aligned boxes only; no replanning around unmapped obstacles; the start
 must leave the base's own clearance; a bearing-only camera needs three visible posts to localise
 (two with ranges); waypoint corners are cut by at most ``waypoint_radius_m``.
+
+Route choice (``planner``): ``"direct"`` takes the shortest path; ``"efe"`` scores the shortest
+path and the shortest path through each aisle by expected free energy (risk plus ambiguity,
+from this same linearised model: :mod:`blanket.agent.efe`) and takes the least. A fix from
+posts is used for planning only once the position is known to ``fix_sd_m``; until then the
+base keeps turning on the spot and fusing frames. With a nominal start in the description
+(layout ``"dark-aisle"``) the belief starts there with the given spread instead.
+
+Docking reliability (measured on the husky, seeds 0-49): pybullet's skid steer creeps along
+its heading while it turns on the spot, and a base turning in an aisle towards a bench drove
+its nose into it. Two rules keep the turn where it began: while the attractor asks for a pure
+turn the believed offset along the heading is fed back as a forward speed
+(:meth:`BaseAgent._hold_spot`), and a waypoint more than ``reverse_beyond_rad`` off the bow is
+approached stern first (a smaller turn).
 """
 
 from __future__ import annotations
@@ -638,11 +652,17 @@ class BaseAgent(PredictMixin):
 
     def _inflation(self) -> np.ndarray:
         """Per obstacle growth: benches by ``inflation_m``; posts (boxes 5 cm round the post)
-        by the half width plus 2 cm, so the base may pass between two row-end posts at an
-        aisle mouth (posts 0.9 m apart) as the aisle's own width allows."""
+        by as much but at most so that a 4 cm gap stays between the grown boxes of the two
+        closest posts -- the row-end posts at an aisle mouth stand 0.9 m apart, and growing
+        them by the full bench margin would close the aisle to the planner."""
         d = self.description
-        posts = np.full(d.n_landmarks, min(self.inflation_m, d.half_width_m + 0.02))
-        return np.r_[np.full(len(d.bench_boxes_m), self.inflation_m), posts]
+        lm = d.landmarks_m
+        gap = np.inf
+        if len(lm) > 1:
+            dist = np.hypot(*(lm[:, None, :] - lm[None, :, :]).transpose(2, 0, 1))
+            gap = float(np.min(dist[np.triu_indices(len(lm), 1)]))
+        post = max(min(self.inflation_m, gap / 2 - 0.05 - 0.02), d.half_width_m)
+        return np.r_[np.full(len(d.bench_boxes_m), self.inflation_m), np.full(len(lm), post)]
 
     def candidate_routes(self, goal_pose: np.ndarray) -> list[np.ndarray]:
         """Routes ``(k, 2)`` from the believed position to the goal's position: the shortest
