@@ -38,7 +38,7 @@ def main() -> None:
     parser.add_argument("--robot", default="rover")
     parser.add_argument("--sds", nargs=2, type=float, default=[0.01, 0.15])
     args = parser.parse_args()
-    fig, axes = plt.subplots(1, 2, figsize=(12, 5.2), sharey=True)
+    fig, axes = plt.subplots(1, 2, figsize=(12, 5.7), sharey=True)
     colors = ["tab:blue", "tab:orange", "tab:green"]
     for ax, sd in zip(axes, args.sds, strict=True):
         env = gym.make(
