@@ -679,10 +679,30 @@ class BaseAgent(PredictMixin):
         start = self.mu[0, :2].copy()
         first = plan_waypoints(start, approach, boxes, grow)
         routes = [_drop_collinear(np.array([start] + first + [goal[:2]]))[1:]]
-        for via in aisle_centres(self.description.bench_boxes_m):
-            first = plan_waypoints(start, via, boxes, grow)
-            second = plan_waypoints(via, approach, boxes, grow)
-            r = _drop_collinear(np.array([start] + first + second + [goal[:2]]))[1:]
+        d = self.description
+        for via in aisle_centres(d.bench_boxes_m):
+            # the aisle is driven end to end on its centre line, from a point a base length
+            # clear of its benches and posts at each end: a long base turns out there, not
+            # beside the row-end posts
+            near = np.abs(d.bench_boxes_m[:, [1, 3]] - via[1]).min(axis=1) < 1.0
+            xs = np.r_[d.bench_boxes_m[near][:, [0, 2]].ravel(), via[0]]
+            posts = d.landmarks_m[np.abs(d.landmarks_m[:, 1] - via[1]) < 1.0]
+            xs = np.r_[xs, posts[:, 0]] if len(posts) else xs
+            margin = 2.0 * d.half_length_m + 0.1
+            ends = [np.array([xs.min() - margin, via[1]]), np.array([xs.max() + margin, via[1]])]
+            ends.sort(key=lambda e: float(np.hypot(*(e - start))))
+            legs = [start, ends[0], ends[1], approach]
+            on_line = abs(approach[1] - via[1]) < 0.5
+            if on_line and min(ends[0][0], ends[1][0]) <= approach[0] <= max(
+                ends[0][0], ends[1][0]
+            ):
+                legs = [start, ends[0], approach]  # the approach point is on this aisle's line
+            pts = [
+                p
+                for a, b in zip(legs[:-1], legs[1:], strict=True)
+                for p in plan_waypoints(a, b, boxes, grow)
+            ]
+            r = _drop_collinear(np.array([start] + pts + [goal[:2]]))[1:]
             if not any(len(r) == len(o) and np.allclose(r, o) for o in routes):
                 routes.append(r)
         return routes
