@@ -5,9 +5,13 @@ Prints, for each base:
 - docking over N seeded starts: success rate (within 10 cm and 10 degrees, held 0.25 s),
   no-contact rate, median time to success;
 - a 60 s patrol (goals cycling round the aisles): position RMSE of the agent's belief and of
-  odometry-only dead reckoning (from the true start pose, same run), and their ratio.
+  odometry-only dead reckoning (from the true start pose, same run), and their ratio;
+- with ``--dark-aisle``: on ``layout="dark-aisle"`` with an uncertain start, the ``direct`` and
+  ``efe`` planners over the same seeded starts: docked share, no-contact share, median final
+  distance to the dock, and which aisle the EFE planner chose.
 
-Usage: ``python scripts/bench_base.py [--starts 20] [--robots rover husky]``.
+Usage: ``python scripts/bench_base.py [--starts 50] [--robots rover husky] [--skip-docking]
+[--dark-aisle 20] [--start-sd 0.15]``.
 """
 
 from __future__ import annotations
@@ -32,19 +36,29 @@ PATROL_GOALS = [
 ]
 
 
-def docking(robot: str, starts: int) -> dict[str, float]:
+def docking(
+    robot: str, starts: int, env_kwargs: dict | None = None, **agent_options
+) -> dict[str, float]:
     """Success and contact rates over seeded starts (seeds 0 .. starts-1)."""
-    env = gym.make("blanket/base-goto-v0", robot=robot)
-    agent = BaseAgent.from_env(env)
-    results = [run_base_episode(env, agent, seed=s) for s in range(starts)]
+    env = gym.make("blanket/base-goto-v0", robot=robot, **(env_kwargs or {}))
+    agent = BaseAgent.from_env(env, **agent_options)
+    results, aisles = [], []
+    for s in range(starts):
+        results.append(run_base_episode(env, agent, seed=s))
+        if agent.routes:  # the EFE planner's choice: the aisle its route runs along
+            mid = agent.routes[agent.route_index].means
+            mid = mid[np.abs(mid[:, 0]) < 2.5]
+            aisles.append("north" if len(mid) and mid[:, 1].mean() > 0 else "south")
     env.close()
     times = [r["time_to_success_s"] for r in results if r["success"]]
     return {
         "success_rate": float(np.mean([r["success"] for r in results])),
         "no_contact_rate": float(np.mean([not r["contact"] for r in results])),
         "median_time_s": float(np.median(times)) if times else float("nan"),
+        "median_error_m": float(np.median([r["final_error_m"] for r in results])),
         "contact_seeds": [s for s, r in enumerate(results) if r["contact"]],
         "failed_seeds": [s for s, r in enumerate(results) if not r["success"]],
+        "aisles": aisles,
     }
 
 
@@ -134,10 +148,29 @@ def patrol_rmse(robot: str, seed: int = 0, duration_s: float = 60.0) -> dict[str
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--starts", type=int, default=20)
+    parser.add_argument("--starts", type=int, default=50)
     parser.add_argument("--robots", nargs="+", default=["rover", "husky"])
+    parser.add_argument("--skip-docking", action="store_true", help="only the dark-aisle part")
+    parser.add_argument("--dark-aisle", type=int, default=0, help="starts on dark-aisle (0: off)")
+    parser.add_argument("--start-sd", type=float, default=0.15, help="dark-aisle start sd")
     args = parser.parse_args()
-    for robot in args.robots:
+    for robot in args.robots if args.dark_aisle else []:
+        sd = args.start_sd
+        env_kwargs = {"layout": "dark-aisle", "start_pose_sd": [sd, sd, sd]}
+        print(f"== {robot} dark-aisle, start sd {sd} (m, m, rad), {args.dark_aisle} starts")
+        for planner in ("direct", "efe"):
+            r = docking(robot, args.dark_aisle, env_kwargs, planner=planner)
+            chosen = (
+                f"; aisles {r['aisles'].count('north')} north / {r['aisles'].count('south')} south"
+                if r["aisles"]
+                else ""
+            )
+            print(
+                f"  {planner:6s}: docked {r['success_rate']:.0%}, no contact "
+                f"{r['no_contact_rate']:.0%}, median final distance {100 * r['median_error_m']:.1f}"
+                f" cm, median time {r['median_time_s']:.1f} s{chosen}"
+            )
+    for robot in [] if args.skip_docking else args.robots:
         print(f"== {robot}")
         cal = [calibrate_effective_track(robot, w) for w in (1.0, 2.0, 3.0, 4.0)]
         factors = [c["factor"] for c in cal]

@@ -44,16 +44,16 @@ import pybullet_data
 from gymnasium import spaces
 
 from blanket.base_description import BaseDescription
-from blanket.errors import ConfigError
+from blanket.errors import ConfigError, did_you_mean
 from blanket.planar_motion import wrap_angle
 from blanket.sensors.landmarks import LandmarkSensor
 from blanket.sensors.wheel_odometry import WheelOdometry
 from blanket.sim.base_world import PHYSICS_HZ, BaseWorld, RobotSpec, spin_in_place
 from blanket.success import HeldInside
 from blanket_envs.greenhouse_rows import (
+    LAYOUTS,
     GreenhouseLayout,
     box_distance,
-    default_layout,
     sample_start_pose,
     validate_layout,
 )
@@ -157,6 +157,15 @@ class BaseGotoEnv(gym.Env):
         Custom landmark (post) positions; default the greenhouse posts.
     dock_pose : array_like (3,) or None
         Custom goal ``(x_m, y_m, heading_rad)``; default the greenhouse dock.
+    layout : {"rows", "dark-aisle"}
+        ``"rows"`` (default): the three bench rows with all posts, seeded starts in the aisles
+        and the east headland. ``"dark-aisle"``: posts only at the ends of the south aisle and a
+        nominal start in the east headland facing the dark north aisle
+        (:func:`blanket_envs.greenhouse_rows.dark_aisle_layout`).
+    start_pose_sd : array_like (3,) or None
+        Only with a nominal start (``"dark-aisle"``): standard deviations ``(x_m, y_m,
+        heading_rad)`` of the true start around it, each in [0, 1]; the description tells the
+        agent the nominal pose and these spreads. None (default) starts exactly at the nominal.
     wheel_radius_m, effective_track_factor : float or None
         What the description reports (default: the robot's true values); set them to test an
         agent against a miscalibrated model.
@@ -186,6 +195,8 @@ class BaseGotoEnv(gym.Env):
         camera_range_m: float = 8.0,
         landmarks: Any = None,
         dock_pose: Any = None,
+        layout: str = "rows",
+        start_pose_sd: Any = None,
         wheel_radius_m: float | None = None,
         effective_track_factor: float | None = None,
         terminate_on_success: bool = True,
@@ -239,7 +250,28 @@ class BaseGotoEnv(gym.Env):
             )
         self.render_mode = render_mode
 
-        layout = default_layout()
+        if layout not in LAYOUTS:
+            raise ConfigError(f"layout {layout!r} is unknown; {did_you_mean(layout, LAYOUTS)}")
+        self.layout_name = layout
+        layout = LAYOUTS[layout]()
+        if start_pose_sd is not None:
+            if layout.start_pose is None:
+                raise ConfigError(
+                    "start_pose_sd needs a layout with a nominal start (layout='dark-aisle')"
+                )
+            try:
+                sd = np.asarray(start_pose_sd, dtype=float).reshape(-1)
+            except (TypeError, ValueError):
+                sd = np.full(1, np.nan)
+            if sd.shape != (3,) or not np.all((sd >= 0) & (sd <= 1)):
+                raise ConfigError(
+                    "start_pose_sd must be 3 numbers (x_m, y_m, heading_rad) in [0, 1], "
+                    f"got {start_pose_sd!r}"
+                )
+            start_pose_sd = sd
+        elif layout.start_pose is not None:
+            start_pose_sd = np.zeros(3)
+        self.start_pose_sd = start_pose_sd
         if landmarks is not None:
             lm = np.asarray(landmarks, dtype=float)
             if lm.ndim != 2 or lm.shape[1] != 2 or len(lm) == 0:
@@ -306,6 +338,8 @@ class BaseGotoEnv(gym.Env):
             world_bounds_m=np.array(layout.world_bounds_m, dtype=float),
             dock_pose=np.array(layout.dock_pose, dtype=float),
             episode_s=self.episode_s,
+            start_pose=None if layout.start_pose is None else np.array(layout.start_pose),
+            start_pose_sd=None if start_pose_sd is None else np.array(start_pose_sd),
         )
         L = len(layout.landmarks_m)
         lim = spec.wheel_speed_limit_rad_s
@@ -413,7 +447,9 @@ class BaseGotoEnv(gym.Env):
                     f"{self.robot_spec.half_width_m:.2f} m from every bench"
                 )
         else:
-            start = sample_start_pose(self.np_random, self.layout, clearance)
+            start = sample_start_pose(
+                self.np_random, self.layout, clearance, start_pose_sd=self.start_pose_sd
+            )
         self._reset_state()
         self.world.reset(start)
         self.world.step(self.substeps)

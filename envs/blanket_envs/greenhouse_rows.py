@@ -16,6 +16,13 @@ y north, z up, the floor is z = 0):
   out of the aisle and stops facing the west headland posts;
 - start poses are drawn in the two inner aisles (within 5 cm of the aisle centre line) and in
   the east headland, with a uniform heading.
+
+The ``"dark-aisle"`` layout (:func:`dark_aisle_layout`) keeps the benches and the dock but
+leaves only the four row-end posts of the south aisle: the north aisle, the short way from the
+east headland to the dock, is dark; the south aisle, 5.2 m longer, has posts at both ends. The
+base starts at a nominal pose in the east headland facing the north aisle, ``(4.4, 1.3, pi)``;
+an env option spreads the true start around it (``start_pose_sd``) and tells the agent the
+spread, which is what makes the longer, lit way worth taking.
 """
 
 from __future__ import annotations
@@ -35,6 +42,8 @@ __all__ = [
     "box_distance",
     "build_world",
     "sample_start_pose",
+    "dark_aisle_layout",
+    "LAYOUTS",
 ]
 
 
@@ -74,6 +83,9 @@ class GreenhouseLayout:
         ``(x_min, y_min, x_max, y_max)`` of the floor.
     start_regions_m : numpy.ndarray
         Boxes ``(x_min, y_min, x_max, y_max)`` start positions are drawn from, shape ``(k, 4)``.
+    start_pose : numpy.ndarray or None
+        A nominal start ``(x_m, y_m, heading_rad)``; when set, starts are drawn around it (see
+        :func:`sample_start_pose`) instead of in ``start_regions_m``.
     """
 
     bench_boxes_m: np.ndarray = field(default_factory=_default_benches)
@@ -92,11 +104,23 @@ class GreenhouseLayout:
             ]
         )
     )
+    start_pose: np.ndarray | None = None
 
 
 def default_layout() -> GreenhouseLayout:
     """The default three-row greenhouse (see the module docstring)."""
     return GreenhouseLayout()
+
+
+def dark_aisle_layout() -> GreenhouseLayout:
+    """The default benches and dock, posts only at the ends of the south aisle, a nominal
+    start in the east headland facing the dark north aisle (module docstring)."""
+    posts = np.array([(x, y) for x in (-3.1, 3.1) for y in (-0.85, -1.75)], dtype=float)
+    return GreenhouseLayout(landmarks_m=posts, start_pose=np.array([4.4, 1.3, np.pi]))
+
+
+#: Named layouts of the ``layout`` env option.
+LAYOUTS = {"rows": default_layout, "dark-aisle": dark_aisle_layout}
 
 
 def box_distance(point_xy: np.ndarray, boxes: np.ndarray) -> np.ndarray:
@@ -153,15 +177,29 @@ def validate_layout(layout: GreenhouseLayout, clearance_m: float = 0.0) -> None:
 
 
 def sample_start_pose(
-    rng: np.random.Generator, layout: GreenhouseLayout, clearance_m: float
+    rng: np.random.Generator,
+    layout: GreenhouseLayout,
+    clearance_m: float,
+    start_pose_sd: np.ndarray | None = None,
 ) -> np.ndarray:
     """Draw a start pose ``(x, y, heading)`` in the start regions, ``clearance_m`` from obstacles.
 
-    A region is chosen with probability proportional to its area; the heading is uniform.
+    A region is chosen with probability proportional to its area; the heading is uniform. A
+    layout with a nominal ``start_pose`` draws ``start_pose + N(0, diag(start_pose_sd^2))``
+    instead (exactly the nominal pose when ``start_pose_sd`` is None), redrawn until clear.
     """
+    boxes = np.asarray(layout.bench_boxes_m, dtype=float)
+    if layout.start_pose is not None:
+        nominal = np.asarray(layout.start_pose, dtype=float)
+        sd = np.zeros(3) if start_pose_sd is None else np.asarray(start_pose_sd, dtype=float)
+        for _ in range(1000):
+            pose = nominal + sd * rng.standard_normal(3)
+            if len(boxes) == 0 or np.min(box_distance(pose[:2], boxes)) >= clearance_m:
+                pose[2] = (pose[2] + np.pi) % (2 * np.pi) - np.pi
+                return pose
+        raise ConfigError(f"start_pose_sd {tuple(sd)} leaves no start {clearance_m:.2f} m clear")
     regions = np.asarray(layout.start_regions_m, dtype=float).reshape(-1, 4)
     area = (regions[:, 2] - regions[:, 0]) * (regions[:, 3] - regions[:, 1])
-    boxes = np.asarray(layout.bench_boxes_m, dtype=float)
     posts = np.asarray(layout.landmarks_m, dtype=float).reshape(-1, 2)
     for _ in range(1000):
         k = int(rng.choice(len(regions), p=area / area.sum()))

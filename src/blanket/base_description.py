@@ -60,6 +60,12 @@ class BaseDescription:
         Goal pose ``(x_m, y_m, heading_rad)``.
     episode_s, success_distance_m, success_heading_rad, success_hold_s : float
         Task settings (the hold time is the one success rule's, :data:`blanket.success.HOLD_S`).
+    start_pose : numpy.ndarray or None
+        Nominal start ``(x_m, y_m, heading_rad)`` where the layout has one (``"dark-aisle"``),
+        else None (starts anywhere in the start regions; the agent localises from posts).
+    start_pose_sd : numpy.ndarray or None
+        Standard deviations ``(x_m, y_m, heading_rad)`` of the true start around ``start_pose``
+        (zeros: exactly there); None when there is no nominal start.
     """
 
     robot: str
@@ -88,6 +94,8 @@ class BaseDescription:
     success_distance_m: float = 0.10
     success_heading_rad: float = float(np.deg2rad(10.0))
     success_hold_s: float = HOLD_S
+    start_pose: np.ndarray | None = None
+    start_pose_sd: np.ndarray | None = None
 
     @property
     def n_landmarks(self) -> int:

@@ -30,6 +30,7 @@ __all__ = [
     "camera_position",
     "bearing_range",
     "bearing_range_jacobian",
+    "segment_hits_box",
 ]
 
 
@@ -171,3 +172,23 @@ def bearing_range_jacobian(
     jb = np.stack([dy / q, -dx / q, -d * (dy * sh + dx * ch) / q - 1.0], axis=1)
     jr = np.stack([-dx / rng, -dy / rng, d * (dx * sh - dy * ch) / rng], axis=1)
     return jb, jr
+
+
+def segment_hits_box(p: np.ndarray, q: np.ndarray, box: np.ndarray) -> bool:
+    """Whether the segment ``p -> q`` passes through the open box ``(x0, y0, x1, y1)`` (slabs)."""
+    t0, t1 = 0.0, 1.0
+    d = np.asarray(q, dtype=float) - np.asarray(p, dtype=float)
+    for axis in range(2):
+        lo, hi = box[axis], box[axis + 2]
+        if abs(d[axis]) < 1e-12:
+            if not (lo < p[axis] < hi):
+                return False
+            continue
+        ta = (lo - p[axis]) / d[axis]
+        tb = (hi - p[axis]) / d[axis]
+        if ta > tb:
+            ta, tb = tb, ta
+        t0, t1 = max(t0, ta), min(t1, tb)
+        if t0 >= t1:
+            return False
+    return True
