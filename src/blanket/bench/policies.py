@@ -291,6 +291,17 @@ def _rl(algo: str) -> Callable[..., Any]:
     return build
 
 
+def _goal_rl(name: str) -> Callable[..., Any]:
+    def build(env: Any, model_options: Mapping[str, Any], context: Mapping[str, Any]) -> Any:
+        from blanket.bench.rl_goal import load_goal_policy
+
+        folder = context.get("rl_models")  # --rl-models DIR if it holds <name>.json, else models/
+        has = folder is not None and (Path(folder) / f"{name}.json").is_file()
+        return load_goal_policy(name, env.unwrapped.description, folder if has else None)
+
+    return build
+
+
 POLICIES: dict[str, PolicySpec] = {
     s.name: s
     for s in (
@@ -349,6 +360,13 @@ POLICIES: dict[str, PolicySpec] = {
             _rl("ppo"),
             model_based=False,
             rl_algo="ppo",
+        ),
+        PolicySpec(
+            "sac-her",
+            "goal-conditioned SAC + HER, shipped weights in models/ (iiwa, velocity control)",
+            "velocity",
+            _goal_rl("sac-her"),
+            model_based=False,
         ),
     )
 }
