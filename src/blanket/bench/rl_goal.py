@@ -39,6 +39,7 @@ import hashlib
 import json
 import math
 import time
+import zipfile
 from collections.abc import Mapping, Sequence
 from dataclasses import asdict, dataclass
 from pathlib import Path
@@ -440,14 +441,17 @@ class MlpActor:
             with np.load(npz, allow_pickle=False) as data:
                 weights = [np.array(data[f"w{i}"]) for i in range(layers)]
                 biases = [np.array(data[f"b{i}"]) for i in range(layers)]
-        except (OSError, ValueError, KeyError, EOFError) as exc:
+        except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile) as exc:
             raise ConfigError(
                 f"RL weights {name}: not a plain array file ({shorten(str(exc))})"
             ) from None
         for arr in weights + biases:
             if arr.dtype.kind != "f":
                 raise ConfigError(f"RL weights {name}: arrays must be floating point")
-        actor = cls(weights, biases, str(doc.get("activation")), str(doc.get("squash")))
+        try:
+            actor = cls(weights, biases, str(doc.get("activation")), str(doc.get("squash")))
+        except ConfigError as exc:
+            raise ConfigError(f"RL weights {where}: {shorten(str(exc))}") from None
         return actor, doc
 
 
