@@ -135,3 +135,35 @@ def test_shipped_sac_her_weights_load_and_act_on_the_iiwa():
     assert doc["settings"]["robot"] == "iiwa" and doc["control_steps"] > 0
     assert doc["learning_curve"] and doc["versions"]["stable_baselines3"]
     assert action.shape == (7,) and np.all(np.isfinite(action))
+
+
+def test_bench_row_of_sac_her_carries_its_training_cost(tmp_path):
+    from blanket.bench.suite import BenchSettings, run_benchmark
+
+    path = _save(tmp_path)
+    doc = json.loads(path.read_text())
+    curve = [
+        {
+            "policy_steps": 10,
+            "control_steps": 40,
+            "wall_s": 5.0,
+            "success_1cm": 0.0,
+            "success_5cm": 0.5,
+            "final_error_m": 0.04,
+        }
+    ]
+    doc |= {"policy_steps": 10, "control_steps": 40, "wall_time_s": 5.0, "learning_curve": curve}
+    path.write_text(json.dumps(doc))  # the hash covers the arrays, not the record
+    settings = BenchSettings.from_cli(
+        policies=["sac-her"],
+        conditions=["nominal"],
+        episodes=1,
+        robot="planar",
+        episode_s=0.5,
+        rl_models=str(tmp_path),
+    )
+    summary = run_benchmark(settings, tmp_path / "bench", progress=False)
+    (record,) = summary["records"]
+    assert record["policy"] == "sac-her" and record["training_steps"] == 40
+    assert record["training_wall_s"] == 5.0
+    assert "## RL training" in (tmp_path / "bench" / "report.md").read_text()

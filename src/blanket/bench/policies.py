@@ -282,6 +282,17 @@ def rl_model_path(algo: str, context: Mapping[str, Any]) -> Path:
     return Path(folder) / f"{algo}.zip"
 
 
+def rl_meta_path(spec: PolicySpec, rl_models: str | None) -> Path | None:
+    """The JSON with an RL policy's training record (steps, wall time, curve); None if none."""
+    from blanket.bench.rl_goal import GOAL_ALGORITHMS, goal_weights_path
+
+    if spec.rl_algo is not None:
+        return Path(rl_models or ".") / f"{spec.rl_algo}.json"
+    if spec.name in GOAL_ALGORITHMS:
+        return goal_weights_path(spec.name, rl_models)
+    return None
+
+
 def _rl(algo: str) -> Callable[..., Any]:
     def build(env: Any, model_options: Mapping[str, Any], context: Mapping[str, Any]) -> Any:
         from blanket.bench.rl import SB3Policy
@@ -295,9 +306,7 @@ def _goal_rl(name: str) -> Callable[..., Any]:
     def build(env: Any, model_options: Mapping[str, Any], context: Mapping[str, Any]) -> Any:
         from blanket.bench.rl_goal import load_goal_policy
 
-        folder = context.get("rl_models")  # --rl-models DIR if it holds <name>.json, else models/
-        has = folder is not None and (Path(folder) / f"{name}.json").is_file()
-        return load_goal_policy(name, env.unwrapped.description, folder if has else None)
+        return load_goal_policy(name, env.unwrapped.description, context.get("rl_models"))
 
     return build
 

@@ -62,6 +62,7 @@ __all__ = [
     "MlpActor",
     "GoalPolicy",
     "load_goal_policy",
+    "goal_weights_path",
     "train_goal",
     "DEFAULT_MODELS_DIR",
 ]
@@ -528,10 +529,16 @@ class GoalPolicy:
         return self.act(observation), state
 
 
+def goal_weights_path(name: str, folder: str | Path | None = None) -> Path:
+    """``folder/<name>.json`` when that file exists, else the shipped ``models/<name>.json``."""
+    if folder is not None and (Path(folder) / f"{name}.json").is_file():
+        return Path(folder) / f"{name}.json"
+    return DEFAULT_MODELS_DIR / f"{name}.json"
+
+
 def load_goal_policy(name: str, description: Any, folder: str | Path | None = None) -> GoalPolicy:
-    """The shipped (or ``folder``'s) ``<name>.json`` + ``<name>.npz`` as a benchmark policy."""
-    folder = Path(folder) if folder is not None else DEFAULT_MODELS_DIR
-    path = folder / f"{name}.json"
+    """``<name>.json`` + ``<name>.npz`` (:func:`goal_weights_path`) as a benchmark policy."""
+    path = goal_weights_path(name, folder)
     if not path.is_file():
         raise ConfigError(
             f"policy {name!r} needs {path} (train one with: blanket train-rl --algo {name} "
@@ -685,6 +692,7 @@ def train_goal(
             "sb3_hyperparameters": hp,
             "policy_steps": steps,
             "control_steps": steps * settings.action_repeat,
+            "finished": steps >= settings.steps,
             "wall_time_s": round(wall(), 1),
             "seed": settings.seed,
             "versions": _versions(),

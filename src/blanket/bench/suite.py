@@ -11,7 +11,7 @@ from typing import Any
 
 from blanket.bench.evaluate import run_policy_episodes
 from blanket.bench.metrics import aggregate, episode_metrics
-from blanket.bench.policies import POLICIES, PolicySpec, resolve_policy
+from blanket.bench.policies import POLICIES, PolicySpec, resolve_policy, rl_meta_path
 from blanket.conditions import PRESETS, Condition, resolve_conditions
 from blanket.errors import ConfigError
 
@@ -199,7 +199,7 @@ def evaluate_cell(payload: dict[str, Any]) -> dict[str, Any]:
         "note": _note(spec, condition),
         "wall_s": time.perf_counter() - t0,
     }
-    meta = context["rl_meta"].get(spec.rl_algo or "")
+    meta = context["rl_meta"].get(spec.rl_algo or spec.name)
     if meta:
         record["training_steps"] = meta.get("control_steps")
         record["training_policy_steps"] = meta.get("policy_steps")
@@ -299,10 +299,9 @@ def run_benchmark(
         context["rl_models"] = str(smoke_dir)
     specs = [resolve_policy(p) for p in settings.policies]
     for spec in specs:
-        if spec.rl_algo is not None:
-            meta_path = Path(context["rl_models"] or ".") / f"{spec.rl_algo}.json"
-            if meta_path.is_file():
-                context["rl_meta"][spec.rl_algo] = json.loads(meta_path.read_text())
+        meta_path = rl_meta_path(spec, context["rl_models"])
+        if meta_path is not None and meta_path.is_file():
+            context["rl_meta"][spec.rl_algo or spec.name] = json.loads(meta_path.read_text())
     conditions = resolve_conditions(settings.conditions)
     plain = asdict(settings)
     payloads = []
