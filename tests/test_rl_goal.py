@@ -240,3 +240,18 @@ def test_train_rl_cli_refuses_bad_goal_options(tmp_path):
         ["--algo", "sac-herr"],
     ):
         assert main(["train-rl", "--steps", "10", "--out", out, *args]) == 2
+
+
+def test_learning_rate_end_gives_a_linear_schedule_over_the_budget():
+    from blanket.bench.rl_goal import _build
+
+    settings = GoalTrainSettings(
+        steps=1000, hyperparameters={"learning_rate_end": 1e-4, "buffer_size": 1000}, **PLANAR
+    )
+    model, env = _build(settings, settings.defaults())
+    try:
+        assert model.lr_schedule(1.0) == pytest.approx(1e-3)
+        assert model.lr_schedule(0.5) == pytest.approx(5.5e-4)
+        assert model.lr_schedule(0.0) == pytest.approx(1e-4)
+    finally:
+        env.close()

@@ -259,6 +259,9 @@ class GoalTrainSettings(TrainSettings):
     def defaults(self) -> dict[str, Any]:
         """The SB3 hyper-parameters of this algorithm, with ``hyperparameters`` on top.
 
+        ``learning_rate_end`` (not an SB3 keyword) makes the learning rate fall linearly from
+        ``learning_rate`` to it over the budget (:class:`LinearRate`).
+
         SAC + HER: 2 x 256 ReLU networks, learning rate 1e-3, batch 256, gamma 0.95, one gradient
         step every 2 decisions, 4 relabelled goals per transition from the future of the episode
         (the future strategy with k = 4 of Plappert et al. 2018, arXiv 1802.09464, sec. 2, who
@@ -569,12 +572,30 @@ def _score(row: Mapping[str, Any]) -> tuple[float, float, float]:
     return (row["success_1cm"], row["success_5cm"], -row["final_error_m"])
 
 
+@dataclass(frozen=True)
+class LinearRate:
+    """A learning rate falling linearly from ``start`` to ``end`` over the training budget.
+
+    Called by SB3 with the remaining share of the budget (1 at the start, 0 at ``steps``); a
+    resumed run continues the same schedule when ``--steps`` stays the same.
+    """
+
+    start: float
+    end: float
+
+    def __call__(self, remaining: float) -> float:
+        return self.end + (self.start - self.end) * remaining
+
+
 def _build(settings: GoalTrainSettings, hp: dict[str, Any]) -> tuple[Any, Any]:
     from stable_baselines3 import PPO, SAC, HerReplayBuffer
     from stable_baselines3.common.vec_env import DummyVecEnv
 
     hp = dict(hp)
     net_arch = hp.pop("net_arch")
+    end = hp.pop("learning_rate_end", None)
+    if end is not None:  # linear from learning_rate to learning_rate_end over the whole budget
+        hp["learning_rate"] = LinearRate(float(hp["learning_rate"]), float(end))
     if settings.algo == "sac-her":
         k = hp.pop("n_sampled_goal")
         env = DummyVecEnv([lambda: make_goal_env(settings)])
@@ -642,7 +663,8 @@ def train_goal(
       1 cm, then 5 cm, then median error), in the shipped, pickle-free format;
     - ``last/<algo>.npz`` + ``.json``: the latest evaluation.
 
-    ``steps`` is the total budget in decisions; a resumed run continues to it.
+    ``steps`` is the total budget in decisions; a resumed run continues to it (its replay
+    buffer keeps the size set by the first run's budget).
     """
     settings.validate()
     from blanket.bench.rl import _require_sb3
@@ -658,6 +680,8 @@ def train_goal(
     state_path = out / "state.json"
     hp = settings.defaults()
     model, env = _build(settings, hp)
+    if "learning_starts" in hp:
+        hp["learning_starts"] = int(model.learning_starts)
     description = env.envs[0].unwrapped.description
     curve: list[dict[str, Any]] = []
     wall_before = 0.0
