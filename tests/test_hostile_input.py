@@ -179,6 +179,53 @@ def test_no_eval_exec_or_pickle_in_the_package() -> None:
     assert found == []
 
 
+def test_array_and_tensor_loads_in_the_package_refuse_pickles() -> None:
+    # the RL weights path: numpy.load only with allow_pickle=False, torch.load only with
+    # weights_only=True (no SB3 .load of shipped models either)
+    found = []
+    for path in _python_files():
+        for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+            if not (isinstance(node, ast.Call) and isinstance(node.func, ast.Attribute)):
+                continue
+            owner = ast.unparse(node.func.value)
+            keywords = {k.arg: ast.unparse(k.value) for k in node.keywords}
+            if node.func.attr == "load" and owner in ("np", "numpy"):
+                if keywords.get("allow_pickle") != "False":
+                    found.append(f"{path.name}:{node.lineno} {owner}.load")
+            if node.func.attr == "load" and owner == "torch":
+                if keywords.get("weights_only") != "True":
+                    found.append(f"{path.name}:{node.lineno} torch.load")
+    assert found == []
+
+
+def test_loading_and_running_rl_weights_unpickles_nothing(tmp_path, monkeypatch) -> None:
+    import pickle
+
+    import numpy as np
+
+    from blanket.bench.rl import make_bench_env
+    from blanket.bench.rl_goal import MlpActor, load_goal_policy
+
+    rng = np.random.default_rng(0)
+    weights = [rng.normal(size=(8, 10)), rng.normal(size=(2, 8))]
+    actor = MlpActor(weights, [np.zeros(8), np.zeros(2)], "relu", "tanh")
+    actor.save(tmp_path / "sac-her", {"settings": {"control": "velocity", "action_repeat": 2}})
+    env = make_bench_env("planar", "velocity", 0.5)
+
+    def refuse(*args, **kwargs):
+        raise AssertionError("unpickling on the RL weights path")
+
+    try:
+        obs, _ = env.reset(seed=0)  # (numba's compile cache may unpickle: not the RL path)
+        with monkeypatch.context() as patch:
+            for name in ("load", "loads", "Unpickler"):
+                patch.setattr(pickle, name, refuse)
+            policy = load_goal_policy("sac-her", env.unwrapped.description, tmp_path)
+            assert np.all(np.isfinite(policy.act(obs)))
+    finally:
+        env.close()
+
+
 def test_scenario_files_are_read_with_tomllib() -> None:
     tree = ast.parse((ROOT / "src" / "blanket" / "scenario.py").read_text(encoding="utf-8"))
     imported = {a.name for n in ast.walk(tree) if isinstance(n, ast.Import) for a in n.names}

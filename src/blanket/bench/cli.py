@@ -174,7 +174,13 @@ def add_train_parser(sub: Any) -> argparse.ArgumentParser:
         "learning curve). Needs the rl extra: pip install torch==2.13.0, then "
         "stable-baselines3.",
     )
-    p.add_argument("--algo", required=True, metavar="NAME", help="sac or ppo")
+    p.add_argument(
+        "--algo",
+        required=True,
+        metavar="NAME",
+        help="sac-her (goal-conditioned SAC with hindsight relabelling), ppo-vec (PPO on "
+        "--n-envs goal-conditioned envs), or the flat-observation sac / ppo",
+    )
     p.add_argument(
         "--steps",
         type=_positive_int,
@@ -197,16 +203,35 @@ def add_train_parser(sub: Any) -> argparse.ArgumentParser:
         type=_positive_int,
         default=8,
         metavar="K",
-        help="hold each decision for K control steps (default 8: 30 Hz at 240 Hz)",
+        help="hold each decision for K control steps (default 8: 30 Hz at 240 Hz; sac-her and "
+        "ppo-vec take 1, 2, 4 or 8)",
     )
     p.add_argument(
         "--eval-every",
         type=_positive_int,
-        default=10_000,
         metavar="N",
-        help="policy steps between learning-curve evaluations (default 10000)",
+        help="policy steps between learning-curve evaluations (default 10000; sac-her and "
+        "ppo-vec 5000)",
     )
-    p.add_argument("--eval-episodes", type=_positive_int, default=10, metavar="N")
+    p.add_argument(
+        "--eval-episodes",
+        type=_positive_int,
+        metavar="N",
+        help="held-out evaluation episodes (seeds from 100000; default 10, sac-her and ppo-vec 30)",
+    )
+    p.add_argument(
+        "--n-envs",
+        type=_positive_int,
+        default=4,
+        metavar="N",
+        help="ppo-vec: environments stepped together (default 4)",
+    )
+    p.add_argument(
+        "--resume",
+        action="store_true",
+        help="sac-her / ppo-vec: continue the run in --out from its checkpoint up to --steps "
+        "(same settings; the checkpoint is SB3's own format: resume only your own runs)",
+    )
     p.add_argument("--distance-scale-m", type=_positive_float, default=0.1, metavar="M")
     p.add_argument("--tolerance-bonus", type=float, default=1.0, metavar="R")
     p.add_argument("--effort-weight", type=float, default=0.01, metavar="W")
@@ -221,7 +246,8 @@ def add_train_parser(sub: Any) -> argparse.ArgumentParser:
 
 
 def run_train(args: argparse.Namespace) -> int:
-    from blanket.bench.rl import TrainSettings, train
+    from blanket.bench.rl import ALGORITHMS, TrainSettings, train
+    from blanket.bench.rl_goal import GOAL_ALGORITHMS, GoalTrainSettings, train_goal
 
     try:
         hyper = json.loads(args.hyper)
@@ -229,19 +255,45 @@ def run_train(args: argparse.Namespace) -> int:
         raise ConfigError(f"--hyper must be a JSON object, got {args.hyper!r}") from None
     if not isinstance(hyper, dict):
         raise ConfigError(f"--hyper must be a JSON object, got {args.hyper!r}")
+    common = {
+        "algo": args.algo,
+        "steps": args.steps,
+        "seed": args.seed,
+        "robot": args.robot,
+        "episode_s": args.episode_s,
+        "action_repeat": args.action_repeat,
+        "distance_scale_m": args.distance_scale_m,
+        "tolerance_bonus": args.tolerance_bonus,
+        "hyperparameters": hyper,
+    }
+    if args.algo in GOAL_ALGORITHMS:
+        if getattr(args, "task", "reach") != "reach":
+            raise ConfigError(f"--task: {args.algo} trains the reach task only; got {args.task!r}")
+        goal = GoalTrainSettings(
+            **common,
+            eval_every=args.eval_every or 5_000,
+            eval_episodes=args.eval_episodes or 30,
+            n_envs=args.n_envs,
+        )
+        meta = train_goal(goal, Path(args.out), resume=args.resume, progress=not args.quiet)
+        best = Path(args.out) / "best" / f"{args.algo}.json"
+        print(
+            f"  trained {meta['policy_steps']} decisions ({meta['control_steps']} control "
+            f"steps) in {meta['wall_time_s']:.0f} s; best weights {best}"
+        )
+        return 0
+    if args.algo not in ALGORITHMS:
+        from blanket.errors import did_you_mean
+
+        hint = did_you_mean(args.algo, ALGORITHMS + GOAL_ALGORITHMS, n=1, list_valid=True)
+        raise ConfigError(f"--algo: unknown algorithm {args.algo!r}; {hint}")
+    if args.resume:
+        raise ConfigError("--resume applies to --algo sac-her and ppo-vec only")
     settings = TrainSettings(
-        algo=args.algo,
-        steps=args.steps,
-        seed=args.seed,
-        robot=args.robot,
-        episode_s=args.episode_s,
-        action_repeat=args.action_repeat,
-        eval_every=args.eval_every,
-        eval_episodes=args.eval_episodes,
-        distance_scale_m=args.distance_scale_m,
-        tolerance_bonus=args.tolerance_bonus,
+        **common,
+        eval_every=args.eval_every or 10_000,
+        eval_episodes=args.eval_episodes or 10,
         effort_weight=args.effort_weight,
-        hyperparameters=hyper,
         task=args.task,
     )
     meta = train(settings, Path(args.out), progress=not args.quiet)

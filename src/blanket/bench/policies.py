@@ -282,11 +282,31 @@ def rl_model_path(algo: str, context: Mapping[str, Any]) -> Path:
     return Path(folder) / f"{algo}.zip"
 
 
+def rl_meta_path(spec: PolicySpec, rl_models: str | None) -> Path | None:
+    """The JSON with an RL policy's training record (steps, wall time, curve); None if none."""
+    from blanket.bench.rl_goal import GOAL_ALGORITHMS, goal_weights_path
+
+    if spec.rl_algo is not None:
+        return Path(rl_models or ".") / f"{spec.rl_algo}.json"
+    if spec.name in GOAL_ALGORITHMS:
+        return goal_weights_path(spec.name, rl_models)
+    return None
+
+
 def _rl(algo: str) -> Callable[..., Any]:
     def build(env: Any, model_options: Mapping[str, Any], context: Mapping[str, Any]) -> Any:
         from blanket.bench.rl import SB3Policy
 
         return SB3Policy.load(rl_model_path(algo, context), env.unwrapped.description)
+
+    return build
+
+
+def _goal_rl(name: str) -> Callable[..., Any]:
+    def build(env: Any, model_options: Mapping[str, Any], context: Mapping[str, Any]) -> Any:
+        from blanket.bench.rl_goal import load_goal_policy
+
+        return load_goal_policy(name, env.unwrapped.description, context.get("rl_models"))
 
     return build
 
@@ -356,6 +376,13 @@ POLICIES: dict[str, PolicySpec] = {
             _rl("ppo"),
             model_based=False,
             rl_algo="ppo",
+        ),
+        PolicySpec(
+            "sac-her",
+            "goal-conditioned SAC + HER, shipped weights in models/ (iiwa, velocity control)",
+            "velocity",
+            _goal_rl("sac-her"),
+            model_based=False,
         ),
     )
 }

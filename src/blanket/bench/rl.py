@@ -25,7 +25,7 @@ import time
 from collections.abc import Mapping
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, ClassVar
 
 import gymnasium as gym
 import numpy as np
@@ -216,6 +216,9 @@ class ActionRepeat(gym.Wrapper, gym.utils.RecordConstructorArgs):
 class TrainSettings:
     """Everything that defines an RL training run (saved in the JSON beside the zip)."""
 
+    #: The ``algo`` values these settings train.
+    algorithms: ClassVar[tuple[str, ...]] = ALGORITHMS
+
     algo: str = "sac"
     steps: int = 200_000
     seed: int = 0
@@ -235,12 +238,15 @@ class TrainSettings:
     task: str = "reach"
 
     def validate(self) -> None:
-        if self.algo not in ALGORITHMS:
-            raise ConfigError(f"--algo must be one of {', '.join(ALGORITHMS)}, got {self.algo!r}")
+        if self.algo not in self.algorithms:
+            raise ConfigError(
+                f"--algo must be one of {', '.join(self.algorithms)}, got {self.algo!r}"
+            )
         check_task(self.task, self.robot)
-        for key in ("steps", "action_repeat", "eval_every", "eval_episodes", "torch_threads"):
+        keys = ("steps", "action_repeat", "eval_every", "eval_episodes", "torch_threads")
+        for key in keys + (("n_envs",) if hasattr(self, "n_envs") else ()):
             v = getattr(self, key)
-            if not isinstance(v, int) or v < 1:
+            if isinstance(v, bool) or not isinstance(v, int) or v < 1:
                 raise ConfigError(f"{key} must be a whole number >= 1, got {v!r}")
 
 

@@ -11,7 +11,7 @@ from typing import Any
 
 from blanket.bench.evaluate import run_policy_episodes
 from blanket.bench.metrics import aggregate, episode_metrics
-from blanket.bench.policies import POLICIES, PolicySpec, resolve_policy
+from blanket.bench.policies import POLICIES, PolicySpec, resolve_policy, rl_meta_path
 from blanket.conditions import PRESETS, Condition, resolve_conditions
 from blanket.errors import ConfigError
 
@@ -90,6 +90,10 @@ class BenchSettings:
                     ]
             else:
                 policies = [p for p in DEFAULT_POLICIES if POLICIES[p].rl_algo is None] + have
+                # the shipped goal-conditioned weights fit the iiwa reach only
+                if robot != "iiwa" or task != "reach":
+                    policies.remove("sac-her")
+                    left_out.append("sac-her: the shipped weights are for the iiwa reach")
             if not quick:
                 left_out += [
                     f"{p}: no {p}.zip in --rl-models (train one with blanket train-rl)"
@@ -209,7 +213,7 @@ def evaluate_cell(payload: dict[str, Any]) -> dict[str, Any]:
         "note": _note(spec, condition),
         "wall_s": time.perf_counter() - t0,
     }
-    meta = context["rl_meta"].get(spec.rl_algo or "")
+    meta = context["rl_meta"].get(spec.rl_algo or spec.name)
     if meta:
         record["training_steps"] = meta.get("control_steps")
         record["training_policy_steps"] = meta.get("policy_steps")
@@ -310,10 +314,9 @@ def run_benchmark(
         context["rl_models"] = str(smoke_dir)
     specs = [resolve_policy(p) for p in settings.policies]
     for spec in specs:
-        if spec.rl_algo is not None:
-            meta_path = Path(context["rl_models"] or ".") / f"{spec.rl_algo}.json"
-            if meta_path.is_file():
-                context["rl_meta"][spec.rl_algo] = json.loads(meta_path.read_text())
+        meta_path = rl_meta_path(spec, context["rl_models"])
+        if meta_path is not None and meta_path.is_file():
+            context["rl_meta"][spec.rl_algo or spec.name] = json.loads(meta_path.read_text())
     conditions = resolve_conditions(settings.conditions)
     plain = asdict(settings)
     payloads = []
