@@ -733,9 +733,11 @@ class ArmReachEnv(gym.Env):
         return self.world
 
     def _set_target(self, target: np.ndarray) -> None:
-        """The target and its clipped copy for the observation (made once per change)."""
+        """The target, its clipped copy for the observation and its true pixel for the log
+        (made once per change)."""
         self._target = target
         self._target_obs = _clip(target, -TARGET_BOUND_M, TARGET_BOUND_M)
+        self._target_true_px = self.camera.project(target)
 
     def _camera_points(self, tip: np.ndarray) -> dict[str, np.ndarray]:
         return {"tip": tip, "target": self._target}
@@ -783,7 +785,7 @@ class ArmReachEnv(gym.Env):
                 "target_position_m": self._target.copy(),
                 # the true projection of the marker centres, in every camera mode
                 "tip_pixel_px": self.camera.project(tip),
-                "target_pixel_px": self.camera.project(self._target),
+                "target_pixel_px": self._target_true_px.copy(),
                 "commanded_action": self._last_action.copy(),
                 "payload_kg": world.payload_kg,
                 "push_force_n": world.push_force_n,
