@@ -15,8 +15,10 @@ compiled solve follows. Results go to the
 
 Buffer layouts: ``err`` (4n + 2) holds the errors of ``joint_angle | joint_velocity | motor |
 goal | camera``; ``vec`` (2, N) the predicted belief ``z-`` and the gradient; ``work`` (N, 4N)
-the curvature ``H`` and scratch. ``pm`` holds the efference copy's precision per joint (learned,
-see :class:`blanket.agent.belief.ChannelMonitor`). ``constants = (nominal motor precision (<= 0:
+the curvature ``H`` and scratch; after the step its last block holds the prior precision
+``Pi- = inv(Sigma-)`` (read by :func:`motor_bias_update`). ``pm`` holds the efference copy's
+precision per joint (learned, see :class:`blanket.agent.belief.ChannelMonitor`).
+``constants = (nominal motor precision (<= 0:
 no efference copy), goal precision, velocity gain kv, velocity limit of the belief, k, vmax,
 lambda^2, k_null, weighting_on)``; the last five are the attractor's parameters.
 """
@@ -159,9 +161,12 @@ def perception_step(  # pragma: no cover - compiled
                 for d in range(p1):
                     s += T[row, d * n + j] * phi_t[b, d]
                 cov_prior_out[row, b * n + j] = s + W[row, b * n + j]
-    # -- Laplace prior precision Pi- = inv(Sigma-)
+    # -- Laplace prior precision Pi- = inv(Sigma-) (a copy stays in T for the motor bias)
     if not spd_inverse(cov_prior_out, H, L, Linv):
         return PRIOR_NOT_PD, 0.0
+    for i in range(N):
+        for j in range(N):
+            T[i, j] = H[i, j]
     for i in range(N):
         grad[i] = 0.0
     energy = 0.0
@@ -336,3 +341,187 @@ def encoder_noise_guard(  # pragma: no cover - compiled
                 applied[k, j] = target
                 changed = True
     return changed
+
+
+@njit(cache=True)
+def motor_bias_predict(phi_t, V, M, walk, W, V_prior, M_prior, A, scratch):  # pragma: no cover
+    """Prediction of the motors' tracking bias in two-stage form; returns False if not PD.
+
+    The efference copy with a bias, ``a = q' + b + noise``, ``b`` a random walk per joint
+    (variance ``walk`` (n,) per step), is the augmented-state filter of the belief ``z`` and
+    ``b``, run in the two-stage form of Friedland (1969, "Treatment of bias in recursive
+    filtering", IEEE Trans Autom Control 14(4), eqs. 20-26, from memory) extended to a random
+    bias (Ignagni 1981, IEEE Trans Autom Control 26(3); Alouani, Xia, Rice & Blair 1993, IEEE
+    Trans Autom Control 38(8)): the joint Gaussian of ``(z, b)`` is kept as ``b ~ N(b^, M)``
+    and ``z | b ~ N(z^ + V (b - b^), P~)``, so the belief's marginal covariance is
+    ``Sigma = P~ + V M V'`` (``V = Sigma_zb inv(M)`` the sensitivity of the belief to the
+    bias). Over one step (``A = Phi V``, ``Phi = phi_t kron I_n``):
+
+        M-      = M + diag(walk)
+        V-      = Cov(z-, b-) inv(M-) = A M inv(M-)
+        P~-     = Phi P~ Phi' + W + A (M - M inv(M-) M) A'
+
+    and, since ``Phi Sigma Phi' = Phi P~ Phi' + A M A'``, the generalized motion of the
+    marginal covariance gives ``P~-`` with the motion noise ``W - A M inv(M-) M A'``: ``W``
+    is changed in place to that, ``V_prior``, ``M_prior`` and ``A`` (N, n) written;
+    ``scratch`` (3, n, n).
+    """
+    n = M.shape[0]
+    p1 = phi_t.shape[0]
+    N = V.shape[0]
+    Minv = scratch[0]
+    L = scratch[1]
+    Linv = scratch[2]
+    for i in range(n):
+        for j in range(n):
+            M_prior[i, j] = M[i, j]
+        M_prior[i, i] += walk[i]
+    if not spd_inverse(M_prior, Minv, L, Linv):
+        return False
+    # A = Phi V
+    for a in range(p1):
+        for i in range(n):
+            r = a * n + i
+            for k in range(n):
+                s = 0.0
+                for c in range(p1):
+                    s += phi_t[a, c] * V[c * n + i, k]
+                A[r, k] = s
+    # K = M inv(M-) (in L), V- = A K, and B = K M (in Linv; symmetric)
+    for i in range(n):
+        for j in range(n):
+            s = 0.0
+            for k in range(n):
+                s += M[i, k] * Minv[k, j]
+            L[i, j] = s
+    for i in range(n):
+        for j in range(n):
+            s = 0.0
+            for k in range(n):
+                s += L[i, k] * M[k, j]
+            Linv[i, j] = s
+    for r in range(N):
+        for j in range(n):
+            s = 0.0
+            for k in range(n):
+                s += A[r, k] * L[k, j]
+            V_prior[r, j] = s
+    # W -= A B A'
+    for r in range(N):
+        for j in range(n):
+            s = 0.0
+            for k in range(n):
+                s += A[r, k] * Linv[k, j]
+            Minv[0, j] = s  # inv(M-) is no longer needed: the row (A B)[r]
+        for c in range(N):
+            s = 0.0
+            for k in range(n):
+                s += Minv[0, k] * A[c, k]
+            W[r, c] -= s
+    return True
+
+
+@njit(cache=True)
+def motor_bias_update(  # pragma: no cover - compiled
+    prior_precision, cov, z_prior, z_out, sd_out, pm, motor_error, V_prior, M_prior, b, V, M,
+    U, scratch,
+):  # fmt: skip
+    """Update of the motors' tracking bias after the belief's step (two-stage form, see
+    :func:`motor_bias_predict`); returns False if not PD.
+
+    The belief's step gives the conditional posterior ``z | b``: curvature ``H`` with
+    ``cov = inv(H) = P~`` and mean ``z_out`` at ``b = b^-`` (the efference copy was
+    ``a - b^-``). The joint curvature of ``(z, b)`` at the prior mean has the blocks
+    ``J_zz = H``, ``J_zb = -U``, ``U = Pi- V- - G_m' P_m`` (``G_m`` selects ``q'``, ``P_m =
+    diag(pm)``), ``J_bb = inv(M-) + V-' Pi- V- + P_m``, and the gradient ``dF/db = -P_m e_m``
+    (``e_m`` the efference copy's error). One Gauss-Newton step on the joint free energy by
+    the Schur complement of ``H`` (Friedland 1969, eqs. 20-26; the information form of the
+    augmented Kalman filter, Bar-Shalom, Li & Kirubarajan 2001, sec. 7.4, from memory):
+
+        V      = P~ U                                  the belief's sensitivity to b
+        inv(M) = inv(M-) + V-' Pi- V- + P_m - U' V     the bias's posterior covariance
+        db     = M (P_m e_m + U' (z_out - z-))
+        b^     = b^- + db ;   z_out += V db ;   cov += V M V'   (the marginal covariance)
+
+    ``sd_out`` becomes ``sqrt(diag(cov))``. ``U`` (N, n) and ``scratch`` (3, n, n) are
+    scratch; ``b``, ``V``, ``M`` are written.
+    """
+    n = M.shape[0]
+    N = cov.shape[0]
+    Jbb = scratch[0]
+    L = scratch[1]
+    Linv = scratch[2]
+    # U = Pi- V- - G_m' P_m ; Jbb = V-' Pi- V- + P_m + inv(M-)
+    for r in range(N):
+        for j in range(n):
+            s = 0.0
+            for k in range(N):
+                s += prior_precision[r, k] * V_prior[k, j]
+            U[r, j] = s
+    for i in range(n):
+        for j in range(n):
+            s = 0.0
+            for k in range(N):
+                s += V_prior[k, i] * U[k, j]
+            Jbb[i, j] = s
+        Jbb[i, i] += pm[i]
+        U[n + i, i] -= pm[i]
+    if not spd_inverse(M_prior, M, L, Linv):
+        return False
+    for i in range(n):
+        for j in range(n):
+            Jbb[i, j] += M[i, j]
+    # V = P~ U ; inv(M) = Jbb - U' V
+    for r in range(N):
+        for j in range(n):
+            s = 0.0
+            for k in range(N):
+                s += cov[r, k] * U[k, j]
+            V[r, j] = s
+    for i in range(n):
+        for j in range(n):
+            s = 0.0
+            for k in range(N):
+                s += U[k, i] * V[k, j]
+            Jbb[i, j] -= s
+    for i in range(n):
+        for j in range(i):
+            s = 0.5 * (Jbb[i, j] + Jbb[j, i])
+            Jbb[i, j] = s
+            Jbb[j, i] = s
+    if not spd_inverse(Jbb, M, L, Linv):
+        return False
+    # db = M (P_m e_m + U' (z_out - z-)), in L[0]; then L[1] = db
+    for j in range(n):
+        s = pm[j] * motor_error[j]
+        for k in range(N):
+            s += U[k, j] * (z_out[k] - z_prior[k])
+        L[0, j] = s
+    for i in range(n):
+        s = 0.0
+        for j in range(n):
+            s += M[i, j] * L[0, j]
+        L[1, i] = s
+        b[i] += s
+    for r in range(N):
+        s = 0.0
+        for j in range(n):
+            s += V[r, j] * L[1, j]
+        z_out[r] += s
+    # cov += V M V'
+    for r in range(N):
+        for j in range(n):
+            s = 0.0
+            for k in range(n):
+                s += V[r, k] * M[k, j]
+            U[r, j] = s
+    for r in range(N):
+        for c in range(r + 1):
+            s = 0.0
+            for k in range(n):
+                s += U[r, k] * V[c, k]
+            cov[r, c] += s
+            if c != r:
+                cov[c, r] += s
+        sd_out[r] = np.sqrt(cov[r, r])
+    return True

@@ -4,9 +4,10 @@
 * :class:`CommandState` -- the last command (the efference copy), the home posture, the
   attractor's velocity and the disturbance estimate of torque control;
 * :class:`TargetTrack` -- the believed target velocity from recent target positions;
-* :class:`ChannelMonitor` -- learned precisions and fault statistics of the sensory channels.
+* :class:`ChannelMonitor` -- learned precisions and fault statistics of the sensory channels;
+* :class:`MotorBias` -- the velocity motors' tracking bias and its coupling to the belief.
 
-:class:`EpisodeState` bundles the last three. None of them is part of the
+:class:`EpisodeState` bundles the last four. None of them is part of the
 :class:`~blanket.agent.generative_model.GenerativeModel`, which a step never changes.
 """
 
@@ -28,6 +29,7 @@ __all__ = [
     "TargetTrack",
     "ChannelMonitor",
     "Innovations",
+    "MotorBias",
     "EpisodeState",
 ]
 
@@ -662,6 +664,82 @@ class ChannelMonitor:
             )
 
 
+class MotorBias:
+    """The velocity motors' tracking bias ``b`` (efference copy ``a = q' + b + noise``).
+
+    Kept beside the belief in two-stage form (Friedland 1969, IEEE Trans Autom Control 14(4);
+    :func:`blanket.agent._kernel.motor_bias_predict` and
+    :func:`~blanket.agent._kernel.motor_bias_update`): ``b ~ N(mean, covariance)`` and the
+    belief given ``b`` moves by ``sensitivity (b - mean)``; the belief's covariance is the
+    marginal one, so its reported uncertainty includes what the bias leaves unknown. A
+    random walk of variance ``walk`` per step, prior ``N(0, variance I)`` per episode.
+
+    A motor that lags its command steadily (a payload it barely holds) would otherwise move
+    the believed angle away from the truth at the lag's rate, with a covariance that treats
+    the lag as white noise; the encoders make the bias observable.
+    """
+
+    def __init__(self, model: GenerativeModel) -> None:
+        n, N = model.n, model.size
+        self.walk = np.full(n, model.motor_bias_walk)
+        self.mean = np.zeros(n)
+        self.covariance = np.eye(n) * model.motor_bias_variance
+        self.sensitivity = np.zeros((N, n))
+        self.prior_sensitivity = np.zeros((N, n))
+        self.prior_covariance = np.zeros((n, n))
+        self._a = np.zeros((N, n))
+        self._u = np.zeros((N, n))
+        self._scratch = np.zeros((3, n, n))
+        self._sd = np.zeros(N)
+
+    def predict(self, model: GenerativeModel, motion_noise: np.ndarray) -> None:
+        """Prediction over one step; ``motion_noise`` (the ``W`` of this step) becomes the
+        one that turns the belief's marginal covariance into the conditional prior."""
+        if not _kernel.motor_bias_predict(
+            model.transition,
+            self.sensitivity,
+            self.covariance,
+            self.walk,
+            motion_noise,
+            self.prior_sensitivity,
+            self.prior_covariance,
+            self._a,
+            self._scratch,
+        ):
+            raise np.linalg.LinAlgError("motor bias covariance is not positive definite")
+
+    def update(
+        self,
+        prior_precision: np.ndarray,
+        belief: Belief,
+        prior_mean: np.ndarray,
+        motor_precision: np.ndarray,
+        motor_error: np.ndarray,
+    ) -> None:
+        """After the belief's step (efference copy less ``mean``): the bias's update, and
+        the belief's mean and covariance moved to the marginal ones, in place."""
+        sd = belief.sd if belief.sd is not None else self._sd
+        if not _kernel.motor_bias_update(
+            prior_precision,
+            belief.covariance,
+            prior_mean,
+            belief.mean,
+            sd,
+            np.asarray(motor_precision, dtype=float),
+            np.asarray(motor_error, dtype=float),
+            self.prior_sensitivity,
+            self.prior_covariance,
+            self.mean,
+            self.sensitivity,
+            self.covariance,
+            self._u,
+            self._scratch,
+        ):
+            raise np.linalg.LinAlgError("motor bias curvature is not positive definite")
+        if belief.sd is None:
+            belief.sd = sd.copy()
+
+
 @dataclass
 class EpisodeState:
     """The per-episode state apart from the belief; a fresh one per episode."""
@@ -670,6 +748,7 @@ class EpisodeState:
     target: TargetTrack
     channels: ChannelMonitor
     safe_stop_reason: str = ""
+    bias: MotorBias | None = None
 
     @classmethod
     def start(cls, model: GenerativeModel) -> EpisodeState:
@@ -678,4 +757,5 @@ class EpisodeState:
             CommandState.empty(model.n),
             TargetTrack(window, model.dt, bool(model.options["track_target_motion"])),
             ChannelMonitor(model),
+            bias=MotorBias(model) if model.motor_bias_variance > 0 else None,
         )

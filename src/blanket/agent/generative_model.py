@@ -15,8 +15,11 @@ Terms (``e = y - g(z)``, ``G = dg/dz`` with respect to the flattened belief, ord
 * ``camera``: the tool tip's pixel ``y = pi(fk(q))`` on fresh frames in which it is visible,
   ``G = d pi / d x . J(q)`` (:func:`blanket.description.pinhole_projection`);
 * ``motor`` (velocity control): the efference copy, the motors track the last command,
-  ``q' ~ a``, with a precision learned from how closely they did
-  (:meth:`blanket.agent.belief.ChannelMonitor.track_motor`);
+  ``a = q' + b + noise``, with a precision learned from how closely they did
+  (:meth:`blanket.agent.belief.ChannelMonitor.track_motor`) and a slowly varying tracking
+  bias ``b`` per joint (a random walk: a payload the motors barely hold makes them lag their
+  command steadily), estimated beside the belief in two-stage form
+  (:class:`blanket.agent.belief.MotorBias`, :func:`blanket.agent._kernel.motor_bias_predict`);
 * ``goal`` (``goal="prior"``): the attractor as prior dynamics, ``q' = f(q)`` under velocity
   control, ``q'' = k_v (f(q) - q')`` under torque control
   (:func:`blanket.agent.attractor.damped_least_squares_attractor`).
@@ -97,6 +100,8 @@ class AgentOptions:
         "jerk_intensity": 50.0,
         "velocity_step_sd_rad_s": 0.01,
         "velocity_step_gain": 10.0,
+        "motor_bias_sd_rad_s": 0.01,
+        "motor_bias_drift_rad_s": 0.005,
         "action_fraction": 1.0,
         "learn_precision": False,
         "learn_motor_precision": True,
@@ -173,6 +178,8 @@ class AgentOptions:
             "posture_gain_1_s",
             "velocity_step_sd_rad_s",
             "velocity_step_gain",
+            "motor_bias_sd_rad_s",
+            "motor_bias_drift_rad_s",
             "payload_kg",
             "precision_learning_rate",
             "disturbance_time_constant_s",
@@ -441,6 +448,10 @@ class GenerativeModel:
         The monitored channels the noise guard watches (``robust_precision``, without
         ``learn_precision``): those whose precision the options did not set
         (:meth:`blanket.agent.belief.ChannelMonitor.guard`).
+    motor_bias_variance, motor_bias_walk : float
+        Prior variance ``motor_bias_sd_rad_s^2`` of the efference copy's tracking bias and
+        its random walk's variance per step ``motor_bias_drift_rad_s^2 dt`` (both 0 without
+        an efference copy or with ``motor_bias_sd_rad_s = 0``: no bias state).
     """
 
     description: ArmDescription
@@ -470,6 +481,8 @@ class GenerativeModel:
     camera_intrinsics: np.ndarray = field(repr=False)
     limits: np.ndarray = field(repr=False)
     guarded: tuple[str, ...] = ()
+    motor_bias_variance: float = 0.0
+    motor_bias_walk: float = 0.0
 
     @classmethod
     def from_description(
@@ -591,6 +604,8 @@ class GenerativeModel:
                 ]
             )
         )
+        bias_var = float(opts["motor_bias_sd_rad_s"]) ** 2 if pm > 0 else 0.0
+        bias_walk = float(opts["motor_bias_drift_rad_s"]) ** 2 * dt if bias_var > 0 else 0.0
         return cls(
             description=description,
             options=opts,
@@ -619,6 +634,8 @@ class GenerativeModel:
             camera_intrinsics=intrinsics,
             limits=limits,
             guarded=guarded,
+            motor_bias_variance=bias_var,
+            motor_bias_walk=bias_walk,
         )
 
     def motion_noise_at(

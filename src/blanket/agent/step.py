@@ -60,6 +60,7 @@ def predict(
     belief: Belief,
     change: np.ndarray | None = None,
     tracking: np.ndarray | None = None,
+    motion_noise: np.ndarray | None = None,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Prior mean and covariance of the next step: ``z- = Phi z``, ``Sigma- = Phi Sigma Phi' + W``.
 
@@ -67,11 +68,16 @@ def predict(
     noise (Van Loan 1978, IEEE Trans Autom Control 23(3)), plus under velocity control the
     velocity step of the last change of command ``change`` and of the motors' learned
     tracking variance ``tracking``
-    (:meth:`~blanket.agent.generative_model.GenerativeModel.motion_noise_at`).
+    (:meth:`~blanket.agent.generative_model.GenerativeModel.motion_noise_at`); a given
+    ``motion_noise`` stands for all of that ``W``.
     """
     z_prior = (model.transition @ belief.generalized).reshape(-1)
     cov_prior = model.transition_full @ belief.covariance @ model.transition_full.T
-    cov_prior += model.motion_noise_at(np.zeros(model.n) if change is None else change, tracking)
+    if motion_noise is None:
+        motion_noise = model.motion_noise_at(
+            np.zeros(model.n) if change is None else change, tracking
+        )
+    cov_prior += motion_noise
     return z_prior, cov_prior
 
 
@@ -176,11 +182,23 @@ def _laplace(
     return energy, grad, curvature
 
 
-def _context(model: GenerativeModel, episode: EpisodeState, f, F) -> StepContext:
+def _context(
+    model: GenerativeModel, episode: EpisodeState, f, F, command: np.ndarray | None = None
+) -> StepContext:
     ch = episode.channels
     precision = {name: ch.effective(name) for name in ch.precision}
     precision["motor"] = ch.motor_precision
-    return StepContext(episode.command.command, precision, f, F)
+    if command is None:
+        command = _efference(episode)
+    return StepContext(command, precision, f, F)
+
+
+def _efference(episode: EpisodeState) -> np.ndarray:
+    """The efference copy the terms see: the last command less the motors' believed
+    tracking bias (:class:`~blanket.agent.belief.MotorBias`)."""
+    if episode.bias is None:
+        return episode.command.command
+    return episode.command.command - episode.bias.mean
 
 
 class CompiledWorkspace:
@@ -224,18 +242,20 @@ class CompiledWorkspace:
         self._log_det: dict[str, float] = {}
 
 
-def _perceive_reference(model, belief, obs, episode) -> dict[str, Any]:
+def _perceive_reference(model, belief, obs, episode, motion_noise=None) -> dict[str, Any]:
     """Prediction and one Gauss-Newton step on F, every term assembled generically.
 
     Returns a dict (the compiled backend returns the same): ``status`` (a
     :mod:`blanket.agent._kernel` code), ``belief`` (the new one, when ``status`` is OK),
     ``free_energy`` (at ``z-``), ``errors`` (active terms), ``log_errors`` (the logs' stable
-    layout), ``cov_prior``, ``g_cam`` (camera Jacobian or None), ``attractor_velocity``.
+    layout), ``cov_prior``, ``g_cam`` (camera Jacobian or None), ``attractor_velocity``,
+    ``z_prior`` and ``prior_precision`` (``inv(Sigma-)``). ``motion_noise`` is the ``W`` of
+    this step when already built.
     """
     n = model.n
     # z- = Phi z ; Sigma- = Phi Sigma Phi' + W
     z_prior, cov_prior = predict(
-        model, belief, episode.command.change, episode.channels.tracking_variance
+        model, belief, episode.command.change, episode.channels.tracking_variance, motion_noise
     )
     chol, info = dpotrf(cov_prior, lower=1, clean=0)
     if info != 0:
@@ -275,10 +295,14 @@ def _perceive_reference(model, belief, obs, episode) -> dict[str, Any]:
         "cov_prior": cov_prior,
         "g_cam": g_cam,
         "attractor_velocity": f,
+        "z_prior": z_prior,
+        "prior_precision": prior_precision,
     }
 
 
-def _perceive_compiled(model, belief, obs, episode, ws: CompiledWorkspace) -> dict[str, Any]:
+def _perceive_compiled(
+    model, belief, obs, episode, ws: CompiledWorkspace, motion_noise=None
+) -> dict[str, Any]:
     n, N = model.n, model.size
     channels = episode.channels
     z = belief.mean
@@ -298,10 +322,16 @@ def _perceive_compiled(model, belief, obs, episode, ws: CompiledWorkspace) -> di
         z,
         belief.covariance,
         model.transition,
-        model.motion_noise_at(episode.command.change, channels.tracking_variance, ws.motion_noise),
+        (
+            motion_noise
+            if motion_noise is not None
+            else model.motion_noise_at(
+                episode.command.change, channels.tracking_variance, ws.motion_noise
+            )
+        ),
         np.asarray(obs["joint_angle_rad"], dtype=float),
         np.asarray(obs["joint_velocity_rad_s"], dtype=float),
-        episode.command.command,
+        _efference(episode),
         pq,
         pv,
         pm,
@@ -370,6 +400,8 @@ def _perceive_compiled(model, belief, obs, episode, ws: CompiledWorkspace) -> di
         "cov_prior": ws.cov_prior,
         "g_cam": ws.g_cam if cam_on else None,
         "attractor_velocity": ws.f,
+        "z_prior": ws.vec[0],
+        "prior_precision": ws.work[:, 3 * N : 4 * N],
     }
 
 
@@ -482,13 +514,30 @@ def step(
         episode.command.sense_applied(obs)
     episode.target.update(obs["target_position_m"])
     episode.channels.track_motor(obs, episode.command.command)
+    bias = episode.bias
     try:
         if episode.channels.pending_inflation is not None:
             episode.channels.inflate(belief)
+        W = None
+        if bias is not None:
+            W = model.motion_noise_at(
+                episode.command.change,
+                episode.channels.tracking_variance,
+                None if workspace is None else workspace.motion_noise,
+            )
+            bias.predict(model, W)
         if workspace is None:
-            out = _perceive_reference(model, belief, obs, episode)
+            out = _perceive_reference(model, belief, obs, episode, W)
         else:
-            out = _perceive_compiled(model, belief, obs, episode, workspace)
+            out = _perceive_compiled(model, belief, obs, episode, workspace, W)
+        if bias is not None and out["status"] == _kernel.OK:
+            bias.update(
+                out["prior_precision"],
+                out["belief"],
+                out["z_prior"],
+                episode.channels.motor_precision,
+                out["errors"]["motor"],
+            )
     except (np.linalg.LinAlgError, FloatingPointError, ValueError) as exc:
         action, diag = safe_stop(model, episode, f"numerical failure: {exc}")
         return belief, action, diag
