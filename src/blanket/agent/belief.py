@@ -672,7 +672,14 @@ class MotorBias:
     :func:`~blanket.agent._kernel.motor_bias_update`): ``b ~ N(mean, covariance)`` and the
     belief given ``b`` moves by ``sensitivity (b - mean)``; the belief's covariance is the
     marginal one, so its reported uncertainty includes what the bias leaves unknown. A
-    random walk of variance ``walk`` per step, prior ``N(0, variance I)`` per episode.
+    random walk, prior ``N(0, motor_bias_sd_rad_s^2 I)`` per episode, of variance per step
+    ``motor_bias_drift_rad_s^2 dt + R_x dt / motor_window_s``, ``R_x`` the motors' learned
+    tracking variance beyond the nominal (:attr:`ChannelMonitor.tracking_variance`): a
+    tracking error of variance ``R_x`` over the window is taken as a bias that moves by as
+    much per window (common practice, no source). Without that part a command the motors
+    could not follow for a while (a clamp, a saturated drive) left the bias at a value it
+    then kept, with a small variance, once the motors tracked again (measured: the planar
+    arm with commands clipped to 0.15 rad/s, NEES 3.6).
 
     A motor that lags its command steadily (a payload it barely holds) would otherwise move
     the believed angle away from the truth at the lag's rate, with a covariance that treats
@@ -692,9 +699,14 @@ class MotorBias:
         self._scratch = np.zeros((3, n, n))
         self._sd = np.zeros(N)
 
-    def predict(self, model: GenerativeModel, motion_noise: np.ndarray) -> None:
+    def predict(
+        self, model: GenerativeModel, motion_noise: np.ndarray, tracking: np.ndarray
+    ) -> None:
         """Prediction over one step; ``motion_noise`` (the ``W`` of this step) becomes the
-        one that turns the belief's marginal covariance into the conditional prior."""
+        one that turns the belief's marginal covariance into the conditional prior;
+        ``tracking`` (n,) the motors' tracking variance beyond the nominal."""
+        np.multiply(tracking, model.dt / float(model.options["motor_window_s"]), out=self.walk)
+        self.walk += model.motor_bias_walk
         if not _kernel.motor_bias_predict(
             model.transition,
             self.sensitivity,

@@ -525,7 +525,7 @@ def step(
                 episode.channels.tracking_variance,
                 None if workspace is None else workspace.motion_noise,
             )
-            bias.predict(model, W)
+            bias.predict(model, W, episode.channels.tracking_variance)
         if workspace is None:
             out = _perceive_reference(model, belief, obs, episode, W)
         else:
