@@ -464,6 +464,7 @@ def motor_bias_update(  # pragma: no cover - compiled
             for k in range(N):
                 s += V_prior[k, i] * U[k, j]
             Jbb[i, j] = s
+    for i in range(n):
         Jbb[i, i] += pm[i]
         U[n + i, i] -= pm[i]
     if not spd_inverse(M_prior, M, L, Linv):
@@ -491,7 +492,7 @@ def motor_bias_update(  # pragma: no cover - compiled
             Jbb[j, i] = s
     if not spd_inverse(Jbb, M, L, Linv):
         return False
-    # db = M (P_m e_m + U' (z_out - z-)), in L[0]; then L[1] = db
+    # db = M (P_m e_m + U' (z_out - z-)): the right side in L[0], db in Linv[0]
     for j in range(n):
         s = pm[j] * motor_error[j]
         for k in range(N):
@@ -501,12 +502,12 @@ def motor_bias_update(  # pragma: no cover - compiled
         s = 0.0
         for j in range(n):
             s += M[i, j] * L[0, j]
-        L[1, i] = s
+        Linv[0, i] = s
         b[i] += s
     for r in range(N):
         s = 0.0
         for j in range(n):
-            s += V[r, j] * L[1, j]
+            s += V[r, j] * Linv[0, j]
         z_out[r] += s
     # cov += V M V'
     for r in range(N):
