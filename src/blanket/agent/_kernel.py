@@ -20,7 +20,9 @@ the curvature ``H`` and scratch; after the step its last block holds the prior p
 precision per joint (learned, see :class:`blanket.agent.belief.ChannelMonitor`).
 ``constants = (nominal motor precision (<= 0:
 no efference copy), goal precision, velocity gain kv, velocity limit of the belief, k, vmax,
-lambda^2, k_null, weighting_on)``; the last five are the attractor's parameters.
+lambda^2, k_null, weighting_on, velocity reading lag l)``; entries 4-8 are the attractor's
+parameters, and the velocity encoder reads ``q' - l q''``
+(:class:`blanket.agent.generative_model.EncoderChannel`).
 """
 
 from __future__ import annotations
@@ -170,7 +172,9 @@ def perception_step(  # pragma: no cover - compiled
     for i in range(N):
         grad[i] = 0.0
     energy = 0.0
-    # -- encoders and efference copy (selections of orders 0 and 1)
+    # -- encoders and efference copy (selections of orders 0 and 1; the velocity reading's
+    # lag l adds -l on order 2: G_v = [0, I, -l I])
+    lag = constants[9] if p1 > 2 else 0.0
     for i in range(n):
         e = yq[i] - zp[i]
         err_q[i] = e
@@ -178,6 +182,13 @@ def perception_step(  # pragma: no cover - compiled
         grad[i] -= pq[i] * e
         energy += 0.5 * pq[i] * e * e
         e = yv[i] - zp[n + i]
+        if lag > 0.0:
+            a2 = 2 * n + i
+            e += lag * zp[a2]
+            H[a2, a2] += lag * lag * pv[i]
+            H[n + i, a2] -= lag * pv[i]
+            H[a2, n + i] -= lag * pv[i]
+            grad[a2] += lag * pv[i] * e
         err_v[i] = e
         H[n + i, n + i] += pv[i]
         grad[n + i] -= pv[i] * e

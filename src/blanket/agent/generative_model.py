@@ -10,8 +10,10 @@ the episode state of :mod:`blanket.agent.belief`.
 
 Terms (``e = y - g(z)``, ``G = dg/dz`` with respect to the flattened belief, order-major):
 
-* ``joint_angle``: ``y = q + noise`` (order 0); ``joint_velocity``: ``y = q' + noise``
-  (order 1) (:class:`EncoderChannel`);
+* ``joint_angle``: ``y = q + noise`` (order 0); ``joint_velocity``: ``y = q' - l q'' + noise``
+  (order 1) (:class:`EncoderChannel`), ``l`` the reading's lag (``velocity_reading_lag_s``:
+  half a period under torque control, where the simulator advances the position with the
+  velocity it reports at the period's end, semi-implicit Euler; 0 under velocity control);
 * ``camera``: the tool tip's pixel ``y = pi(fk(q))`` on fresh frames in which it is visible,
   ``G = d pi / d x . J(q)`` (:func:`blanket.description.pinhole_projection`);
 * ``motor`` (velocity control): the efference copy, the motors track the last command,
@@ -100,6 +102,7 @@ class AgentOptions:
         "jerk_intensity": 50.0,
         "velocity_step_sd_rad_s": 0.01,
         "velocity_step_gain": 10.0,
+        "velocity_reading_lag_s": None,
         "motor_bias_sd_rad_s": 0.01,
         "motor_bias_drift_rad_s": 0.005,
         "action_fraction": 1.0,
@@ -219,6 +222,12 @@ class AgentOptions:
             raise ConfigError(
                 f"agent option fault_false_alarm must be in (0, 0.5), got {shorten(v)}"
             )
+        v = out["velocity_reading_lag_s"]
+        if v is not None and (not isinstance(v, int | float) or not np.isfinite(v) or v < 0):
+            raise ConfigError(
+                f"agent option velocity_reading_lag_s must be a number >= 0 or omitted, "
+                f"got {shorten(v)}"
+            )
         for key in (
             "joint_angle_precision",
             "joint_velocity_precision",
@@ -310,9 +319,11 @@ def _selection(n: int, size: int, order: int) -> np.ndarray:
 
 @dataclass(frozen=True)
 class EncoderChannel:
-    """Encoder readings of one generalized order: ``y = q^(order) + noise``.
+    """Encoder readings of one generalized order: ``y = q^(order) - lag q^(order+1) + noise``.
 
-    ``joint_angle`` observes order 0, ``joint_velocity`` order 1; ``G`` selects that order.
+    ``joint_angle`` observes order 0, ``joint_velocity`` order 1; ``G`` selects that order
+    (less ``lag`` times the next). A reading of the value ``lag`` seconds ago is, to first
+    order, ``q^(k)(t - lag) = q^(k) - lag q^(k+1)`` (Taylor).
     """
 
     name: str
@@ -320,12 +331,16 @@ class EncoderChannel:
     order: int
     size: int
     jacobian: np.ndarray
+    lag_s: float = 0.0
 
     def evaluate(
         self, obs: Mapping[str, Any], belief: np.ndarray, body: BodyState, context: StepContext
     ) -> Term:
         y = np.asarray(obs[self.observation], dtype=float)
-        return Term(y - belief[self.order], self.jacobian, context.precision[self.name])
+        predicted = belief[self.order]
+        if self.lag_s:
+            predicted = predicted - self.lag_s * belief[self.order + 1]
+        return Term(y - predicted, self.jacobian, context.precision[self.name])
 
 
 @dataclass(frozen=True)
@@ -452,6 +467,8 @@ class GenerativeModel:
         Prior variance ``motor_bias_sd_rad_s^2`` of the efference copy's tracking bias and
         its random walk's variance per step ``motor_bias_drift_rad_s^2 dt`` (both 0 without
         an efference copy or with ``motor_bias_sd_rad_s = 0``: no bias state).
+    velocity_reading_lag_s : float
+        The velocity encoder's lag ``l`` in its model ``y = q' - l q''`` (order >= 2).
     """
 
     description: ArmDescription
@@ -483,6 +500,7 @@ class GenerativeModel:
     guarded: tuple[str, ...] = ()
     motor_bias_variance: float = 0.0
     motor_bias_walk: float = 0.0
+    velocity_reading_lag_s: float = 0.0
 
     @classmethod
     def from_description(
@@ -542,9 +560,16 @@ class GenerativeModel:
         eye = np.eye(n)
 
         kv = float(opts["velocity_gain_1_s"])
+        lag = opts["velocity_reading_lag_s"]
+        lag = (0.5 * dt if control == "torque" else 0.0) if lag is None else float(lag)
+        if p < 2:
+            lag = 0.0  # no acceleration in the belief to lag with
+        g_velocity = _selection(n, N, 1)
+        if lag:
+            g_velocity = g_velocity - lag * _selection(n, N, 2)
         channels: list[Any] = [
             EncoderChannel("joint_angle", "joint_angle_rad", 0, n, _selection(n, N, 0)),
-            EncoderChannel("joint_velocity", "joint_velocity_rad_s", 1, n, _selection(n, N, 1)),
+            EncoderChannel("joint_velocity", "joint_velocity_rad_s", 1, n, g_velocity, lag),
         ]
         if camera is not None:
             channels.append(CameraChannel(camera, N))
@@ -588,6 +613,7 @@ class GenerativeModel:
                 opts["damping_m"] ** 2,
                 opts["posture_gain_1_s"],
                 1.0 if opts["joint_limit_weighting"] else 0.0,
+                lag,
             ],
             dtype=float,
         )
@@ -636,6 +662,7 @@ class GenerativeModel:
             guarded=guarded,
             motor_bias_variance=bias_var,
             motor_bias_walk=bias_walk,
+            velocity_reading_lag_s=lag,
         )
 
     def motion_noise_at(

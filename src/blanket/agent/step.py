@@ -518,14 +518,16 @@ def step(
     try:
         if episode.channels.pending_inflation is not None:
             episode.channels.inflate(belief)
-        W = None
+        W = model.motion_noise_at(
+            episode.command.change,
+            episode.channels.tracking_variance,
+            None if workspace is None else workspace.motion_noise,
+        )
         if bias is not None:
-            W = model.motion_noise_at(
-                episode.command.change,
-                episode.channels.tracking_variance,
-                None if workspace is None else workspace.motion_noise,
+            channels = episode.channels
+            bias.predict(
+                model, W, channels.tracking_variance, 1.0 / channels.precision["joint_velocity"]
             )
-            bias.predict(model, W, episode.channels.tracking_variance)
         if workspace is None:
             out = _perceive_reference(model, belief, obs, episode, W)
         else:
