@@ -251,8 +251,8 @@ def test_motor_bias_options_are_checked_and_zero_turns_the_state_off():
     try:
         with pytest.raises(ConfigError, match="motor_bias_sd_rad_s must be a number >= 0"):
             ArmAgent.from_env(env, motor_bias_sd_rad_s=-0.1)
-        with pytest.raises(ConfigError, match="motor_bias_drift_rad_s must be a number >= 0"):
-            ArmAgent.from_env(env, motor_bias_drift_rad_s="fast")
+        with pytest.raises(ConfigError, match="motor_bias_travel_sd_rad_s must be a number >= 0"):
+            ArmAgent.from_env(env, motor_bias_travel_sd_rad_s="fast")
         obs, _ = env.reset(seed=1)
         on, off = ArmAgent.from_env(env), ArmAgent.from_env(env, motor_bias_sd_rad_s=0.0)
         on.act(obs), off.act(obs)

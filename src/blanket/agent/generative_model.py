@@ -19,8 +19,9 @@ Terms (``e = y - g(z)``, ``G = dg/dz`` with respect to the flattened belief, ord
 * ``motor`` (velocity control): the efference copy, the motors track the last command,
   ``a = q' + b + noise``, with a precision learned from how closely they did
   (:meth:`blanket.agent.belief.ChannelMonitor.track_motor`) and a slowly varying tracking
-  bias ``b`` per joint (a random walk: a payload the motors barely hold makes them lag their
-  command steadily), estimated beside the belief in two-stage form
+  bias ``b`` per joint (a random walk in the distance the joints travel: a load the motors
+  barely hold makes them lag their command steadily, by an amount that changes with the
+  posture), estimated beside the belief in two-stage form
   (:class:`blanket.agent.belief.MotorBias`, :func:`blanket.agent._kernel.motor_bias_predict`);
 * ``goal`` (``goal="prior"``): the attractor as prior dynamics, ``q' = f(q)`` under velocity
   control, ``q'' = k_v (f(q) - q')`` under torque control
@@ -104,7 +105,7 @@ class AgentOptions:
         "velocity_step_gain": 10.0,
         "velocity_reading_lag_s": None,
         "motor_bias_sd_rad_s": 0.01,
-        "motor_bias_drift_rad_s": 0.005,
+        "motor_bias_travel_sd_rad_s": 0.02,
         "action_fraction": 1.0,
         "learn_precision": False,
         "learn_motor_precision": True,
@@ -182,7 +183,7 @@ class AgentOptions:
             "velocity_step_sd_rad_s",
             "velocity_step_gain",
             "motor_bias_sd_rad_s",
-            "motor_bias_drift_rad_s",
+            "motor_bias_travel_sd_rad_s",
             "payload_kg",
             "precision_learning_rate",
             "disturbance_time_constant_s",
@@ -465,8 +466,9 @@ class GenerativeModel:
         (:meth:`blanket.agent.belief.ChannelMonitor.guard`).
     motor_bias_variance, motor_bias_walk : float
         Prior variance ``motor_bias_sd_rad_s^2`` of the efference copy's tracking bias and
-        its random walk's variance per step ``motor_bias_drift_rad_s^2 dt`` (both 0 without
-        an efference copy or with ``motor_bias_sd_rad_s = 0``: no bias state).
+        its random walk's variance per radian the joints travel,
+        ``motor_bias_travel_sd_rad_s^2`` (both 0 without an efference copy or with
+        ``motor_bias_sd_rad_s = 0``: no bias state).
     velocity_reading_lag_s : float
         The velocity encoder's lag ``l`` in its model ``y = q' - l q''`` (order >= 2).
     """
@@ -631,7 +633,7 @@ class GenerativeModel:
             )
         )
         bias_var = float(opts["motor_bias_sd_rad_s"]) ** 2 if pm > 0 else 0.0
-        bias_walk = float(opts["motor_bias_drift_rad_s"]) ** 2 * dt if bias_var > 0 else 0.0
+        bias_walk = float(opts["motor_bias_travel_sd_rad_s"]) ** 2 if bias_var > 0 else 0.0
         return cls(
             description=description,
             options=opts,

@@ -526,7 +526,11 @@ def step(
         if bias is not None:
             channels = episode.channels
             bias.predict(
-                model, W, channels.tracking_variance, 1.0 / channels.precision["joint_velocity"]
+                model,
+                W,
+                channels.tracking_variance,
+                1.0 / channels.precision["joint_velocity"],
+                belief.mean[model.n : 2 * model.n],
             )
         if workspace is None:
             out = _perceive_reference(model, belief, obs, episode, W)
