@@ -322,3 +322,71 @@ def test_belief_stays_honest_when_a_payload_makes_the_motors_lag():
         env.close()
     for r in rows:
         assert r["belief_nees"] is not None and r["belief_nees"] <= 3.0, r["belief_nees"]
+
+
+def test_velocity_reading_lags_half_a_period_in_pybullet_and_in_the_model():
+    # pybullet integrates semi-implicitly (v += dt a; q += dt v): under a constant torque the
+    # positions lie on the parabola q(t) with q'(t_k) = v_k + a dt / 2, so the velocity it
+    # reports is q' - (dt / 2) q'' of the smooth trajectory. Checked on a one-joint body in
+    # pybullet (np.polyfit of the positions), then on the torque model's velocity encoder,
+    # which predicts the reading from the generalized coordinates (Taylor, first order).
+    import gymnasium
+
+    import blanket  # noqa: F401
+    from blanket.agent.generative_model import GenerativeModel
+    from blanket.model import BodyState
+    from blanket.sim.bullet import pybullet as pb
+
+    dt = 1.0 / 240.0
+    client = pb.connect(pb.DIRECT)
+    try:
+        pb.setGravity(0, 0, 0, physicsClientId=client)
+        pb.setTimeStep(dt, physicsClientId=client)
+        box = pb.createCollisionShape(pb.GEOM_BOX, halfExtents=[0.2, 0.02, 0.02],
+                                      physicsClientId=client)  # fmt: skip
+        body = pb.createMultiBody(
+            baseMass=0.0, baseCollisionShapeIndex=-1, linkMasses=[1.0],
+            linkCollisionShapeIndices=[box], linkVisualShapeIndices=[-1],
+            linkPositions=[[0, 0, 0]], linkOrientations=[[0, 0, 0, 1]],
+            linkInertialFramePositions=[[0.2, 0, 0]],
+            linkInertialFrameOrientations=[[0, 0, 0, 1]], linkParentIndices=[0],
+            linkJointTypes=[pb.JOINT_REVOLUTE], linkJointAxis=[[0, 0, 1]],
+            physicsClientId=client,
+        )  # fmt: skip
+        pb.changeDynamics(body, 0, linearDamping=0, angularDamping=0, jointDamping=0,
+                          physicsClientId=client)  # fmt: skip
+        pb.setJointMotorControl2(body, 0, pb.VELOCITY_CONTROL, force=0, physicsClientId=client)
+        q, v = [], []
+        for _ in range(40):
+            pb.setJointMotorControl2(body, 0, pb.TORQUE_CONTROL, force=0.3,
+                                     physicsClientId=client)  # fmt: skip
+            pb.stepSimulation(physicsClientId=client)
+            s = pb.getJointState(body, 0, physicsClientId=client)
+            q.append(s[0])
+            v.append(s[1])
+    finally:
+        pb.disconnect(client)
+    t = dt * np.arange(1, 41)
+    c2, c1, c0 = np.polyfit(t, q, 2)
+    acc = 2 * c2
+    assert acc > 1.0  # the torque accelerated the joint
+    smooth_velocity = c1 + acc * t
+    np.testing.assert_allclose(np.asarray(v), smooth_velocity - 0.5 * dt * acc, atol=1e-9)
+    assert np.abs(np.asarray(v) - smooth_velocity).min() > 0.4 * dt * acc  # the lag is real
+
+    env = gymnasium.make("blanket/planar-2link-v0", control="torque", episode_s=0.5)
+    try:
+        model = GenerativeModel.from_description(env.unwrapped.description)
+    finally:
+        env.close()
+    assert model.velocity_reading_lag_s == pytest.approx(0.5 * model.dt)
+    channel = next(c for c in model.channels if c.name == "joint_velocity")
+    n = model.n
+    z = np.zeros((model.order + 1, n))
+    z[1], z[2] = [0.3, -0.2], [acc, 2.0]
+    obs = {"joint_velocity_rad_s": z[1] - 0.5 * model.dt * z[2]}
+    context = type("C", (), {"precision": {"joint_velocity": np.ones(n)}})()
+    term = channel.evaluate(obs, z, BodyState(np.zeros(3), np.zeros((3, n))), context)
+    np.testing.assert_allclose(term.error, 0.0, atol=1e-15)
+    # its Jacobian is that prediction's derivative
+    np.testing.assert_allclose(term.jacobian @ z.reshape(-1), obs["joint_velocity_rad_s"])
