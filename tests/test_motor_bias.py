@@ -51,9 +51,16 @@ class TwoStage:
 
     def step(self, yq, yv, a):
         W = self.W.copy()
+        # a walk of the given variance per step: unit speed, no excess tracking variance
+        n = N_JOINTS
+        speed = np.zeros(n)
+        speed[0] = 1.0
+        walked = np.zeros(n)
         assert _kernel.motor_bias_predict(
-            self.phi, self.V, self.M, self.walk, W, self.Vp, self.Mp, self.A, self.scratch
-        )
+            self.phi, self.V, self.M, np.zeros(n), np.ones(n), speed, self.walk[0], 1.0,
+            walked, W, self.Vp, self.Mp, self.A, self.scratch,
+        )  # fmt: skip
+        np.testing.assert_allclose(walked, self.walk)
         zp = self.phi_full @ self.z
         Sp = self.phi_full @ self.cov @ self.phi_full.T + W
         Pi = np.linalg.inv(Sp)

@@ -355,7 +355,10 @@ def encoder_noise_guard(  # pragma: no cover - compiled
 
 
 @njit(cache=True)
-def motor_bias_predict(phi_t, V, M, walk, W, V_prior, M_prior, A, scratch):  # pragma: no cover
+def motor_bias_predict(  # pragma: no cover - compiled
+    phi_t, V, M, tracking, velocity_precision, velocity, travel_walk, window_rate, walk, W,
+    V_prior, M_prior, A, scratch,
+):  # fmt: skip
     """Prediction of the motors' tracking bias in two-stage form; returns False if not PD.
 
     The efference copy with a bias, ``a = q' + b + noise``, ``b`` a random walk per joint
@@ -376,10 +379,23 @@ def motor_bias_predict(phi_t, V, M, walk, W, V_prior, M_prior, A, scratch):  # p
     marginal covariance gives ``P~-`` with the motion noise ``W - A M inv(M-) M A'``: ``W``
     is changed in place to that, ``V_prior``, ``M_prior`` and ``A`` (N, n) written;
     ``scratch`` (3, n, n).
+
+    The walk's variance ``walk`` (n,) is written first (:class:`blanket.agent.belief.MotorBias`):
+    ``travel_walk ||velocity|| + window_rate tracking`` per joint, the second part only where
+    the tracking variance exceeds the velocity encoder's noise variance
+    ``1 / velocity_precision``.
     """
     n = M.shape[0]
     p1 = phi_t.shape[0]
     N = V.shape[0]
+    speed = 0.0
+    for i in range(n):
+        speed += velocity[i] * velocity[i]
+    base = travel_walk * np.sqrt(speed)
+    for i in range(n):
+        walk[i] = base
+        if tracking[i] * velocity_precision[i] > 1.0:
+            walk[i] += window_rate * tracking[i]
     Minv = scratch[0]
     L = scratch[1]
     Linv = scratch[2]

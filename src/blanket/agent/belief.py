@@ -705,7 +705,9 @@ class MotorBias:
 
     def __init__(self, model: GenerativeModel) -> None:
         n, N = model.n, model.size
-        self.walk = np.full(n, model.motor_bias_walk)
+        self.walk = np.zeros(n)
+        self._travel_walk = model.motor_bias_walk * model.dt
+        self._window_rate = model.dt / float(model.options["motor_window_s"])
         self.mean = np.zeros(n)
         self.covariance = np.eye(n) * model.motor_bias_variance
         self.sensitivity = np.zeros((N, n))
@@ -721,22 +723,24 @@ class MotorBias:
         model: GenerativeModel,
         motion_noise: np.ndarray,
         tracking: np.ndarray,
-        velocity_noise: np.ndarray,
+        velocity_precision: np.ndarray,
         velocity: np.ndarray,
     ) -> None:
         """Prediction over one step; ``motion_noise`` (the ``W`` of this step) becomes the
         one that turns the belief's marginal covariance into the conditional prior;
         ``tracking`` (n,) the motors' tracking variance beyond the nominal, taken where it
-        exceeds ``velocity_noise`` (n,), the velocity encoder's noise variance; ``velocity``
-        (n,) the believed joint velocity."""
-        np.multiply(tracking, model.dt / float(model.options["motor_window_s"]), out=self.walk)
-        self.walk[tracking <= velocity_noise] = 0.0
-        # the distance the joints travel this step, ||q'|| dt
-        self.walk += model.motor_bias_walk * float(np.linalg.norm(velocity)) * model.dt
+        exceeds the velocity encoder's noise variance ``1 / velocity_precision`` (n,);
+        ``velocity`` (n,) the believed joint velocity (the distance the joints travel this
+        step is ``||velocity|| dt``)."""
         if not _kernel.motor_bias_predict(
             model.transition,
             self.sensitivity,
             self.covariance,
+            tracking,
+            velocity_precision,
+            velocity,
+            self._travel_walk,
+            self._window_rate,
             self.walk,
             motion_noise,
             self.prior_sensitivity,
@@ -763,8 +767,8 @@ class MotorBias:
             prior_mean,
             belief.mean,
             sd,
-            np.asarray(motor_precision, dtype=float),
-            np.asarray(motor_error, dtype=float),
+            motor_precision,
+            motor_error,
             self.prior_sensitivity,
             self.prior_covariance,
             self.mean,

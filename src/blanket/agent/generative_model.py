@@ -695,14 +695,15 @@ class GenerativeModel:
         var = (gain * np.asarray(change, dtype=float)) ** 2
         if tracking is not None:
             var += tracking
-        # kron(b b', I_n) is nonzero only on the (q, q') blocks' diagonals
-        n, dt = self.n, self.dt
+        # kron(b b', I_n) is nonzero only on the (q, q') blocks' diagonals: strided views
+        n, dt, N = self.n, self.dt, self.size
         out[:] = self.motion_noise
-        i = np.arange(n)
-        out[i, i] += dt * dt * var
-        out[i, n + i] += dt * var
-        out[n + i, i] += dt * var
-        out[n + i, n + i] += var
+        flat = out.reshape(-1)
+        step = N + 1
+        flat[0 : n * step : step] += dt * dt * var  # (q, q)
+        flat[n : n + n * step : step] += dt * var  # (q, q')
+        flat[n * N : n * N + n * step : step] += dt * var  # (q', q)
+        flat[n * step : n * step + n * step : step] += var  # (q', q')
         return out
 
     @property

@@ -529,7 +529,7 @@ def step(
                 model,
                 W,
                 channels.tracking_variance,
-                1.0 / channels.precision["joint_velocity"],
+                channels.precision["joint_velocity"],
                 belief.mean[model.n : 2 * model.n],
             )
         if workspace is None:
