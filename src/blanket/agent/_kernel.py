@@ -80,6 +80,21 @@ def solve(work, vec, n, energy, velocity_limit, z_out, cov_out, sd_out):  # prag
 
 
 @njit(cache=True)
+def _motion_rows(phi_t, X, out, n):  # pragma: no cover - compiled
+    """``out = (phi_t kron I_n) X``: the generalized motion applied to the rows of ``X``
+    (order-major, ``n`` joints)."""
+    p1 = phi_t.shape[0]
+    for a in range(p1):
+        for i in range(n):
+            r = a * n + i
+            for col in range(X.shape[1]):
+                s = 0.0
+                for c in range(p1):
+                    s += phi_t[a, c] * X[c * n + i, col]
+                out[r, col] = s
+
+
+@njit(cache=True)
 def perception_step(  # pragma: no cover - compiled
     z,
     cov,
@@ -148,14 +163,7 @@ def perception_step(  # pragma: no cover - compiled
             for c in range(p1):
                 s += phi_t[a, c] * z[c * n + i]
             zp[a * n + i] = s
-    for a in range(p1):
-        for i in range(n):
-            r = a * n + i
-            for col in range(N):
-                s = 0.0
-                for c in range(p1):
-                    s += phi_t[a, c] * cov[c * n + i, col]
-                T[r, col] = s
+    _motion_rows(phi_t, cov, T, n)
     for row in range(N):
         for b in range(p1):
             for j in range(n):
@@ -355,6 +363,20 @@ def encoder_noise_guard(  # pragma: no cover - compiled
 
 
 @njit(cache=True)
+def _product(A, B, out, transpose_a):  # pragma: no cover - compiled
+    """``out = A B`` (``A' B`` with ``transpose_a``); ``out`` must not share memory with
+    ``A`` or ``B``."""
+    rows = A.shape[1] if transpose_a else A.shape[0]
+    inner = A.shape[0] if transpose_a else A.shape[1]
+    for i in range(rows):
+        for j in range(B.shape[1]):
+            s = 0.0
+            for k in range(inner):
+                s += (A[k, i] if transpose_a else A[i, k]) * B[k, j]
+            out[i, j] = s
+
+
+@njit(cache=True)
 def motor_bias_predict(  # pragma: no cover - compiled
     phi_t, V, M, tracking, velocity_precision, velocity, travel_walk, window_rate, walk, W,
     V_prior, M_prior, A, scratch,
@@ -386,7 +408,6 @@ def motor_bias_predict(  # pragma: no cover - compiled
     ``1 / velocity_precision``.
     """
     n = M.shape[0]
-    p1 = phi_t.shape[0]
     N = V.shape[0]
     speed = 0.0
     for i in range(n):
@@ -405,35 +426,12 @@ def motor_bias_predict(  # pragma: no cover - compiled
         M_prior[i, i] += walk[i]
     if not spd_inverse(M_prior, Minv, L, Linv):
         return False
-    # A = Phi V
-    for a in range(p1):
-        for i in range(n):
-            r = a * n + i
-            for k in range(n):
-                s = 0.0
-                for c in range(p1):
-                    s += phi_t[a, c] * V[c * n + i, k]
-                A[r, k] = s
+    _motion_rows(phi_t, V, A, n)  # A = Phi V
     # K = M inv(M-) (in L), V- = A K, and B = K M (in Linv; symmetric)
-    for i in range(n):
-        for j in range(n):
-            s = 0.0
-            for k in range(n):
-                s += M[i, k] * Minv[k, j]
-            L[i, j] = s
-    for i in range(n):
-        for j in range(n):
-            s = 0.0
-            for k in range(n):
-                s += L[i, k] * M[k, j]
-            Linv[i, j] = s
-    for r in range(N):
-        for j in range(n):
-            s = 0.0
-            for k in range(n):
-                s += A[r, k] * L[k, j]
-            V_prior[r, j] = s
-    # W -= A B A'
+    _product(M, Minv, L, False)
+    _product(L, M, Linv, False)
+    _product(A, L, V_prior, False)
+    # W -= (A B) A', (A B) in U's place: A itself is no longer needed after this
     for r in range(N):
         for j in range(n):
             s = 0.0
@@ -479,18 +477,8 @@ def motor_bias_update(  # pragma: no cover - compiled
     L = scratch[1]
     Linv = scratch[2]
     # U = Pi- V- - G_m' P_m ; Jbb = V-' Pi- V- + P_m + inv(M-)
-    for r in range(N):
-        for j in range(n):
-            s = 0.0
-            for k in range(N):
-                s += prior_precision[r, k] * V_prior[k, j]
-            U[r, j] = s
-    for i in range(n):
-        for j in range(n):
-            s = 0.0
-            for k in range(N):
-                s += V_prior[k, i] * U[k, j]
-            Jbb[i, j] = s
+    _product(prior_precision, V_prior, U, False)
+    _product(V_prior, U, Jbb, True)
     for i in range(n):
         Jbb[i, i] += pm[i]
         U[n + i, i] -= pm[i]
@@ -499,22 +487,12 @@ def motor_bias_update(  # pragma: no cover - compiled
     for i in range(n):
         for j in range(n):
             Jbb[i, j] += M[i, j]
-    # V = P~ U ; inv(M) = Jbb - U' V
-    for r in range(N):
-        for j in range(n):
-            s = 0.0
-            for k in range(N):
-                s += cov[r, k] * U[k, j]
-            V[r, j] = s
+    # V = P~ U ; inv(M) = Jbb - U' V (symmetrised)
+    _product(cov, U, V, False)
+    _product(U, V, L, True)
     for i in range(n):
-        for j in range(n):
-            s = 0.0
-            for k in range(N):
-                s += U[k, i] * V[k, j]
-            Jbb[i, j] -= s
-    for i in range(n):
-        for j in range(i):
-            s = 0.5 * (Jbb[i, j] + Jbb[j, i])
+        for j in range(i + 1):
+            s = 0.5 * (Jbb[i, j] + Jbb[j, i] - L[i, j] - L[j, i])
             Jbb[i, j] = s
             Jbb[j, i] = s
     if not spd_inverse(Jbb, M, L, Linv):
@@ -536,13 +514,8 @@ def motor_bias_update(  # pragma: no cover - compiled
         for j in range(n):
             s += V[r, j] * Linv[0, j]
         z_out[r] += s
-    # cov += V M V'
-    for r in range(N):
-        for j in range(n):
-            s = 0.0
-            for k in range(n):
-                s += V[r, k] * M[k, j]
-            U[r, j] = s
+    # cov += (V M) V', V M in U's place
+    _product(V, M, U, False)
     for r in range(N):
         for c in range(r + 1):
             s = 0.0
