@@ -438,11 +438,13 @@ def motor_bias_predict(  # pragma: no cover - compiled
             for k in range(n):
                 s += A[r, k] * Linv[k, j]
             Minv[0, j] = s  # inv(M-) is no longer needed: the row (A B)[r]
-        for c in range(N):
+        for c in range(r + 1):  # W stays symmetric: the lower triangle, mirrored
             s = 0.0
             for k in range(n):
                 s += Minv[0, k] * A[c, k]
             W[r, c] -= s
+            if c != r:
+                W[c, r] -= s
     return True
 
 
