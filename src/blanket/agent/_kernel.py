@@ -15,9 +15,9 @@ compiled solve follows. Results go to the
 
 Buffer layouts: ``err`` (4n + 2) holds the errors of ``joint_angle | joint_velocity | motor |
 goal | camera``; ``vec`` (2, N) the predicted belief ``z-`` and the gradient; ``work`` (N, 4N)
-the curvature ``H`` and scratch; after the step its last block holds the prior precision
-``Pi- = inv(Sigma-)`` (read by :func:`motor_bias_update`). ``pm`` holds the efference copy's
-precision per joint (learned, see :class:`blanket.agent.belief.ChannelMonitor`).
+the curvature ``H`` and scratch; ``prior_precision_out`` (N, N) receives the prior
+precision ``Pi- = inv(Sigma-)`` (read by :func:`motor_bias_update`). ``pm`` holds the
+efference copy's precision per joint (learned, see :class:`blanket.agent.belief.ChannelMonitor`).
 ``constants = (nominal motor precision (<= 0:
 no efference copy), goal precision, velocity gain kv, velocity limit of the belief, k, vmax,
 lambda^2, k_null, weighting_on, velocity reading lag l)``; entries 4-8 are the attractor's
@@ -120,6 +120,7 @@ def perception_step(  # pragma: no cover - compiled
     goal_mode,
     constants,
     cov_prior_out,
+    prior_precision_out,
     f_out,
     F_out,
     gcam_out,
@@ -171,12 +172,12 @@ def perception_step(  # pragma: no cover - compiled
                 for d in range(p1):
                     s += T[row, d * n + j] * phi_t[b, d]
                 cov_prior_out[row, b * n + j] = s + W[row, b * n + j]
-    # -- Laplace prior precision Pi- = inv(Sigma-) (a copy stays in T for the motor bias)
+    # -- Laplace prior precision Pi- = inv(Sigma-) (a copy for the motor bias)
     if not spd_inverse(cov_prior_out, H, L, Linv):
         return PRIOR_NOT_PD, 0.0
     for i in range(N):
         for j in range(N):
-            T[i, j] = H[i, j]
+            prior_precision_out[i, j] = H[i, j]
     for i in range(N):
         grad[i] = 0.0
     energy = 0.0

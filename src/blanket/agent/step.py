@@ -212,6 +212,7 @@ class CompiledWorkspace:
         self.cov_out = np.zeros((N, N))
         self.sd_out = np.zeros(N)
         self.cov_prior = np.zeros((N, N))
+        self.prior_precision = np.zeros((N, N))
         self.motion_noise = np.zeros((N, N))
         self.f = np.zeros(n)
         self.F = np.zeros((n, n))
@@ -349,6 +350,7 @@ def _perceive_compiled(
         model.goal_mode,
         model.kernel_constants,
         ws.cov_prior,
+        ws.prior_precision,
         ws.f,
         ws.F,
         ws.g_cam,
@@ -401,7 +403,7 @@ def _perceive_compiled(
         "g_cam": ws.g_cam if cam_on else None,
         "attractor_velocity": ws.f,
         "z_prior": ws.vec[0],
-        "prior_precision": ws.work[:, 3 * N : 4 * N],
+        "prior_precision": ws.prior_precision,
     }
 
 
