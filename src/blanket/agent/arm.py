@@ -274,7 +274,9 @@ class ArmAgent(PredictMixin):
             if self.body_learning is not None:
                 # the slow timescale: parameters learn at the belief after perception
                 camera = self.episode.channels.effective("camera")
-                self.body_learning.update(self.model, belief.mean, obs, camera, action)
+                self.body_learning.update(
+                    self.model, belief.mean, obs, camera, action, belief.covariance
+                )
         return action
 
     def _predicted_tip(self) -> np.ndarray | None:

@@ -88,6 +88,7 @@ import numpy as np
 from blanket.free_energy import chi_square_threshold
 
 __all__ = [
+    "belief_pixel_covariance",
     "camera_length_terms",
     "collinear_length_segments",
     "segment_spread_step",
@@ -212,6 +213,50 @@ def collinear_length_segments(
     rows = Vt[sv > tol * 1e3 * sv[0]]
     identifiable = np.einsum("ki,ki->i", rows, rows) > 1.0 - 1e-6
     return segment, identifiable
+
+
+def belief_pixel_covariance(
+    pixel_jacobian: np.ndarray,
+    angle_covariance: np.ndarray,
+    encoder_variance: float,
+    frames_per_step: float,
+) -> np.ndarray:
+    """The believed joint angles' share of a tip pixel's error, as frame noise (px^2).
+
+    The tip is predicted at the believed angles, so their error ``dq`` (covariance
+    ``Sigma_q``) moves the predicted pixel by ``H dq``, ``H = d pixel / dq``: covariance
+    ``H Sigma_q H'`` (first-order propagation; Bar-Shalom, Li & Kirubarajan 2001, sec.
+    1.4.16, from memory). Unlike the camera's noise this error is shared by successive
+    frames: the belief averages about ``c = sigma_enc^2 / mean(diag(Sigma_q))`` encoder
+    samples, so its error persists for about ``c`` control steps, ``m = c * frames_per_step``
+    frames. ``m`` frames that share an error of covariance ``C`` and have independent noise
+    ``R`` tell as much about their mean as ``m`` independent frames of noise ``R + m C``
+    (equicorrelated samples, common practice, no source), so the share returned is
+    ``max(m, 1) H Sigma_q H'``.
+
+    Parameters
+    ----------
+    pixel_jacobian : numpy.ndarray
+        ``H``, (2, n) (px/rad).
+    angle_covariance : numpy.ndarray
+        ``Sigma_q``, (n, n) (rad^2).
+    encoder_variance : float
+        The angle encoder's noise variance (rad^2).
+    frames_per_step : float
+        Camera frames per control step (``camera rate * dt``).
+
+    Returns
+    -------
+    numpy.ndarray
+        (2, 2) (px^2).
+    """
+    H = np.asarray(pixel_jacobian, dtype=float)
+    S = np.asarray(angle_covariance, dtype=float)
+    mean_var = float(np.mean(np.diag(S)))
+    if not mean_var > 0.0:
+        return np.zeros((2, 2))
+    frames = max(encoder_variance / mean_var * frames_per_step, 1.0)
+    return frames * H @ S @ H.T
 
 
 def segment_spread_step(
@@ -715,6 +760,7 @@ class BodyLearning:
         obs: Mapping[str, Any],
         camera_precision: np.ndarray,
         command: np.ndarray,
+        belief_covariance: np.ndarray | None = None,
     ) -> None:
         """Learn from one step's sensations at the belief after perception, then write the
         new parameters into ``model.body``.
@@ -730,6 +776,9 @@ class BodyLearning:
             The camera's precision in force (2,).
         command : numpy.ndarray
             The command the step sent (a torque under torque control).
+        belief_covariance : numpy.ndarray, optional
+            The belief's covariance after the step: its joint-angle part enters the
+            camera's noise (:func:`belief_pixel_covariance`).
         """
         n = model.n
         body = model.body
@@ -753,8 +802,16 @@ class BodyLearning:
             e = np.asarray(obs["tip_pixel_px"], dtype=float) - pixel
             # a frame's time is known to about one frame period: the tip's pixel velocity
             # times that adds to the pixel noise, so moving frames weigh less
-            flow = dpix @ body.tip_jacobian(q) @ v / model.camera.rate_hz
+            J = body.tip_jacobian(q)
+            flow = dpix @ J @ v / model.camera.rate_hz
             R = np.diag(1.0 / np.asarray(camera_precision, dtype=float)) + np.outer(flow, flow)
+            if belief_covariance is not None:
+                R = R + belief_pixel_covariance(
+                    dpix @ J,
+                    np.asarray(belief_covariance, dtype=float)[:n, :n],
+                    model.description.encoder_angle_noise_rad**2,
+                    model.camera.rate_hz * model.dt,
+                )
             A = self.length_map
             cov = self.covariance
             if _gate(e, R, dpix @ D @ A, cov[lengths, lengths]):
