@@ -28,6 +28,7 @@ from blanket.agent.body_calibration import (
 )
 from blanket.agent.body_learning import (
     BodyLearning,
+    belief_pixel_covariance,
     camera_length_terms,
     collinear_length_segments,
     laplace_parameter_step,
@@ -407,6 +408,30 @@ def test_a_segment_the_data_cannot_inform_is_flagged_and_keeps_its_prior(arms):
     np.testing.assert_array_equal(learner.segment_spread, learner.initial_spread)
     np.testing.assert_array_equal(learner.mean, mean)
     np.testing.assert_array_equal(learner.prior_precision, P0)
+
+
+def test_belief_error_shared_by_frames_counts_as_frame_noise():
+    """m frames sharing an error of covariance C, each with independent noise R: the exact
+    information about their common mean, 1' inv(Sigma) 1 with Sigma = I (x) R + 11' (x) C
+    (the block covariance, inverted by numpy), equals m inv(R + m C), the form
+    ``belief_pixel_covariance`` uses; and the share it returns is m H Sigma_q H' with m the
+    encoder samples the belief averages times the frames per control step."""
+    rng = np.random.default_rng(3)
+    A = rng.standard_normal((2, 2))
+    R = A @ A.T + 4 * np.eye(2)
+    Bq = rng.standard_normal((2, 2))
+    C = 0.1 * Bq @ Bq.T
+    m = 9
+    Sigma = np.kron(np.eye(m), R) + np.kron(np.ones((m, m)), C)
+    ones = np.kron(np.ones((m, 1)), np.eye(2))
+    exact = ones.T @ np.linalg.solve(Sigma, ones)
+    np.testing.assert_allclose(exact, m * np.linalg.inv(R + m * C), rtol=1e-10)
+    H = rng.standard_normal((2, 3))
+    S = np.diag([1e-6, 2e-6, 3e-6])  # mean variance 2e-6 rad^2
+    share = belief_pixel_covariance(H, S, 1e-4, 0.125)  # 50 samples, 6.25 frames
+    np.testing.assert_allclose(share, 6.25 * H @ S @ H.T, rtol=1e-12)
+    # a belief as sure as one encoder sample, or surer than none: at least one frame
+    np.testing.assert_allclose(belief_pixel_covariance(H, S, 1e-9, 0.125), H @ S @ H.T)
 
 
 # ------------------------------------------------------------------------ calibration design
