@@ -529,13 +529,9 @@ def test_calibration_informs_every_segment_better_than_reaching():
                 link_length_scales=scales,
                 body_calibration_episodes=episodes,
             )
-            for seed in range(3):
-                obs, _ = env.reset(seed=seed)
-                agent.reset()
-                done = False
-                while not done:
-                    obs, _, terminated, truncated, _ = env.step(agent.act(obs))
-                    done = terminated or truncated
+            from blanket.rollout import rollout
+
+            rollout(env, agent, 3, seed=0)
             agent.reset()
         finally:
             env.close()

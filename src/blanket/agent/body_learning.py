@@ -68,13 +68,19 @@ zero-length placement follows the shared scale alone. Which segments the camera 
 at all is checked once, from the tip's length Jacobian at random postures
 (:attr:`BodyLearning.segment_identifiable`).
 
-The segments' spread ``tau`` (the prior sd of ``delta``; it starts at
-``link_length_prior_sd``) is itself learned at each new episode by empirical Bayes: the EM
-update of a Gaussian prior's variance, ``tau^2 = (1/K) sum_k ((m_k - mu_k)^2 + S_kk)`` with
-the posterior mean ``m`` and covariance ``S`` (Bishop 2006, eq. 9.63, ``alpha = 1/tau^2``),
-iterated to its fixed point (:func:`segment_spread_step`). Segments the camera pins down set
-the spread; one it barely informs (a short wrist offset) is then drawn to the shared scale as
-far as the others agree with it, not held at the first guess of ``tau``.
+Each segment's spread ``tau_k`` (the prior sd of ``delta_k``; it starts at
+``link_length_prior_sd``) is learned at each new episode by empirical Bayes: the evidence
+maximum over ``tau_k`` with the others held, ``tau_k^2 = (x_k - mu_k)^2 - v_k`` from the
+data's own estimate ``x_k`` of the deviation and its variance ``v_k``, or the floor when that
+is negative (sparse Bayesian learning; Tipping & Faul 2003, AISTATS, eqs. 19-20), swept over
+the segments until it settles (:func:`segment_spread_step`). A segment whose data show no
+deviation beyond their noise is drawn to the shared scale (a short wrist offset the camera
+barely sees, when the error is uniform); one that really differs keeps its own value (one
+wrong link). A segment the data do not inform (``v_k`` above the user's spread) keeps its
+prior. :meth:`BodyLearning.segment_report` is the per-segment identifiability report.
+
+The tip is predicted at the believed joint angles: their error, shared by successive frames,
+enters each frame's noise (:func:`belief_pixel_covariance`).
 """
 
 from __future__ import annotations
