@@ -71,6 +71,9 @@ _MIN_CLEARANCE_M = 0.2
 #: Largest distance from a candidate's target at which the simulated approach counts as
 #: arrived (m).
 _ARRIVED_M = 0.02
+#: Distance from the target at which the tip counts as still (m): the frames after it count
+#: fully in a candidate's information.
+_SETTLED_M = 0.005
 
 
 def _segment_distance(p: np.ndarray, a: np.ndarray, b: np.ndarray) -> float:
@@ -247,35 +250,46 @@ class BodyCalibration:
         mu, mv = _IMAGE_MARGIN * camera.width_px, _IMAGE_MARGIN * camera.height_px
         return bool(mu <= u <= camera.width_px - mu and mv <= v <= camera.height_px - mv)
 
-    def _reach(self, model: Any, q: np.ndarray, home: np.ndarray, target: np.ndarray) -> np.ndarray:
+    def _reach(
+        self, model: Any, q: np.ndarray, home: np.ndarray, target: np.ndarray
+    ) -> tuple[np.ndarray, float]:
         """Where the model's attractor takes the arm from ``q`` towards ``target`` within the
-        hold time (joint limits clamped)."""
+        hold time (joint limits clamped), and when the tip comes within
+        :data:`_SETTLED_M` of the target (s; the hold time if it never does)."""
         body = model.body
         lo, hi = model.limits
         params = model.kernel_constants[4:9]
         f, F = np.empty(model.n), np.empty((model.n, model.n))
         q = q.copy()
         zero = np.zeros(3)
-        for _ in range(int(0.8 * CALIBRATION_HOLD_S / _SIM_DT_S)):
+        arrival = CALIBRATION_HOLD_S
+        steps = int(CALIBRATION_HOLD_S / _SIM_DT_S)
+        for k in range(steps):
             tip, J = body.tip_position_and_jacobian(q)
+            if arrival == CALIBRATION_HOLD_S and np.linalg.norm(tip - target) < _SETTLED_M:
+                arrival = k * _SIM_DT_S
             ok = damped_least_squares_attractor(
                 np.ascontiguousarray(J), tip, target, zero, q, home, lo, hi, params, f, F
             )
             if not ok:
                 break
             q = np.clip(q + _SIM_DT_S * f, lo, hi)
-        return q
+        return q, arrival
 
-    def _information(self, model: Any, learner: Any, q: np.ndarray) -> np.ndarray | None:
-        """Fisher information on the segments' factors of one hold at ``q`` (None when the
-        tip would not be seen)."""
+    def _information(
+        self, model: Any, learner: Any, q: np.ndarray, arrival_s: float
+    ) -> np.ndarray | None:
+        """Fisher information on the segments' factors of one hold at ``q`` reached after
+        ``arrival_s`` (None when the tip would not be seen): the still frames count fully,
+        those on the way a third (moving frames weigh less in learning; a third is about
+        their weight at the tip's usual speed, measured, from the frame-time term)."""
         if not self._usable(model, q):
             return None
         tip, D = model.body.tip_length_jacobian(q)
         _, dpix = model.camera.project_with_jacobian(tip)
         B = learner.length_map[:, 1:]
         G = dpix @ D @ B
-        frames = 0.5 * CALIBRATION_HOLD_S * model.camera.rate_hz  # about the still part
+        frames = model.camera.rate_hz * (CALIBRATION_HOLD_S - arrival_s + arrival_s / 3.0)
         return frames * G.T @ G / model.camera.pixel_noise_px**2
 
     def _design(
@@ -301,10 +315,10 @@ class BodyCalibration:
             infos, reached, goals, used = [], [], [], []
             for qc in candidates:
                 goal = model.body.tip_position(qc)
-                qr = self._reach(model, q, qc, goal)
+                qr, arrival = self._reach(model, q, qc, goal)
                 if np.linalg.norm(model.body.tip_position(qr) - goal) > _ARRIVED_M:
                     continue
-                info = self._information(model, learner, qr)
+                info = self._information(model, learner, qr, arrival)
                 if info is not None:
                     infos.append(info)
                     reached.append(qr)
