@@ -42,6 +42,7 @@ from typing import Any
 import numpy as np
 
 from blanket.agent.attractor import damped_least_squares_attractor
+from blanket.errors import ConfigError
 
 __all__ = [
     "CALIBRATION_HOLD_S",
@@ -177,6 +178,8 @@ class BodyCalibration:
     """
 
     def __init__(self, model: Any, episodes: int, seed: int = 0) -> None:
+        if model.camera is None:
+            raise ConfigError("agent option body_calibration_episodes needs an env with a camera")
         self.remaining = int(episodes)
         self._rng = np.random.default_rng(seed)
         self._hold_steps = max(1, round(CALIBRATION_HOLD_S / model.dt))
