@@ -29,7 +29,8 @@ posture, and the attractor's null-space term pulls towards the candidate posture
 posture while the hold lasts), but a redundant arm still lands where its attractor takes it
 within the hold. Each candidate is therefore followed with the model's own attractor
 (:func:`blanket.agent.attractor.damped_least_squares_attractor`) from where the previous
-posture left the arm, and the information is computed at the posture reached. Each episode
+posture left the arm, and the information is computed at the posture reached, counting
+the frames after the simulated tip settles fully and those on the way a third. Each episode
 plans its postures from its first observation, with the information learned so far; the
 random candidates come from a generator seeded once per agent (deterministic runs).
 """
