@@ -127,23 +127,45 @@ def _reach_text(m: dict[str, Any]) -> str:
     )
 
 
+#: ``body_calibration_episodes`` of the learning rows (``--calibrate``)
+CALIBRATE = {"episodes": 0}
+
+
 def _build(name: str, env: gym.Env, conditions: dict[str, Any]) -> Any:
     spec = resolve_policy(name)
-    return spec.build(env, condition_model_options(conditions), {})
+    options = dict(condition_model_options(conditions))
+    if name.endswith("+learn") and CALIBRATE["episodes"]:
+        options["body_calibration_episodes"] = CALIBRATE["episodes"]
+    return spec.build(env, options, {})
 
 
 def _compare(
-    env: gym.Env, label: str, plain: str, learning: str, conditions: dict, warmup: int, n: int
+    env: gym.Env,
+    label: str,
+    plain: str,
+    learning: str,
+    conditions: dict,
+    warmup: int,
+    n: int,
+    truth: float | None = None,
 ) -> tuple[Any, dict[str, Any], dict[str, Any]]:
     """Print the row without learning; warm up the learning agent, measure it; return the
-    agent, its measurement and what it had learned after the warm-up (``[agent]`` options)."""
+    agent, its measurement and what it had learned after the warm-up (``[agent]`` options).
+    With the segments' true ``truth`` factor, print what was learned after the warm-up."""
     seeds = list(range(warmup, warmup + n))
     m = _measure(env, _build(plain, env, conditions), seeds)
     print(f"  {label:<6} {plain:<30} {_reach_text(m)}", flush=True)
     agent = _build(learning, env, conditions)
     if warmup:
         run_policy_episodes(env, agent, list(range(warmup)))
+    agent.reset()  # the spreads re-estimated, as the next episode starts from them
     warm = agent.learned_options()
+    if truth is not None:
+        text, worst = _segments_text(agent.body_learning, truth)
+        print(
+            f"         after the {warmup} warm-up episodes: worst segment {worst:.2f} %; {text}",
+            flush=True,
+        )
     return agent, _measure(env, agent, seeds), warm
 
 
@@ -161,38 +183,48 @@ def _tip_errors_mm(env: gym.Env, body: Any, postures: int = 500) -> np.ndarray:
     )
 
 
+def _segments_text(learner: Any, truth: float) -> tuple[str, float]:
+    """Each segment's error (% of the true length), posterior sd, the data's own sd and
+    |error| / sd; and the worst error (%)."""
+    parts, worst = [], 0.0
+    for r in learner.segment_report():
+        err = 100 * (r["factor"] / truth - 1.0)
+        worst = max(worst, abs(err))
+        data = f"{100 * r['data_sd']:.2f}" if np.isfinite(r["data_sd"]) else "inf"
+        parts.append(
+            f"{r['name']} {err:+.2f} (sd {100 * r['sd']:.2f}, data sd {data}, "
+            f"|err|/sd {abs(err) / (100 * r['sd']):.1f}{'' if r['informed'] else ', not informed'})"
+        )
+    return "; ".join(parts), worst
+
+
 def lengths(arm: str, warmup: int, episodes: int) -> None:
     conditions = {"model_length_scale": LENGTH_ERROR}
     env = _env(arm, "velocity", conditions)
     try:
-        agent, m, warm = _compare(
-            env, arm, "active-inference", "active-inference+learn", conditions, warmup, episodes
+        agent, m, _ = _compare(
+            env,
+            arm,
+            "active-inference",
+            "active-inference+learn",
+            conditions,
+            warmup,
+            episodes,
+            1.0 / LENGTH_ERROR,
         )
         learner = agent.body_learning
-        g, g_sd = learner.shared_length_scale()
-        s, sd = learner.length_scales(), learner.length_scales_sd()
-        err = 100 * (s * LENGTH_ERROR - 1.0)  # per cent of the true length
-        heads = [int(np.flatnonzero(learner.segment == k)[0]) for k in range(learner.n_length - 1)]
-        seg = ", ".join(
-            f"{name} {err[i]:+.2f} (sd {100 * sd[i]:.2f}{'' if ok else ', not identifiable'})"
-            for name, i, ok in zip(
-                learner.segment_names, heads, learner.segment_identifiable, strict=True
-            )
-        )
-        worst = max(abs(err[i]) for i in heads)
-        warm_err = 100 * (np.asarray(warm["link_length_scales"]) * LENGTH_ERROR - 1.0)
-        warm_text = ", ".join(f"{warm_err[i]:+.2f}" for i in heads)
         agent.reset()  # writes everything learned into the body model
+        g, g_sd = learner.shared_length_scale()
+        seg, worst = _segments_text(learner, 1.0 / LENGTH_ERROR)
         before, after = (
             _tip_errors_mm(env, body)
             for body in (_build("active-inference", env, conditions).body, agent.body)
         )
         print(
             f"  {arm:<6} {'active-inference+learn':<30} {_reach_text(m)}\n"
-            f"         learned: shared scale error {100 * (g * LENGTH_ERROR - 1):+.2f} % "
-            f"(sd {100 * g_sd:.2f} %); worst segment {worst:.2f} %; segments (error and "
-            f"posterior sd, % of the true length): {seg}; after the {warmup} warm-up "
-            f"episodes [{warm_text}] %\n"
+            f"         learned after all {warmup + episodes} episodes: shared scale error "
+            f"{100 * (g * LENGTH_ERROR - 1):+.2f} % (sd {100 * g_sd:.2f} %); worst segment "
+            f"{worst:.2f} %; {seg}\n"
             f"         tip error of the body model at 500 random postures, median / 95th "
             f"percentile: {np.median(before):.1f} / {np.percentile(before, 95):.1f} mm before, "
             f"{np.median(after):.1f} / {np.percentile(after, 95):.1f} mm learned",
@@ -215,21 +247,24 @@ def single(arm: str, warmup: int, episodes: int) -> None:
         model = np.ones(lengths_m.size)
         wrong = int(np.argmax(lengths_m))
         model[wrong] = LENGTH_ERROR
-        agent = ArmAgent.from_env(env, learn_body=True, link_length_scales=model.tolist())
+        agent = ArmAgent.from_env(
+            env,
+            learn_body=True,
+            link_length_scales=model.tolist(),
+            body_calibration_episodes=CALIBRATE["episodes"],
+        )
         if warmup:
             run_policy_episodes(env, agent, list(range(warmup)))
-        learned = np.asarray(agent.learned_options()["link_length_scales"])
-        m = _measure(env, agent, list(range(warmup, warmup + episodes)))
+        agent.reset()
         learner = agent.body_learning
-        heads = [int(np.flatnonzero(learner.segment == k)[0]) for k in range(learner.n_length - 1)]
-        errors = ", ".join(
-            f"{name} {100 * (learned[i] - 1):+.2f}"
-            for name, i in zip(learner.segment_names, heads, strict=True)
-        )
+        text, worst = _segments_text(learner, 1.0)
+        m = _measure(env, agent, list(range(warmup, warmup + episodes)))
+        agent.reset()
+        _, final = _segments_text(learner, 1.0)
         print(
             f"  {arm:<6} {nominal.length_parameter_names[wrong]} 3 % long, learn_body "
-            f"{_reach_text(m)}\n         after the {warmup} warm-up episodes, % of the true "
-            f"length: {errors}; spread {100 * learner.segment_spread:.2f} %",
+            f"{_reach_text(m)}\n         after the {warmup} warm-up episodes: worst segment "
+            f"{worst:.2f} % ({final:.2f} % after the measured ones); {text}",
             flush=True,
         )
     finally:
@@ -326,9 +361,19 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--warmup", type=int, default=5, help="warm-up episodes per row")
     parser.add_argument("--arms", default="iiwa,panda,xarm6,own,seedling")
     parser.add_argument("--parts", default="lengths,image,payload,timing")
+    parser.add_argument(
+        "--calibrate",
+        type=int,
+        default=0,
+        help="body_calibration_episodes of the learning rows (parts lengths, single), "
+        "at most --warmup",
+    )
     args = parser.parse_args(argv)
     if args.episodes < 1 or args.warmup < 0:
         parser.error("--episodes must be >= 1 and --warmup >= 0")
+    if not 0 <= args.calibrate <= args.warmup:
+        parser.error(f"--calibrate must be in 0..--warmup ({args.warmup}), got {args.calibrate}")
+    CALIBRATE["episodes"] = args.calibrate
     parts = args.parts.split(",")
     unknown = set(parts) - {"lengths", "image", "single", "payload", "timing"}
     if unknown:

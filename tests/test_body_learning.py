@@ -21,8 +21,14 @@ import pytest
 
 import blanket  # noqa: F401  (registers the env ids)
 from blanket.agent import ArmAgent
+from blanket.agent.body_calibration import (
+    e_optimal_design,
+    skeleton_clearance,
+    smallest_eigenvalue,
+)
 from blanket.agent.body_learning import (
     BodyLearning,
+    belief_pixel_covariance,
     camera_length_terms,
     collinear_length_segments,
     laplace_parameter_step,
@@ -216,29 +222,53 @@ def test_length_factors_from_tip_positions_reach_the_bayesian_posterior(arms):
     assert 0.1 * s[0] + 0.05 * s[1] == pytest.approx(0.15 * 0.97, abs=3e-4)
 
 
-def test_segment_spread_is_the_em_update_and_keeps_the_data(arms):
-    """One EM step of the segments' shared prior variance: tau^2 = mean((m - mu)^2 + S_kk)
-    (Bishop 2006, eq. 9.63), and the new posterior is the Bayesian posterior of the same data
-    under the new prior (eqs. 3.50-3.51)."""
+def _log_evidence(Phi, t, m0, S0_inv, beta):
+    """ln N(t | Phi m0, I / beta + Phi S0 Phi'): the marginal likelihood of Bayesian linear
+    regression with a general Gaussian prior (Bishop 2006, eq. 3.86 in its covariance form,
+    from eq. 2.115), by scipy's multivariate normal."""
+    from scipy.stats import multivariate_normal
+
+    cov = np.eye(len(t)) / beta + Phi @ np.linalg.inv(S0_inv) @ Phi.T
+    return multivariate_normal(Phi @ m0, cov).logpdf(t)
+
+
+@pytest.mark.parametrize("deviation", [0.08, 0.0])
+def test_segment_spread_maximises_the_evidence_and_keeps_the_data(deviation):
+    """The spread of parameter k is the maximum of the marginal likelihood over tau_k (the
+    others' priors held), found here by scipy's bounded scalar search on the log evidence;
+    and the new posterior is the Bayesian posterior of the same data under the new prior
+    (Bishop 2006, eqs. 3.50-3.51). With no real deviation the evidence is largest at
+    tau_k -> 0: the spread goes to its floor (the parameter is pruned to its prior mean)."""
+    from scipy.optimize import minimize_scalar
+
     rng = np.random.default_rng(7)
-    k, N, beta = 5, 40, 1.0 / 0.05**2
-    Phi = rng.standard_normal((N, k))
-    t = Phi @ rng.normal(0.0, 0.1, k) + rng.standard_normal(N) / np.sqrt(beta)
-    m0 = np.array([1.0, 0.0, 0.01, 0.0, -0.02])
+    p, N, beta = 5, 40, 1.0 / 0.05**2
+    Phi = rng.standard_normal((N, p))
+    w = np.array([1.0, 0.01, deviation, -0.03, 0.0])
+    t = Phi @ w + rng.standard_normal(N) / np.sqrt(beta)
+    m0 = np.array([1.0, 0.0, 0.0, 0.0, 0.0])
     P0 = np.diag([1 / 0.1**2, *[1 / 0.02**2] * 4])
     m, P = _bishop_posterior(Phi, t, m0, P0, beta)
-    block = np.arange(1, k)
-    m1, P1, P01, tau = segment_spread_step(m, P, m0, P0, block)
-    S = np.linalg.inv(P)
-    tau2 = np.mean((m[block] - m0[block]) ** 2 + np.diag(S)[block])
-    assert tau == pytest.approx(np.sqrt(tau2), rel=1e-12)
-    np.testing.assert_allclose(np.diag(P01), [1 / 0.1**2, *[1 / tau2] * 4], rtol=1e-12)
+    k = 2
+
+    def negative_evidence(log_tau):
+        prior = P0.copy()
+        prior[k, k] = np.exp(-2 * log_tau)
+        return -_log_evidence(Phi, t, m0, prior, beta)
+
+    best = minimize_scalar(negative_evidence, bounds=(np.log(1e-6), np.log(1.0)), method="bounded")
+    m1, P1, P01, tau = segment_spread_step(m, P, m0, P0, k, informed_below=0.02, floor=1e-6)
+    if deviation:
+        assert tau == pytest.approx(np.exp(best.x), rel=1e-3)
+    else:  # pruned: the evidence grows as tau_k shrinks
+        assert tau == 1e-6
+        assert negative_evidence(np.log(1e-4)) < negative_evidence(np.log(1e-2))
     mN, PN = _bishop_posterior(Phi, t, m0, P01, beta)
     np.testing.assert_allclose(m1, mN, atol=1e-10)
     np.testing.assert_allclose(P1, PN, rtol=1e-10)
-    # the floor holds the spread when the deviations vanish
-    *_, tau_floor = segment_spread_step(m0, P0 * 1e8, m0, P0, block, floor=0.004)
-    assert tau_floor == 0.004
+    # the identifiability guard: data that tell less than the prior leave the spread alone
+    unchanged = segment_spread_step(m, P, m0, P0, k, informed_below=1e-4)
+    assert unchanged[3] == pytest.approx(0.02) and unchanged[2] is P0
 
 
 @pytest.mark.parametrize("truth", ["uniform", "one segment longer"])
@@ -264,11 +294,12 @@ def test_learned_spread_pins_weak_segments_without_hiding_a_real_one(arms, truth
         learner.new_episode()
     s = learner.length_scales()
     moves = learner.segment >= 0
+    spread = dict(zip(learner.segment_names, learner.segment_spread, strict=True))
     if truth == "uniform":
-        assert learner.segment_spread < 0.005
+        assert max(spread.values()) < 0.005
         assert np.abs(s[moves] / 0.97 - 1).max() < 0.005
     else:
-        assert learner.segment_spread > 0.005
+        assert spread["panda_joint5"] > 0.005
         assert s[long] / 0.99 - 1 == pytest.approx(0.0, abs=0.005)
 
 
@@ -366,6 +397,150 @@ def test_a_segment_the_data_cannot_inform_is_flagged_and_keeps_its_prior(arms):
     for w in null:
         assert w @ learner.precision @ w == pytest.approx(w @ P0 @ w, rel=1e-9)
         assert abs((P0 @ w) @ (learner.mean - learner.prior_mean)) < 1e-9 * np.abs(P0).max()
+    # the report says so: no segment's factor is determined by the data alone, and at the
+    # next episode every segment keeps its prior spread (nothing is re-estimated from data
+    # that cannot inform it)
+    report = learner.segment_report()
+    assert [r["informed"] for r in report] == [False] * len(report)
+    assert all(np.isinf(r["data_sd"]) for r in report)
+    mean = learner.mean.copy()
+    learner.new_episode()
+    np.testing.assert_array_equal(learner.segment_spread, learner.initial_spread)
+    np.testing.assert_array_equal(learner.mean, mean)
+    np.testing.assert_array_equal(learner.prior_precision, P0)
+
+
+def test_belief_error_shared_by_frames_counts_as_frame_noise():
+    """m frames sharing an error of covariance C, each with independent noise R: the exact
+    information about their common mean, 1' inv(Sigma) 1 with Sigma = I (x) R + 11' (x) C
+    (the block covariance, inverted by numpy), equals m inv(R + m C), the form
+    ``belief_pixel_covariance`` uses; and the share it returns is m H Sigma_q H' with m the
+    encoder samples the belief averages times the frames per control step."""
+    rng = np.random.default_rng(3)
+    A = rng.standard_normal((2, 2))
+    R = A @ A.T + 4 * np.eye(2)
+    Bq = rng.standard_normal((2, 2))
+    C = 0.1 * Bq @ Bq.T
+    m = 9
+    Sigma = np.kron(np.eye(m), R) + np.kron(np.ones((m, m)), C)
+    ones = np.kron(np.ones((m, 1)), np.eye(2))
+    exact = ones.T @ np.linalg.solve(Sigma, ones)
+    np.testing.assert_allclose(exact, m * np.linalg.inv(R + m * C), rtol=1e-10)
+    H = rng.standard_normal((2, 3))
+    S = np.diag([1e-6, 2e-6, 3e-6])  # mean variance 2e-6 rad^2
+    share = belief_pixel_covariance(H, S, 1e-4, 0.125)  # 50 samples, 6.25 frames
+    np.testing.assert_allclose(share, 6.25 * H @ S @ H.T, rtol=1e-12)
+    # a belief as sure as one encoder sample, or surer than none: at least one frame
+    np.testing.assert_allclose(belief_pixel_covariance(H, S, 1e-9, 0.125), H @ S @ H.T)
+
+
+# ------------------------------------------------------------------------ calibration design
+def test_e_optimal_design_of_a_line_fit_is_the_interval_ends():
+    """Fitting y = a + b x on [-1, 1] with two points: the E-optimal (also D- and A-optimal)
+    design puts them at the ends, M = 2 I (Pukelsheim 2006, *Optimal Design of
+    Experiments*, the line fit on the symmetric interval; from memory). Any other pair has
+    trace(M) = 2 + x1^2 + x2^2 < 4, so a smaller least eigenvalue."""
+    xs = np.linspace(-1.0, 1.0, 21)
+    candidates = np.array([np.outer([1.0, x], [1.0, x]) for x in xs])
+    chosen = e_optimal_design(np.zeros((2, 2)), candidates, 2)
+    assert sorted(xs[chosen].tolist()) == [-1.0, 1.0]
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_e_optimal_design_matches_brute_force_on_a_toy(seed):
+    """Three length factors, twelve candidate postures of rank-2 information (a pixel sees
+    two directions): the greedy choice with Fedorov's exchange reaches the best smallest
+    eigenvalue over all 220 triples (brute force), and beats a random triple."""
+    from itertools import combinations
+
+    rng = np.random.default_rng(seed)
+    G = rng.standard_normal((12, 2, 3)) * rng.uniform(0.2, 2.0, size=(12, 1, 3))
+    candidates = np.einsum("cij,cik->cjk", G, G)
+    prior = np.eye(3) * 0.1
+    best = max(
+        smallest_eigenvalue(prior + candidates[list(c)].sum(axis=0))
+        for c in combinations(range(12), 3)
+    )
+    chosen = e_optimal_design(prior, candidates, 3)
+    assert len(set(chosen)) == 3
+    assert smallest_eigenvalue(prior + candidates[chosen].sum(axis=0)) == pytest.approx(
+        best, rel=1e-9
+    )
+
+
+def test_skeleton_clearance_is_the_point_to_segment_distance():
+    """A planar arm folded back over itself: the tip's distance from the first link is the
+    perpendicular distance to it (point-to-segment distance, common practice, no source)."""
+    # base origin, shoulder at 0.1 m up, elbow 0.5 m out, wrist 0.5 m further, tip folded
+    # back to (0.3, 0, 0.1 + 0.2)
+    points = np.array([[0.0, 0.0, 0.1], [0.5, 0.0, 0.1], [1.0, 0.0, 0.1], [0.3, 0.0, 0.3]])
+    # tip: segments base->shoulder and shoulder->elbow (the last two left out);
+    # wrist (1.0, 0, 0.1): base->shoulder only
+    expected = min(
+        0.2,  # tip above the shoulder->elbow segment
+        np.hypot(0.3, 0.2),  # tip from the shoulder (end of the base segment)
+        np.hypot(1.0, 0.0),  # wrist from the shoulder
+    )
+    assert skeleton_clearance(points) == pytest.approx(expected)
+
+
+def test_calibration_postures_are_seen_and_clear(arms):
+    """The calibration's candidate postures keep the tip in the camera's view, above the
+    base and clear of the arm's first links; the plan's targets are the model's tips at the
+    planned postures' homes; an agent with calibration counts its calibrating episodes."""
+    env = gym.make("blanket/arm-reach-v0", robot="panda", episode_s=1.5)
+    try:
+        agent = ArmAgent.from_env(env, learn_body=True, body_calibration_episodes=1)
+        calibration = agent.body_calibration
+        model = agent.model
+        obs, _ = env.reset(seed=0)
+        agent.reset()
+        agent.act(obs)
+        assert calibration.plan is not None and calibration.remaining == 1
+        planned_with = ArmAgent.from_env(env).body  # the body before anything was learned
+        for target, home in zip(calibration.plan, calibration.homes, strict=True):
+            np.testing.assert_allclose(target, planned_with.tip_position(home), atol=1e-12)
+        for q in calibration.postures:
+            points = model.body.chain_points(q)
+            u, v = model.camera.project(points[-1])
+            assert 0 <= u <= model.camera.width_px and 0 <= v <= model.camera.height_px
+            assert points[-1][2] > 0.0 and skeleton_clearance(points) >= 0.2
+        agent.reset()
+        assert calibration.remaining == 0 and not calibration.active
+    finally:
+        env.close()
+
+
+@pytest.mark.slow
+def test_calibration_informs_every_segment_better_than_reaching():
+    """Panda, one link 3 % long (panda_joint5), 3 episodes: the camera's own sd of the worst
+    informed segment (``data_sd``: the information the frames added, not the prior) is at
+    least halved by calibration postures against reaching for the bench's targets, and
+    every learned factor lies within 3 posterior sd of the truth."""
+    worst = {}
+    for episodes in (0, 3):
+        env = gym.make("blanket/arm-reach-v0", robot="panda")
+        try:
+            names = ArmAgent.from_env(env).body.length_parameter_names
+            scales = [1.03 if n == "panda_joint5" else 1.0 for n in names]
+            agent = ArmAgent.from_env(
+                env,
+                learn_body=True,
+                link_length_scales=scales,
+                body_calibration_episodes=episodes,
+            )
+            from blanket.rollout import rollout
+
+            rollout(env, agent, 3, seed=0)
+            agent.reset()
+        finally:
+            env.close()
+        report = agent.body_learning.segment_report()
+        worst[episodes] = max(r["data_sd"] for r in report)
+        if episodes:
+            for r in report:
+                assert abs(r["factor"] - 1.0) < 3 * r["sd"], r
+    assert worst[3] < 0.5 * worst[0]
 
 
 # ------------------------------------------------------------------------ the agent
@@ -465,6 +640,9 @@ def test_learn_body_off_leaves_the_body_as_built(arms):
         ({"link_length_scales": [1.0, 1.0]}, "link_length_scales"),
         ({"link_length_scales": [1.0, 1.0, -1.0, 1.0]}, "link_length_scales"),
         ({"learn_bodyy": True}, "learn_body"),
+        ({"body_calibration_episodes": -1, "learn_body": True}, "body_calibration_episodes"),
+        ({"body_calibration_episodes": 1.5, "learn_body": True}, "body_calibration_episodes"),
+        ({"body_calibration_episodes": 2}, "body_calibration_episodes"),
     ],
 )
 def test_bad_learning_options_are_one_line_config_errors(options, field):

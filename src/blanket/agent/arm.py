@@ -66,6 +66,7 @@ import numpy as np
 from blanket.agent._policy import PredictMixin
 from blanket.agent.attractor import joint_limit_weights
 from blanket.agent.belief import Belief, EpisodeState
+from blanket.agent.body_calibration import BodyCalibration
 from blanket.agent.body_learning import BodyLearning
 from blanket.agent.generative_model import AgentOptions, GenerativeModel
 from blanket.agent.image_goal import ImageGoal
@@ -129,6 +130,12 @@ class ArmAgent(PredictMixin):
         #: the body parameters' belief (``learn_body``), kept across episodes
         self.body_learning: BodyLearning | None = (
             BodyLearning.start(self.model) if self.model.options["learn_body"] else None
+        )
+        #: calibration motions of the first episodes (``body_calibration_episodes``)
+        self.body_calibration: BodyCalibration | None = (
+            BodyCalibration(self.model, self.model.options["body_calibration_episodes"])
+            if self.model.options["body_calibration_episodes"]
+            else None
         )
         #: the goal in the image (``goal_space="image"``)
         self.image_goal: ImageGoal | None = None
@@ -227,6 +234,8 @@ class ArmAgent(PredictMixin):
         self._diag: dict[str, Any] = {}
         if self.image_goal is not None:
             self.image_goal.reset()
+        if self.body_calibration is not None:
+            self.body_calibration.new_episode()
         if self.body_learning is not None:
             self.body_learning.new_episode()
             self.body_learning.apply(self.model.body)  # everything learned so far
@@ -250,7 +259,11 @@ class ArmAgent(PredictMixin):
     # -- one step -----------------------------------------------------------------------
     def act(self, obs: Mapping[str, Any]) -> np.ndarray:
         """Update the belief from ``obs`` and return the next command."""
-        if self.image_goal is not None:
+        if self.body_calibration is not None and self.body_calibration.active:
+            obs = self.body_calibration.goal_observation(obs, self.model, self.body_learning)
+            if self.state is not None:  # the first step sets the home posture itself
+                self.episode.command.home = self.body_calibration.home
+        elif self.image_goal is not None:
             obs = self.image_goal.goal_observation(obs, self._predicted_tip())
         belief, action, diag = step(self.model, self.state, obs, self.episode, self._workspace)
         self.state = belief
@@ -261,7 +274,9 @@ class ArmAgent(PredictMixin):
             if self.body_learning is not None:
                 # the slow timescale: parameters learn at the belief after perception
                 camera = self.episode.channels.effective("camera")
-                self.body_learning.update(self.model, belief.mean, obs, camera, action)
+                self.body_learning.update(
+                    self.model, belief.mean, obs, camera, action, belief.covariance
+                )
         return action
 
     def _predicted_tip(self) -> np.ndarray | None:

@@ -68,13 +68,19 @@ zero-length placement follows the shared scale alone. Which segments the camera 
 at all is checked once, from the tip's length Jacobian at random postures
 (:attr:`BodyLearning.segment_identifiable`).
 
-The segments' spread ``tau`` (the prior sd of ``delta``; it starts at
-``link_length_prior_sd``) is itself learned at each new episode by empirical Bayes: the EM
-update of a Gaussian prior's variance, ``tau^2 = (1/K) sum_k ((m_k - mu_k)^2 + S_kk)`` with
-the posterior mean ``m`` and covariance ``S`` (Bishop 2006, eq. 9.63, ``alpha = 1/tau^2``),
-iterated to its fixed point (:func:`segment_spread_step`). Segments the camera pins down set
-the spread; one it barely informs (a short wrist offset) is then drawn to the shared scale as
-far as the others agree with it, not held at the first guess of ``tau``.
+Each segment's spread ``tau_k`` (the prior sd of ``delta_k``; it starts at
+``link_length_prior_sd``) is learned at each new episode by empirical Bayes: the evidence
+maximum over ``tau_k`` with the others held, ``tau_k^2 = (x_k - mu_k)^2 - v_k`` from the
+data's own estimate ``x_k`` of the deviation and its variance ``v_k``, or the floor when that
+is negative (sparse Bayesian learning; Tipping & Faul 2003, AISTATS, eqs. 19-20), swept over
+the segments until it settles (:func:`segment_spread_step`). A segment whose data show no
+deviation beyond their noise is drawn to the shared scale (a short wrist offset the camera
+barely sees, when the error is uniform); one that really differs keeps its own value (one
+wrong link). A segment the data do not inform (``v_k`` above the user's spread) keeps its
+prior. :meth:`BodyLearning.segment_report` is the per-segment identifiability report.
+
+The tip is predicted at the believed joint angles: their error, shared by successive frames,
+enters each frame's noise (:func:`belief_pixel_covariance`).
 """
 
 from __future__ import annotations
@@ -88,6 +94,7 @@ import numpy as np
 from blanket.free_energy import chi_square_threshold
 
 __all__ = [
+    "belief_pixel_covariance",
     "camera_length_terms",
     "collinear_length_segments",
     "segment_spread_step",
@@ -120,8 +127,8 @@ _MIN_PAYLOAD_KG = 0.05
 #: Floor of the learned spread of the segments' factors (common practice, no source): the
 #: spread never collapses to zero, so a segment stays free to follow new data.
 MIN_SEGMENT_SPREAD = 1e-3
-#: Fixed-point iterations of the spread's EM update at a new episode (it converges in a few).
-_SPREAD_ITERATIONS = 20
+#: Most sweeps of the segments' spread update at a new episode (it settles in a few).
+_SPREAD_ITERATIONS = 50
 #: Floor of a learned length factor (a factor <= 0 would turn a link inside out).
 _MIN_LENGTH_SCALE = 0.2
 
@@ -214,45 +221,106 @@ def collinear_length_segments(
     return segment, identifiable
 
 
+def belief_pixel_covariance(
+    pixel_jacobian: np.ndarray,
+    angle_covariance: np.ndarray,
+    encoder_variance: float,
+    frames_per_step: float,
+) -> np.ndarray:
+    """The believed joint angles' share of a tip pixel's error, as frame noise (px^2).
+
+    The tip is predicted at the believed angles, so their error ``dq`` (covariance
+    ``Sigma_q``) moves the predicted pixel by ``H dq``, ``H = d pixel / dq``: covariance
+    ``H Sigma_q H'`` (first-order propagation; Bar-Shalom, Li & Kirubarajan 2001, sec.
+    1.4.16, from memory). Unlike the camera's noise this error is shared by successive
+    frames: the belief averages about ``c = sigma_enc^2 / mean(diag(Sigma_q))`` encoder
+    samples, so its error persists for about ``c`` control steps, ``m = c * frames_per_step``
+    frames. ``m`` frames that share an error of covariance ``C`` and have independent noise
+    ``R`` tell as much about their mean as ``m`` independent frames of noise ``R + m C``
+    (equicorrelated samples, common practice, no source), so the share returned is
+    ``max(m, 1) H Sigma_q H'``.
+
+    Parameters
+    ----------
+    pixel_jacobian : numpy.ndarray
+        ``H``, (2, n) (px/rad).
+    angle_covariance : numpy.ndarray
+        ``Sigma_q``, (n, n) (rad^2).
+    encoder_variance : float
+        The angle encoder's noise variance (rad^2).
+    frames_per_step : float
+        Camera frames per control step (``camera rate * dt``).
+
+    Returns
+    -------
+    numpy.ndarray
+        (2, 2) (px^2).
+    """
+    H = np.asarray(pixel_jacobian, dtype=float)
+    S = np.asarray(angle_covariance, dtype=float)
+    mean_var = float(np.mean(np.diag(S)))
+    if not mean_var > 0.0:
+        return np.zeros((2, 2))
+    frames = max(encoder_variance / mean_var * frames_per_step, 1.0)
+    return frames * H @ S @ H.T
+
+
 def segment_spread_step(
     mean: np.ndarray,
     precision: np.ndarray,
     prior_mean: np.ndarray,
     prior_precision: np.ndarray,
-    block: np.ndarray,
+    k: int,
+    informed_below: float,
     floor: float = MIN_SEGMENT_SPREAD,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, float]:
-    """One EM step of a shared prior variance ``tau^2`` over the parameters ``block``.
+    """The prior variance ``tau_k^2`` of parameter ``k`` that maximises the evidence, the
+    others' priors held (one step of sparse Bayesian learning's sequential update).
 
-    E-step: the posterior ``N(m, S)``, ``S = inv(Pi)``. M-step: ``tau^2 = (1/K) sum_{k in
-    block} ((m_k - mu_k)^2 + S_kk)`` (Bishop 2006, *Pattern Recognition and Machine Learning*,
-    eq. 9.63, ``alpha = 1/tau^2``), floored at ``floor^2``. The posterior under the new prior
-    keeps the data's information ``Pi - Pi_0`` and ``Pi m - Pi_0 mu``, so
-    ``Pi' = Pi + dPi_0`` and ``m' = m + inv(Pi') dPi_0 (mu - m)`` (Bishop 2006, eqs.
-    3.50-3.51, linear-Gaussian: exact; for the camera, at the Gauss-Newton linearisation).
+    The posterior marginal of ``theta_k``, ``N(m_k, S_kk)``, is the data's (the other
+    parameters integrated out), ``N(x_k, v_k)``, times the prior ``N(mu_k, tau_k^2)``:
+    ``1/v_k = 1/S_kk - 1/tau_k^2`` and ``x_k = mu_k + v_k (m_k - mu_k) / S_kk``. The evidence
+    is ``N(x_k | mu_k, v_k + tau_k^2)`` in ``tau_k``, largest at
+    ``tau_k^2 = (x_k - mu_k)^2 - v_k`` when that is positive, at ``tau_k = 0`` (the parameter
+    pruned to its prior mean) otherwise (Tipping & Faul 2003, "Fast marginal likelihood
+    maximisation for sparse Bayesian models", AISTATS, eqs. 19-20, ``alpha = 1/tau^2``,
+    ``s = 1/v``, ``q = (x - mu)/v``), floored at ``floor^2``. A parameter the data barely
+    inform, ``v_k > informed_below^2``, keeps its prior (the identifiability guard): its
+    spread is returned unchanged. The posterior under the new prior keeps the data's
+    information ``Pi - Pi_0`` and ``Pi m - Pi_0 mu``: ``Pi' = Pi + dPi_0``,
+    ``m' = m + inv(Pi') dPi_0 (mu - m)`` (Bishop 2006, *Pattern Recognition and Machine
+    Learning*, eqs. 3.50-3.51; exact for a linear-Gaussian model, for the camera at the
+    Gauss-Newton linearisation).
 
     Parameters
     ----------
     mean, precision : numpy.ndarray
-        The posterior (k,), (k, k).
+        The posterior (p,), (p, p).
     prior_mean, prior_precision : numpy.ndarray
-        The prior (k,), (k, k); its ``block`` part diagonal.
-    block : numpy.ndarray
-        Indices of the parameters that share ``tau``.
+        The prior (p,), (p, p); row and column ``k`` of the precision zero but the diagonal.
+    k : int
+        The parameter whose spread is set.
+    informed_below : float
+        Largest data sd ``sqrt(v_k)`` for which the data count as informing ``theta_k``.
     floor : float
-        Least ``tau``.
+        Least ``tau_k``.
 
     Returns
     -------
     (numpy.ndarray, numpy.ndarray, numpy.ndarray, float)
-        The new mean, precision, prior precision and ``tau``.
+        The new mean, precision, prior precision and ``tau_k``.
     """
-    block = np.asarray(block, dtype=int)
     cov = np.linalg.inv(precision)
-    d = mean[block] - prior_mean[block]
-    tau2 = max(float(np.mean(d * d + np.diag(cov)[block])), floor * floor)
+    S = float(cov[k, k])
+    alpha = float(prior_precision[k, k])
+    data_precision = 1.0 / S - alpha
+    if data_precision * informed_below**2 <= 1.0:
+        return mean, precision, prior_precision, float(1.0 / np.sqrt(alpha))
+    v = 1.0 / data_precision
+    x = v * (float(mean[k]) - float(prior_mean[k])) / S  # x_k - mu_k
+    tau2 = max(x * x - v, floor * floor)
     new_prior = prior_precision.copy()
-    new_prior[block, block] = 1.0 / tau2
+    new_prior[k, k] = 1.0 / tau2
     change = new_prior - prior_precision
     new_precision = precision + change
     new_mean = mean + np.linalg.solve(new_precision, change @ (prior_mean - mean))
@@ -402,9 +470,11 @@ class BodyLearning:
         Each segment's factors, joined by ``+``.
     segment_identifiable : numpy.ndarray
         Whether the tip's position can determine each segment's factor (K,).
-    segment_spread : float
-        Prior sd of the segments' deviations from the shared scale, learned by empirical
-        Bayes at each new episode.
+    segment_spread : numpy.ndarray
+        Prior sd of each segment's deviation from the shared scale (K,), learned by
+        empirical Bayes at each new episode (:func:`segment_spread_step`).
+    initial_spread : numpy.ndarray
+        The user's prior sd of the deviations (``link_length_prior_sd``), (K,).
     length_map : numpy.ndarray
         ``s = length_map @ theta[:K + 1]`` (L, K + 1).
     learn_payload : bool
@@ -427,6 +497,9 @@ class BodyLearning:
     ) -> None:
         self.prior_mean = np.asarray(prior_mean, dtype=float).copy()
         self.prior_precision = np.asarray(prior_precision, dtype=float).copy()
+        #: the user's prior precision (the segments' spreads are re-estimated in
+        #: ``prior_precision``; this one stays)
+        self.initial_prior_precision = self.prior_precision.copy()
         self.mean = self.prior_mean.copy()
         self.precision = self.prior_precision.copy()
         self.names = tuple(names)
@@ -457,10 +530,10 @@ class BodyLearning:
         self.length_map = np.hstack([np.ones((L, 1)), B])
         #: theta[:n_length] are the length parameters (g, delta_1..delta_K)
         self.n_length = K + 1
-        #: prior sd of the segments' deviations (learned at each new episode)
-        self.segment_spread = (
-            float(1.0 / np.sqrt(self.prior_precision[1, 1])) if K else float("nan")
-        )
+        #: prior sd of each segment's deviation (learned at each new episode), and the
+        #: user's, which a segment the data do not inform keeps
+        self.segment_spread = 1.0 / np.sqrt(np.diag(self.prior_precision)[1 : K + 1])
+        self.initial_spread = self.segment_spread.copy()
         self._frames_at_spread = 0
         self._last: _Motion | None = None
         self._sent: np.ndarray | None = None
@@ -524,6 +597,49 @@ class BodyLearning:
     def shared_length_scale(self) -> tuple[float, float]:
         """The shared scale ``g`` and its posterior sd."""
         return float(self.mean[0]), float(np.sqrt(self.covariance[0, 0]))
+
+    def segment_report(self) -> list[dict[str, Any]]:
+        """What the data say about each segment's factor ``s_k = g + delta_k``.
+
+        Returns one dict per segment: ``name``; ``factor`` and ``sd``, the posterior mean and
+        sd; ``data_sd``, the sd from the sensations alone (the information they added,
+        ``Pi - Pi_0``, mapped to the segments' factors and inverted; ``inf`` where they left
+        a combination unseen); ``spread``, the prior sd of the deviation in force; and
+        ``informed``, whether the data tell more than the user's prior
+        (``data_sd < link_length_prior_sd``). A segment that is not informed keeps its prior
+        (:func:`segment_spread_step`).
+        """
+        K = self.n_length - 1
+        if K == 0:
+            return []
+        C = np.hstack([np.ones((K, 1)), np.eye(K)])  # s_seg = C theta_length
+        lengths = slice(0, self.n_length)
+        cov = self.covariance[lengths, lengths]
+        post = C @ cov @ C.T
+        data = (self.precision - self.prior_precision)[lengths, lengths]
+        # data information on the segments' factors: the data see theta only through C theta
+        Cp = np.linalg.pinv(C)
+        H = Cp.T @ data @ Cp
+        H = 0.5 * (H + H.T)
+        w, V = np.linalg.eigh(H)
+        seen = w > 1e-12 * max(float(w.max()), 1e-300)
+        inv_diag = np.where(
+            np.abs(V[:, ~seen]).max(axis=1, initial=0.0) > 1e-6,
+            np.inf,
+            (V[:, seen] ** 2 / w[seen]).sum(axis=1),
+        )
+        m = C @ self.mean[lengths]
+        return [
+            {
+                "name": self.segment_names[k],
+                "factor": float(m[k]),
+                "sd": float(np.sqrt(post[k, k])),
+                "data_sd": float(np.sqrt(inv_diag[k])),
+                "spread": float(self.segment_spread[k]),
+                "informed": bool(np.sqrt(inv_diag[k]) < self.initial_spread[k]),
+            }
+            for k in range(K)
+        ]
 
     def payload(self) -> tuple[float, np.ndarray]:
         """The learned payload mass (kg) and centre of mass ``h / m`` (m, end-effector frame;
@@ -628,21 +744,19 @@ class BodyLearning:
             self._frames_at_spread = self.frames
             self.mean, self.precision, self.prior_precision, self.segment_spread = self._respread()
 
-    def _respread(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, float]:
-        """The posterior and prior with the segments' spread at its EM fixed point (the
-        current ones with fewer than two segments)."""
-        mean, precision, prior, tau = (
-            self.mean,
-            self.precision,
-            self.prior_precision,
-            self.segment_spread,
-        )
-        if self.n_length > 2:
-            block = np.arange(1, self.n_length)
-            for _ in range(_SPREAD_ITERATIONS):
-                mean, precision, prior, tau = segment_spread_step(
-                    mean, precision, self.prior_mean, prior, block
+    def _respread(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """The posterior and prior with each segment's spread at the evidence maximum
+        (:func:`segment_spread_step`, swept over the segments until it settles)."""
+        mean, precision, prior = self.mean, self.precision, self.prior_precision
+        tau = self.segment_spread.copy()
+        for _ in range(_SPREAD_ITERATIONS):
+            before = tau.copy()
+            for j in range(tau.size):
+                mean, precision, prior, tau[j] = segment_spread_step(
+                    mean, precision, self.prior_mean, prior, 1 + j, float(self.initial_spread[j])
                 )
+            if np.allclose(tau, before, rtol=1e-6, atol=0.0):
+                break
         return mean, precision, prior, tau
 
     def update(
@@ -652,6 +766,7 @@ class BodyLearning:
         obs: Mapping[str, Any],
         camera_precision: np.ndarray,
         command: np.ndarray,
+        belief_covariance: np.ndarray | None = None,
     ) -> None:
         """Learn from one step's sensations at the belief after perception, then write the
         new parameters into ``model.body``.
@@ -667,6 +782,9 @@ class BodyLearning:
             The camera's precision in force (2,).
         command : numpy.ndarray
             The command the step sent (a torque under torque control).
+        belief_covariance : numpy.ndarray, optional
+            The belief's covariance after the step: its joint-angle part enters the
+            camera's noise (:func:`belief_pixel_covariance`).
         """
         n = model.n
         body = model.body
@@ -690,8 +808,16 @@ class BodyLearning:
             e = np.asarray(obs["tip_pixel_px"], dtype=float) - pixel
             # a frame's time is known to about one frame period: the tip's pixel velocity
             # times that adds to the pixel noise, so moving frames weigh less
-            flow = dpix @ body.tip_jacobian(q) @ v / model.camera.rate_hz
+            J = body.tip_jacobian(q)
+            flow = dpix @ J @ v / model.camera.rate_hz
             R = np.diag(1.0 / np.asarray(camera_precision, dtype=float)) + np.outer(flow, flow)
+            if belief_covariance is not None:
+                R = R + belief_pixel_covariance(
+                    dpix @ J,
+                    np.asarray(belief_covariance, dtype=float)[:n, :n],
+                    model.description.encoder_angle_noise_rad**2,
+                    model.camera.rate_hz * model.dt,
+                )
             A = self.length_map
             cov = self.covariance
             if _gate(e, R, dpix @ D @ A, cov[lengths, lengths]):

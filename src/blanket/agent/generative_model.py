@@ -120,6 +120,7 @@ class AgentOptions:
         "payload_kg": 0.0,
         "divergence_limit": 1e3,
         "learn_body": False,
+        "body_calibration_episodes": 0,
         "body_learning_rate": 1.0,
         "body_length_prior_sd": 0.1,
         "link_length_prior_sd": 0.02,
@@ -200,6 +201,14 @@ class AgentOptions:
             raise ConfigError(
                 f"agent option learn_body must be true or false, got {shorten(out['learn_body'])}"
             )
+        v = out["body_calibration_episodes"]
+        if not isinstance(v, int | np.integer) or isinstance(v, bool) or v < 0:
+            raise ConfigError(
+                f"agent option body_calibration_episodes must be a whole number >= 0, got "
+                f"{shorten(v)}"
+            )
+        if v and not out["learn_body"]:
+            raise ConfigError("agent option body_calibration_episodes needs learn_body = true")
         v = out["body_learning_rate"]
         if not isinstance(v, int | float) or not 0 < v <= 1:
             raise ConfigError(

@@ -314,6 +314,18 @@ class ArmModel:
             return position, J[:3]
         return position, J[:3, self._order]
 
+    def chain_points(self, q: np.ndarray) -> np.ndarray:
+        """Origins of the joints on the tool tip's chain, base to tip, then the tool tip
+        (m, base frame), shape (k + 1, 3): the arm's skeleton (forward kinematics;
+        Siciliano et al. 2009, sec. 2.9)."""
+        model, data = self.model, self.data
+        pin.forwardKinematics(model, data, self._q(q))
+        pin.updateFramePlacement(model, data, self._frame_id)
+        points = [
+            data.oMi[i].translation.copy() for i in range(1, model.njoints) if self._on_chain[i - 1]
+        ]
+        return np.array([*points, self._tip_placement.translation.copy()])
+
     # ------------------------------------------------------------------ dynamics
     def mass_matrix(self, q: np.ndarray) -> np.ndarray:
         """Joint-space inertia matrix M(q), shape (n, n), symmetric (composite rigid body
