@@ -427,16 +427,16 @@ _CHILD = textwrap.dedent(
 
     mode = sys.argv[2]
     w = RunWriter(sys.argv[1], {"scenario": "kill-test", "joint_names": ["shoulder", "elbow"]})
-    real_write = writer_module.pq.write_table
+    real_replace = writer_module.os.replace
 
-    def stuck_write(table, where, **kw):  # episode 2's temporary is written, not renamed
-        real_write(table, where, **kw)
-        if ".episode-00002.parquet." in str(where):
+    def stuck_replace(src, dst):  # episode 2's temporary is written, not renamed
+        if ".episode-00002.parquet." in str(src):
             print("READY", flush=True)
             time.sleep(120)
+        real_replace(src, dst)
 
     if mode == "writing":
-        writer_module.pq.write_table = stuck_write
+        writer_module.os.replace = stuck_replace
     for ep in range(3):
         w.begin_episode(ep)
         for k in range(200):
