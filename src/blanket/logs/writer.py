@@ -168,17 +168,8 @@ def _write_bytes_atomically(path: Path, data: bytes, durable: bool = True) -> No
 
 
 _dtype_of = operator.attrgetter("dtype")
-_shape_of = operator.attrgetter("shape")
 _FLOAT64 = np.dtype(np.float64)
 _INDEX_WIDTH = 2  # step and t lead every row
-
-
-def _getter(names: list[str]) -> Any:
-    """A callable returning the tuple of ``d[name]`` for ``names`` (C-level itemgetter)."""
-    if len(names) == 1:
-        get_one = operator.itemgetter(names[0])
-        return lambda values: (get_one(values),)
-    return operator.itemgetter(*names)
 
 
 def _describe(value: Any) -> str:
@@ -281,20 +272,6 @@ class _Node:
         self.path = path
         self.children: dict[str, _Leaf | _Node] = {}
 
-    def nodes(self) -> list[_Node]:
-        """This dict and its sub-dicts, depth first: the order the row plan reads them."""
-        out = [self]
-        for child in self.children.values():
-            if type(child) is _Node:
-                out.extend(child.nodes())
-        return out
-
-    def own(self, shaped: bool) -> list[tuple[str, _Leaf]]:
-        """This dict's own array (``shaped``) or scalar keys, in first-seen order."""
-        return [
-            (k, c) for k, c in self.children.items() if type(c) is _Leaf and bool(c.shape) == shaped
-        ]
-
     def leaves(self) -> list[_Leaf]:
         """Leaves in key order with sub-dicts in place: the column order of the table."""
         out: list[_Leaf] = []
@@ -303,16 +280,50 @@ class _Node:
         return out
 
 
+def _fetcher(groups: list[_Node]) -> Any:
+    """``fetch(external, sensory, active, internal) -> (scalars, arrays)``: the values of a
+    row in column order, scalars and arrays apart. Generated for the layout as one function
+    of plain subscripts (the fewest Python operations per row); a missing key raises
+    ``KeyError``, as does a dict with other keys than the layout's (by its length)."""
+    lines: list[str] = []
+    checks: list[str] = []
+    items: dict[bool, list[str]] = {False: [], True: []}
+
+    def visit(node: _Node, var: str) -> None:
+        checks.append(f"len({var}) != {len(node.children)}")
+        for key, child in node.children.items():
+            if type(child) is _Node:
+                sub = f"d{len(lines)}"
+                lines.append(f"    {sub} = {var}[{key!r}]")
+                visit(child, sub)
+            else:
+                items[bool(child.shape)].append(f"{var}[{key!r}], ")
+
+    for g, group in enumerate(groups):
+        visit(group, f"g{g}")
+    source = "\n".join(
+        [
+            f"def fetch({', '.join(f'g{g}' for g in range(len(groups)))}):",
+            *lines,
+            f"    if {' or '.join(checks)}:",
+            "        raise KeyError",
+            f"    return ({''.join(items[False])}), ({''.join(items[True])})",
+        ]
+    )
+    namespace: dict[str, Any] = {}
+    exec(source, namespace)  # noqa: S102 - keys enter as repr() literals only
+    return namespace["fetch"]
+
+
 class _Rows:
     """The rows of one episode in one float64 buffer, a row per record: ``step``, ``t``,
-    every scalar, then every array value (flattened), in the order of the row plan.
+    every scalar, then every array value (flattened), each in column order.
 
-    The plan, rebuilt whenever keys change, lists per dict (depth first) where its value
-    comes from, its number of keys and C-level ``itemgetter`` for its scalar and its array
-    keys. :meth:`put` then stores a row with one ``struct`` pack of the scalars and one join
-    of the arrays' bytes (so callers may reuse their arrays; nothing of theirs is kept).
-    Anything unexpected there (a missing or new key, None, a string, another shape or
-    dtype) raises, and the row is stored again by :meth:`_put_checked`, which adapts the
+    :meth:`put` fetches a row's values with the layout's generated function
+    (:func:`_fetcher`) and stores them with one ``struct`` pack of the scalars and one join
+    of the arrays' bytes: callers may reuse their arrays, and nothing of theirs is kept.
+    Anything unexpected there (a missing or new key, None, a string, another dtype or total
+    size) raises, and the row is stored again by :meth:`_put_checked`, which adapts the
     layout (new columns, nulls for missing values) or gives a one-line message naming the
     key.
     """
@@ -323,44 +334,27 @@ class _Rows:
         self._stale = False  # keys added since the last layout
         self._relayout(0)
 
-    def put(self, step: Any, t: Any, values: list[Any], row: int) -> None:
-        """Store one record (``values``: a new list of the four group dicts) as row ``row``."""
+    def put(self, step: Any, t: Any, values: Sequence[Any], row: int) -> None:
+        """Store one record (``values``: the four group dicts) as row ``row``."""
         try:
-            scalars: tuple[Any, ...] = (step, t)
-            arrays: tuple[Any, ...] = ()
-            given = values  # the groups, then the nested dicts appended in plan order
-            for src, key, n, get_scalars, get_arrays in self._plan:
-                if key is None:
-                    value = given[src]
-                else:
-                    value = given[src][key]
-                    given.append(value)
-                if len(value) != n:
-                    raise KeyError(key)
-                if get_scalars is not None:
-                    scalars += get_scalars(value)
-                if get_arrays is not None:
-                    arrays += get_arrays(value)
+            scalars, arrays = self._fetch(*values)
             start = row * self._row_bytes
             # 'd' takes bools, ints, floats and numpy numbers; None, strings and arrays of
             # more than one value raise
-            self._pack_into(self._bytes, start, *scalars)
+            self._pack_into(self._bytes, start, step, t, *scalars)
             if arrays:
-                if tuple(map(_shape_of, arrays)) != self._shapes:
-                    raise ValueError
                 if tuple(map(_dtype_of, arrays)) != self._dtypes:  # flags, integers
                     arrays = tuple(np.asarray(a, np.float64) for a in arrays)
-                # the raw bytes of native float64 arrays of the right shapes; an array
-                # in another memory order fails the join
+                # the raw bytes of native float64 arrays: an array in another memory order
+                # fails the join, another total size the assignment
                 start += self._scalar_bytes
                 self._bytes[start : start + self._array_bytes] = b"".join(arrays)
             return
         except Exception:
             pass
-        del values[len(self.groups) :]  # the nested dicts the fast path appended
         self._put_checked(step, t, values, row)
 
-    def _put_checked(self, step: Any, t: Any, values: list[Any], row: int) -> None:
+    def _put_checked(self, step: Any, t: Any, values: Sequence[Any], row: int) -> None:
         for name, value in (("step", step), ("t", t)):
             if isinstance(value, (bool, np.bool_)) or not isinstance(
                 value, (int, float, np.integer, np.floating)
@@ -442,11 +436,12 @@ class _Rows:
         return [leaf for group in self.groups for leaf in group.leaves()]
 
     def _relayout(self, rows: int) -> None:
-        """Place every leaf in plan order (its scalars, then its arrays), keep the first
-        ``rows`` rows (new keys hold zeros there, masked) and build the row plan."""
-        nodes = [node for group in self.groups for node in group.nodes()]
-        scalars = [leaf for node in nodes for _, leaf in node.own(shaped=False)]
-        arrays = [leaf for node in nodes for _, leaf in node.own(shaped=True)]
+        """Place every leaf (step and t, the scalars, then the arrays, each in column
+        order), keep the first ``rows`` rows (new keys hold zeros there, masked) and make
+        the row's fetch function."""
+        leaves = self.leaves()
+        scalars = [leaf for leaf in leaves if not leaf.shape]
+        arrays = [leaf for leaf in leaves if leaf.shape]
         old = getattr(self, "data", None)
         offset = _INDEX_WIDTH
         moves = [(0, 0, _INDEX_WIDTH)]  # (old offset, new offset, width)
@@ -464,33 +459,7 @@ class _Rows:
         self._scalar_bytes = 8 * (_INDEX_WIDTH + len(scalars))
         self._array_bytes = self._row_bytes - self._scalar_bytes
         self._dtypes = (_FLOAT64,) * len(arrays)
-        self._shapes = tuple(leaf.shape for leaf in arrays)
-        position = len(self.groups)  # the values list: the groups, then nested dicts
-        plan: list[tuple[int, str | None, int, Any, Any]] = []
-
-        def visit(node: _Node, src: int, key: str | None) -> None:
-            nonlocal position
-            own_scalars = [k for k, _ in node.own(shaped=False)]
-            own_arrays = [k for k, _ in node.own(shaped=True)]
-            plan.append(
-                (
-                    src,
-                    key,
-                    len(node.children),
-                    _getter(own_scalars) if own_scalars else None,
-                    _getter(own_arrays) if own_arrays else None,
-                )
-            )
-            here = src
-            if key is not None:
-                here, position = position, position + 1
-            for name, child in node.children.items():
-                if type(child) is _Node:
-                    visit(child, here, name)
-
-        for g, group in enumerate(self.groups):
-            visit(group, g, None)
-        self._plan = plan
+        self._fetch = _fetcher(self.groups)
         self._stale = False
 
     def _set_data(self, data: np.ndarray) -> None:
@@ -678,7 +647,7 @@ class RunWriter:
         store = self._store
         if row == store.capacity:
             store.grow(2 * store.capacity)
-        store.put(step, t, [external, sensory, active, {} if internal is None else internal], row)
+        store.put(step, t, (external, sensory, active, {} if internal is None else internal), row)
         self._rows = row + 1
 
     def end_episode(self, extra: Mapping[str, Any] | None = None) -> Path:
