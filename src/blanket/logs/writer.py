@@ -1,16 +1,16 @@
 """Write a run folder of per-episode Parquet trajectory logs.
 
 The column naming pattern and file metadata are described in :mod:`blanket.logs.schema`.
-Each episode is held in buffers preallocated on ``begin_episode`` (``max_steps`` rows, else
-1024, doubled when full): one float64 row buffer for all array values of a record (one
-C-level copy per row, so the values are copied and may be reused by the caller) and a list
-slot for the tuple of its scalars (immutable numbers). ``end_episode`` turns them into one
-Arrow table, typed back per column (int64 and bool where the values allow), and writes it as
-one Parquet file (with page checksums and a footer digest, see :mod:`blanket.logs.schema`)
-to a hidden temporary in the same folder, renamed over the final name with
-:func:`os.replace`. A process killed at any point therefore keeps every episode whose
-``end_episode`` returned, never shows a partial file under a visible name, and loses only
-the open episode; the hidden temporary it may leave is never read and
+Each episode is held in one float64 buffer preallocated on ``begin_episode`` (``max_steps``
+rows, else 1024, doubled when full), a row per record: ``step``, ``t``, the scalars (one
+``struct`` pack) and the arrays (one join of their bytes), so the values are copied and
+the caller may reuse its arrays. ``end_episode`` turns the buffer into one Arrow table,
+typed back per column (int64 and bool where the values allow), encodes it in memory as one
+Parquet file (with page checksums and a footer digest, see :mod:`blanket.logs.schema`) and
+writes it with one call to a hidden temporary in the same folder, renamed over the final
+name with :func:`os.replace`. A process killed at any point therefore keeps every episode
+whose ``end_episode`` returned, never shows a partial file under a visible name, and loses
+only the open episode; the hidden temporary it may leave is never read and
 ``blanket logs repair`` removes it.
 
 Commit to the disk: :meth:`RunWriter.close` fsyncs every episode file and the folder. With
@@ -60,9 +60,6 @@ __all__ = ["RunWriter", "episode_file_name", "package_versions", "write_episode_
 
 _VERSIONED_PACKAGES = ("blanket", "numpy", "pybullet", "gymnasium", "pyarrow")
 _INITIAL_CAPACITY = 1024
-# The Arrow fields of the last column layout (names, types; the units follow from the names):
-# episodes of a run, and runs of a sweep, mostly share one.
-_FIELDS_CACHE: list[Any] = [None]
 # Dictionary pages and statistics only for the index columns: float signals rarely repeat,
 # and per-column statistics of ~200 signals cost more than the data (measured: 9.5 ms ->
 # 3.3 ms for 960 rows x 179 columns).
@@ -568,7 +565,6 @@ class RunWriter:
             metadata["joint_names"] = joint_names
         self._joint_names: list[str] | None = joint_names
         self._component_names = dict(component_names) if component_names else None
-        self._names_by_leaf: dict[tuple[tuple[str, ...], tuple[int, ...]], list[str]] = {}
         self._compression = compression
         detected = package_versions()
         given = metadata.pop("versions", None)
@@ -782,9 +778,19 @@ class RunWriter:
                     if _typed(probe, leaf.kind).dtype != np.float64:
                         values = _typed(values, leaf.kind)
                 arrays.append(_to_arrow(values, valid))
-        fields, units_json = self._fields(names, [a.type for a in arrays])
+        if len(set(names)) < len(names):
+            twice = next(name for name in names if names.count(name) > 1)
+            raise ValueError(f"column {twice!r} is produced twice; rename a key or its components")
+        units = {"t": "s"}
+        for leaf in store.leaves():
+            if leaf.unit is not None:
+                units.update(dict.fromkeys(leaf.names, leaf.unit))
+        units_json = to_json(units).encode()
         schema = pa.schema(
-            fields,
+            [
+                pa.field(name, a.type, metadata={"unit": units[name]} if name in units else None)
+                for name, a in zip(names, arrays, strict=True)
+            ],
             metadata={
                 META_SCHEMA: SCHEMA_VERSION.encode(),
                 META_RUN: self._run_json_bytes,
@@ -794,50 +800,18 @@ class RunWriter:
         )
         return pa.Table.from_arrays(arrays, schema=schema)
 
-    def _fields(self, names: list[str], types: list[pa.DataType]) -> tuple[list[pa.Field], bytes]:
-        """The Arrow fields (with their units) and the units JSON of a column layout; kept
-        while the layout stays the same (the usual case: every episode alike)."""
-        # (the units are a function of the column names, see component_labels/unit_for_key)
-        key = (tuple(names), tuple(types))
-        cached = _FIELDS_CACHE[0]
-        if cached is not None and cached[0] == key:
-            return cached[1], cached[2]
-        seen: set[str] = set()
-        for column in names:
-            if column in seen:
-                raise ValueError(
-                    f"column {column!r} is produced twice; rename a key or its components"
-                )
-            seen.add(column)
-        units = {"t": "s"}
-        for leaf in self._store.leaves():
-            if leaf.unit is not None:
-                units.update(dict.fromkeys(self._column_names(leaf), leaf.unit))
-        fields = [
-            pa.field(name, kind, metadata={"unit": units[name]} if name in units else None)
-            for name, kind in zip(names, types, strict=True)
-        ]
-        units_json = to_json(units).encode()
-        _FIELDS_CACHE[0] = (key, fields, units_json)
-        return fields, units_json
-
     def _column_names(self, leaf: _Leaf) -> list[str]:
-        if leaf.names:
-            return leaf.names
-        known = self._names_by_leaf.get((leaf.path, leaf.shape))
-        if known is not None:  # the same key in an earlier episode
-            leaf.names = known
-            return known
-        prefix = ".".join(leaf.path)
-        shape = leaf.shape
-        if not shape:
-            names = [prefix]
-        else:
-            comps = component_labels(leaf.path, shape[-1], self._joint_names, self._component_names)
-            if len(shape) == 1:
-                names = [f"{prefix}.{c}" for c in comps]
+        if not leaf.names:
+            prefix = ".".join(leaf.path)
+            shape = leaf.shape
+            if not shape:
+                leaf.names = [prefix]
             else:
-                names = [f"{prefix}.order{k}.{c}" for k in range(shape[0]) for c in comps]
-        leaf.names = names
-        self._names_by_leaf[(leaf.path, leaf.shape)] = names
-        return names
+                comps = component_labels(
+                    leaf.path, shape[-1], self._joint_names, self._component_names
+                )
+                if len(shape) == 1:
+                    leaf.names = [f"{prefix}.{c}" for c in comps]
+                else:
+                    leaf.names = [f"{prefix}.order{k}.{c}" for k in range(shape[0]) for c in comps]
+        return leaf.names
