@@ -145,23 +145,18 @@ def write_episode_file(
         write_statistics=_INDEX,
         write_page_checksum=True,
     )
-    with replacing(final) as tmp:
+    _write_bytes_atomically(final, sink.getvalue(), durable)
+
+
+def _write_bytes_atomically(path: Path, data: Any, durable: bool = True) -> None:
+    """Replace ``path`` whole through a hidden temporary with one write of ``data``;
+    ``durable`` fsyncs the file before the rename and the folder after it (else
+    :meth:`RunWriter.close` commits it)."""
+    with replacing(path) as tmp:
         with open(tmp, "wb") as handle:
-            handle.write(sink.getvalue())
+            handle.write(data)
         if durable:
             _fsync_file(tmp)
-    if durable:
-        fsync_dir(final.parent)
-
-
-def _write_bytes_atomically(path: Path, data: bytes, durable: bool = True) -> None:
-    """Replace ``path`` whole through a hidden temporary; ``durable`` fsyncs the file before
-    the rename and the folder after it (else :meth:`RunWriter.close` commits it)."""
-    with replacing(path) as tmp, open(tmp, "wb") as handle:
-        handle.write(data)
-        if durable:
-            handle.flush()
-            os.fsync(handle.fileno())
     if durable:
         fsync_dir(path.parent)
 
@@ -482,28 +477,6 @@ def _typed(column: np.ndarray, kind: str) -> np.ndarray:
     return column
 
 
-def _to_arrow(values: np.ndarray, valid: np.ndarray | None) -> pa.Array:
-    """A 1-D numpy column as an Arrow array; float64 and int64 columns without a copy.
-
-    ``pa.Array.from_buffers`` over the numpy buffer (and a little-endian validity bitmap
-    when some rows are null) costs ~2 us a column where ``pa.array`` costs ~10 us or more.
-    """
-    arrow_type = _ARROW_TYPES.get(values.dtype)
-    if arrow_type is None or not values.flags.c_contiguous:
-        return pa.array(values, mask=None if valid is None else ~valid)
-    bitmap, nulls = None, 0
-    if valid is not None:
-        nulls = int(values.shape[0] - np.count_nonzero(valid))
-        if nulls:
-            bitmap = pa.py_buffer(np.packbits(valid, bitorder="little"))
-    return pa.Array.from_buffers(
-        arrow_type, values.shape[0], [bitmap, pa.py_buffer(values)], null_count=nulls
-    )
-
-
-_ARROW_TYPES = {np.dtype(np.float64): pa.float64(), np.dtype(np.int64): pa.int64()}
-
-
 class RunWriter:
     """Writer of one run folder: ``run.json`` and ``episodes/episode-NNNNN.parquet``.
 
@@ -762,9 +735,9 @@ class RunWriter:
             raise ValueError("record: step must be an integer")
         names = ["episode", "step", "t"]
         arrays: list[pa.Array] = [
-            _to_arrow(np.full(n, episode, dtype=np.int64), None),
-            _to_arrow(steps, None),
-            _to_arrow(columns[1], None),
+            pa.array(np.full(n, episode, dtype=np.int64)),
+            pa.array(steps),
+            pa.array(columns[1]),
         ]
         buffer = pa.py_buffer(columns)
         f64 = pa.float64()
@@ -785,7 +758,7 @@ class RunWriter:
                     probe = values if valid is None else values[valid]
                     if _typed(probe, leaf.kind).dtype != np.float64:
                         values = _typed(values, leaf.kind)
-                arrays.append(_to_arrow(values, valid))
+                arrays.append(pa.array(values, mask=None if valid is None else ~valid))
         if len(set(names)) < len(names):
             twice = next(name for name in names if names.count(name) > 1)
             raise ValueError(f"column {twice!r} is produced twice; rename a key or its components")
