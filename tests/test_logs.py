@@ -427,16 +427,16 @@ _CHILD = textwrap.dedent(
 
     mode = sys.argv[2]
     w = RunWriter(sys.argv[1], {"scenario": "kill-test", "joint_names": ["shoulder", "elbow"]})
-    real_write = writer_module.pq.write_table
+    real_replace = writer_module.os.replace
 
-    def stuck_write(table, where, **kw):  # episode 2's temporary is written, not renamed
-        real_write(table, where, **kw)
-        if ".episode-00002.parquet." in str(where):
+    def stuck_replace(src, dst):  # episode 2's temporary is written, not renamed
+        if ".episode-00002.parquet." in str(src):
             print("READY", flush=True)
             time.sleep(120)
+        real_replace(src, dst)
 
     if mode == "writing":
-        writer_module.pq.write_table = stuck_write
+        writer_module.os.replace = stuck_replace
     for ep in range(3):
         w.begin_episode(ep)
         for k in range(200):
@@ -1129,3 +1129,48 @@ def test_flag_and_integer_arrays_keep_their_values_and_types_on_every_row(tmp_pa
     got_counts = np.column_stack([table[f"internal.count.c{i}"].to_numpy() for i in range(3)])
     assert got_flags.dtype == bool and np.array_equal(got_flags, flags)
     assert got_counts.dtype == np.int64 and np.array_equal(got_counts, counts)
+
+
+@pytest.mark.parametrize(
+    ("value", "message"),
+    [
+        (None, "external.x: value is None"),
+        ("1.5", "external.x: values of type str"),
+        (np.zeros(2), r"external.x: shape \(2,\) at row 1"),
+    ],
+)
+def test_a_bad_scalar_after_the_first_row_raises_one_line(
+    tmp_path: Path, value: object, message: str
+) -> None:
+    # rows after the first are stored by the writer's fast path (one struct pack of the
+    # scalars); it must refuse what the checked first row refuses, not store a number
+    # (common practice, no source)
+    w = RunWriter(tmp_path / "r", {})
+    w.begin_episode(0)
+    w.record(0, 0.0, external={"x": 1.0, "q_rad": np.zeros(2)}, sensory={}, active={})
+    with pytest.raises(ValueError, match=message) as info:
+        w.record(1, 0.1, external={"x": value, "q_rad": np.zeros(2)}, sensory={}, active={})
+    assert "\n" not in str(info.value)
+    with pytest.raises(ValueError, match="record: step must be an int, got str"):
+        w.record("2", 0.2, external={"x": 1.0, "q_rad": np.zeros(2)}, sensory={}, active={})
+    w.record(1, 0.1, external={"x": 2.0, "q_rad": np.ones(2)}, sensory={}, active={})
+    w.end_episode()
+    table = pq.read_table(w.episodes_dir / "episode-00000.parquet")  # pyarrow's own reader
+    assert table["external.x"].to_pylist() == [1.0, 2.0]
+    assert table["step"].to_pylist() == [0, 1]
+
+
+def test_keys_with_quotes_and_backslashes_keep_their_values(tmp_path: Path) -> None:
+    # the fast path reads a row through a function generated from the keys; keys that
+    # look like code must stay plain keys (common practice, no source)
+    keys = ["it's", 'say "hi"', "back\\slash", "two\nlines", "x']); import os; ('"]
+    with RunWriter(tmp_path / "r", {}) as w:
+        w.begin_episode(0)
+        for k in range(4):
+            values = {key: float(10 * i + k) for i, key in enumerate(keys)}
+            w.record(k, k * 0.1, external=values, sensory={"n": {keys[0]: k}}, active={})
+        path = w.end_episode()
+    table = pq.read_table(path)  # pyarrow's own reader
+    for i, key in enumerate(keys):
+        assert table[f"external.{key}"].to_pylist() == [10.0 * i + k for k in range(4)]
+    assert table[f"sensory.n.{keys[0]}"].to_pylist() == [0, 1, 2, 3]

@@ -129,6 +129,7 @@ class LogError(ValueError):
     """A file or folder is not a readable blanket log; the message is one line."""
 
 
+@functools.lru_cache(maxsize=1024)
 def unit_for_key(key: str) -> str | None:
     """Unit of a key from its name suffix (``tip_position_m`` -> ``"m"``), or None."""
     for suffix, unit in _UNIT_SUFFIXES:

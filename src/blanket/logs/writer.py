@@ -1,16 +1,16 @@
 """Write a run folder of per-episode Parquet trajectory logs.
 
 The column naming pattern and file metadata are described in :mod:`blanket.logs.schema`.
-Each episode is held in buffers preallocated on ``begin_episode`` (``max_steps`` rows, else
-1024, doubled when full): one float64 row buffer for all array values of a record (one
-C-level copy per row, so the values are copied and may be reused by the caller) and a list
-slot for the tuple of its scalars (immutable numbers). ``end_episode`` turns them into one
-Arrow table, typed back per column (int64 and bool where the values allow), and writes it as
-one Parquet file (with page checksums and a footer digest, see :mod:`blanket.logs.schema`)
-to a hidden temporary in the same folder, renamed over the final name with
-:func:`os.replace`. A process killed at any point therefore keeps every episode whose
-``end_episode`` returned, never shows a partial file under a visible name, and loses only
-the open episode; the hidden temporary it may leave is never read and
+Each episode is held in one float64 buffer preallocated on ``begin_episode`` (``max_steps``
+rows, else 1024, doubled when full), a row per record: ``step``, ``t``, the scalars (one
+``struct`` pack) and the arrays (one join of their bytes), so the values are copied and
+the caller may reuse its arrays. ``end_episode`` turns the buffer into one Arrow table,
+typed back per column (int64 and bool where the values allow), encodes it in memory as one
+Parquet file (with page checksums and a footer digest, see :mod:`blanket.logs.schema`) and
+writes it with one call to a hidden temporary in the same folder, renamed over the final
+name with :func:`os.replace`. A process killed at any point therefore keeps every episode
+whose ``end_episode`` returned, never shows a partial file under a visible name, and loses
+only the open episode; the hidden temporary it may leave is never read and
 ``blanket logs repair`` removes it.
 
 Commit to the disk: :meth:`RunWriter.close` fsyncs every episode file and the folder. With
@@ -22,11 +22,13 @@ the OS had not yet written back.
 from __future__ import annotations
 
 import datetime as _dt
+import functools
 import importlib.metadata
-import itertools
 import json
+import math
 import operator
 import os
+import struct
 import threading
 from collections.abc import Iterator, Mapping, Sequence
 from contextlib import contextmanager
@@ -60,9 +62,6 @@ __all__ = ["RunWriter", "episode_file_name", "package_versions", "write_episode_
 
 _VERSIONED_PACKAGES = ("blanket", "numpy", "pybullet", "gymnasium", "pyarrow")
 _INITIAL_CAPACITY = 1024
-# The Arrow fields of the last column layout (names, types; the units follow from the names):
-# episodes of a run, and runs of a sweep, mostly share one.
-_FIELDS_CACHE: list[Any] = [None]
 # Dictionary pages and statistics only for the index columns: float signals rarely repeat,
 # and per-column statistics of ~200 signals cost more than the data (measured: 9.5 ms ->
 # 3.3 ms for 960 rows x 179 columns).
@@ -135,58 +134,36 @@ def write_episode_file(
     when ``durable``)."""
     digest = footer_digest(table.schema, table.num_rows).encode()
     table = table.replace_schema_metadata({**table.schema.metadata, META_DIGEST: digest})
-    with replacing(final) as tmp:
-        pq.write_table(
-            table,
-            str(tmp),
-            compression=compression,
-            use_dictionary=_INDEX[:2],
-            write_statistics=_INDEX,
-            write_page_checksum=True,
-        )
+    # Encoded in memory, then written with one call: pyarrow's own file sink makes a
+    # system call per page (~330 for an episode of 159 columns).
+    sink = pa.BufferOutputStream()
+    pq.write_table(
+        table,
+        sink,
+        compression=compression,
+        use_dictionary=_INDEX[:2],
+        write_statistics=_INDEX,
+        write_page_checksum=True,
+    )
+    _write_bytes_atomically(final, sink.getvalue(), durable)
+
+
+def _write_bytes_atomically(path: Path, data: Any, durable: bool = True) -> None:
+    """Replace ``path`` whole through a hidden temporary with one write of ``data``;
+    ``durable`` fsyncs the file before the rename and the folder after it (else
+    :meth:`RunWriter.close` commits it)."""
+    with replacing(path) as tmp:
+        with open(tmp, "wb") as handle:
+            handle.write(data)
         if durable:
             _fsync_file(tmp)
-    if durable:
-        fsync_dir(final.parent)
-
-
-def _write_bytes_atomically(path: Path, data: bytes, durable: bool = True) -> None:
-    """Replace ``path`` whole through a hidden temporary; ``durable`` fsyncs the file before
-    the rename and the folder after it (else :meth:`RunWriter.close` commits it)."""
-    with replacing(path) as tmp, open(tmp, "wb") as handle:
-        handle.write(data)
-        if durable:
-            handle.flush()
-            os.fsync(handle.fileno())
     if durable:
         fsync_dir(path.parent)
 
 
-def _getter(names: list[str]) -> Any:
-    """A callable returning the tuple of ``d[name]`` for ``names`` (C-level itemgetter)."""
-    if len(names) == 1:
-        get_one = operator.itemgetter(names[0])
-        return lambda values: (get_one(values),)
-    return operator.itemgetter(*names)
-
-
 _dtype_of = operator.attrgetter("dtype")
-
-
-def _as_float64(arrays: tuple[np.ndarray, ...]) -> tuple[np.ndarray, ...]:
-    """The arrays as native float64, as the checked path stores them (bool, int and float
-    arrays only: any other kind raises ``TypeError``, which sends the row to that path)."""
-    out = []
-    for a in arrays:
-        if a.dtype != _FLOAT64:
-            if a.dtype.kind not in "biuf":
-                raise TypeError(a.dtype)
-            a = a.astype(np.float64, order="C")
-        out.append(a)
-    return tuple(out)
-
-
 _FLOAT64 = np.dtype(np.float64)
+_INDEX_WIDTH = 2  # step and t lead every row
 
 
 def _describe(value: Any) -> str:
@@ -235,11 +212,11 @@ def _no_episode_yet(run_dir: Path) -> bool:
 
 
 class _Leaf:
-    """One logged key: its place in its dict's row buffers and how to type its columns.
+    """One logged key: its columns in the row buffer and how to type them.
 
     Values are held as float64 (exact for the integers and flags a loop logs) and typed back
-    when the table is built: an integer key stays int64 while all its values are integral,
-    a flag stays bool while all are 0 or 1.
+    when the table is built: an integer key becomes int64 when all its values are integral,
+    a flag bool when all are 0 or 1.
     """
 
     __slots__ = ("path", "kind", "shape", "width", "offset", "valid", "names", "unit")
@@ -247,9 +224,9 @@ class _Leaf:
     def __init__(self, path: tuple[str, ...], value: Any) -> None:
         self.path = path
         self.kind, self.shape = _kind_of(path, value)
-        self.width = int(np.prod(self.shape)) if self.shape else 1
-        self.offset = 0
-        self.valid: np.ndarray | None = None
+        self.width = math.prod(self.shape)
+        self.offset = -1  # no column yet
+        self.valid: np.ndarray | None = None  # None: present on every row
         self.names: list[str] = []
         self.unit: str | None = None
         for key in reversed(path[1:]):
@@ -289,104 +266,114 @@ class _Node:
         self.path = path
         self.children: dict[str, _Leaf | _Node] = {}
 
-    def nodes(self) -> list[_Node]:
-        """This dict and its sub-dicts, depth first: the order of the row layout."""
-        out = [self]
-        for child in self.children.values():
-            if type(child) is _Node:
-                out.extend(child.nodes())
-        return out
-
-    def own_leaves(self, shaped: bool) -> list[tuple[str, _Leaf]]:
-        """This dict's own array (``shaped``) or scalar keys, in first-seen order."""
-        return [
-            (k, c) for k, c in self.children.items() if type(c) is _Leaf and bool(c.shape) == shaped
-        ]
-
-    def all_leaves(self) -> list[_Leaf]:
+    def leaves(self) -> list[_Leaf]:
         """Leaves in key order with sub-dicts in place: the column order of the table."""
         out: list[_Leaf] = []
         for child in self.children.values():
-            out.extend(child.all_leaves() if type(child) is _Node else [child])
+            out.extend(child.leaves() if type(child) is _Node else [child])
         return out
 
 
-_Step = tuple[int, "str | None", int, Any, Any]
+def _fetcher(groups: list[_Node]) -> Any:
+    """``fetch(external, sensory, active, internal) -> (scalars, arrays)``: the values of a
+    row in column order, scalars and arrays apart. Generated for the layout as one function
+    of plain subscripts (the fewest Python operations per row); a missing key raises
+    ``KeyError``, as does a dict with other keys than the layout's (by its length)."""
+    lines: list[str] = []
+    checks: list[str] = []
+    items: dict[bool, list[str]] = {False: [], True: []}
+
+    def visit(node: _Node, var: str) -> None:
+        checks.append(f"len({var}) != {len(node.children)}")
+        for key, child in node.children.items():
+            if type(child) is _Node:
+                sub = f"d{len(lines)}"
+                lines.append(f"    {sub} = {var}[{key!r}]")
+                visit(child, sub)
+            else:
+                items[bool(child.shape)].append(f"{var}[{key!r}], ")
+
+    for g, group in enumerate(groups):
+        visit(group, f"g{g}")
+    source = "\n".join(
+        [
+            f"def fetch({', '.join(f'g{g}' for g in range(len(groups)))}):",
+            *lines,
+            f"    if {' or '.join(checks)}:",
+            "        raise KeyError",
+            f"    return ({''.join(items[False])}), ({''.join(items[True])})",
+        ]
+    )
+    return _compiled(source)
+
+
+@functools.lru_cache(maxsize=64)
+def _compiled(source: str) -> Any:
+    """The function defined by ``source`` (compiled once per layout: ~0.2 ms)."""
+    namespace: dict[str, Any] = {}
+    exec(source, namespace)  # noqa: S102 - keys enter as repr() literals only
+    return namespace["fetch"]
 
 
 class _Rows:
-    """The rows of one episode: per record, one float64 buffer row holding every array value
-    of the four groups and one tuple of all their scalars.
+    """The rows of one episode in one float64 buffer, a row per record: ``step``, ``t``,
+    every scalar, then every array value (flattened), each in column order.
 
-    The fast path of :meth:`put` follows a plan rebuilt whenever keys change: per dict (depth
-    first), where its value comes from, its expected number of keys, and C-level
-    ``itemgetter`` for its array keys and for its scalar keys. All arrays of a row are then
-    copied by one join of their bytes into the row (so callers may reuse them) and the
-    scalars, immutable numbers, kept as one tuple that becomes a matrix once per episode.
-    Anything unexpected there (a missing or new key, None, a list, another total size)
-    raises, and the row is stored again by :meth:`_put_checked`, which adapts the layout
-    (new columns, nulls for missing values) or gives a one-line message naming the key.
+    :meth:`put` fetches a row's values with the layout's generated function
+    (:func:`_fetcher`) and stores them with one ``struct`` pack of the scalars and one join
+    of the arrays' bytes: callers may reuse their arrays, and nothing of theirs is kept.
+    Anything unexpected there (a missing or new key, None, a string, another dtype or total
+    size) raises, and the row is stored again by :meth:`_put_checked`, which adapts the
+    layout (new columns, nulls for missing values) or gives a one-line message naming the
+    key.
     """
 
     def __init__(self, capacity: int) -> None:
         self.capacity = capacity
         self.groups = [_Node((g,)) for g in GROUPS]
-        self._set_arrays(np.zeros((capacity, 0)))
-        self.scalars: list[tuple[Any, ...]] = [()] * capacity
-        self.n_scalars = 0
         self._stale = False  # keys added since the last layout
-        self._plan: list[_Step] = self._build_plan()
+        self._relayout(0)
 
-    # -- rows
-    def put(self, values: list[Any], row: int) -> None:
-        """Store one record (``values``: a new list of the four group dicts) as row ``row``."""
+    def put(self, step: Any, t: Any, values: Sequence[Any], row: int) -> None:
+        """Store one record (``values``: the four group dicts) as row ``row``."""
         try:
-            arrays: tuple[Any, ...] = ()
-            scalars: tuple[Any, ...] = ()
-            given = values  # the groups, then nested dicts appended in plan order
-            for src, key, n, get_arrays, get_scalars in self._plan:
-                if key is None:
-                    value = given[src]
-                else:
-                    value = given[src][key]
-                    given.append(value)
-                if len(value) != n:
-                    raise KeyError(key)
-                if get_arrays is not None:
-                    arrays += get_arrays(value)
-                if get_scalars is not None:
-                    scalars += get_scalars(value)
+            scalars, arrays = self._fetch(*values)
+            start = row * self._row_bytes
+            # 'd' takes bools, ints, floats and numpy numbers; None, strings and arrays of
+            # more than one value raise
+            self._pack_into(self._bytes, start, step, t, *scalars)
             if arrays:
-                # The raw bytes of the arrays, joined at C level (~4x faster than
-                # np.concatenate for ~20 small arrays), are the row only for native float64
-                # C-ordered arrays: other dtypes fail this check, other orders fail the join,
-                # another total size fails the assignment; the checked path takes those.
-                if tuple(map(_dtype_of, arrays)) != self._dtypes:
-                    arrays = _as_float64(arrays)  # flags and integers (others: TypeError)
-                start = row * self._row_bytes
-                self._bytes[start : start + self._row_bytes] = b"".join(arrays)
-            if None in scalars:  # (an array of size > 1 among them raises here too)
-                raise ValueError
-            self.scalars[row] = scalars
+                if tuple(map(_dtype_of, arrays)) != self._dtypes:  # flags, integers
+                    arrays = tuple(np.asarray(a, np.float64) for a in arrays)
+                # the raw bytes of native float64 arrays: an array in another memory order
+                # fails the join, another total size the assignment
+                start += self._scalar_bytes
+                self._bytes[start : start + self._array_bytes] = b"".join(arrays)
             return
-        except (KeyError, ValueError, TypeError, AttributeError, IndexError, BufferError):
+        except Exception:
             pass
-        del values[len(self.groups) :]  # the nested dicts the fast path appended
-        self._put_checked(values, row)
+        self._put_checked(step, t, values, row)
 
-    def _put_checked(self, values: list[Any], row: int) -> None:
+    def _put_checked(self, step: Any, t: Any, values: Sequence[Any], row: int) -> None:
+        for name, value in (("step", step), ("t", t)):
+            if isinstance(value, (bool, np.bool_)) or not isinstance(
+                value, (int, float, np.integer, np.floating)
+            ):
+                raise ValueError(
+                    f"record: {name} must be {'an int' if name == 'step' else 'a float'}, "
+                    f"got {_describe(value)}"
+                )
         try:
             for group, value in zip(self.groups, values, strict=True):
                 self._add_keys(group, value, row)
         finally:  # keys added before a bad value are placed too
             if self._stale:
                 self._relayout(row)
-                self._plan = self._build_plan()
-                self._stale = False
-        scalar_row: dict[int, float] = {}
+        line = np.zeros(self.data.shape[1])
+        line[:_INDEX_WIDTH] = (step, t)
         for group, value in zip(self.groups, values, strict=True):
-            self._store_checked(group, value, row, scalar_row)
-        self.scalars[row] = tuple(scalar_row.get(i, 0.0) for i in range(self.n_scalars))
+            self._store_checked(group, value, row, line)
+        self.data[row] = line
 
     def _add_keys(self, node: _Node, values: Any, row: int) -> None:
         """Create the leaves and sub-dicts of keys seen for the first time at ``row``."""
@@ -405,7 +392,6 @@ class _Rows:
                     child = _Node((*node.path, name))
                 else:
                     child = _Leaf((*node.path, name), value)
-                    child.offset = -1  # no stored values yet
                     if row > 0:  # earlier rows are null
                         child.valid = np.ones(self.capacity, dtype=bool)
                         child.valid[:row] = False
@@ -415,11 +401,14 @@ class _Rows:
                 self._add_keys(child, value, row)
 
     def _store_checked(
-        self, node: _Node, values: Mapping[str, Any], row: int, scalar_row: dict[int, float]
+        self, node: _Node, values: Mapping[str, Any], row: int, line: np.ndarray
     ) -> None:
         for name, child in node.children.items():
             if name not in values:
-                self._mark_missing(child, row)
+                for leaf in [child] if type(child) is _Leaf else child.leaves():
+                    if leaf.valid is None:
+                        leaf.valid = np.ones(self.capacity, dtype=bool)
+                    leaf.valid[row] = False
                 continue
             value = values[name]
             if type(child) is _Node:
@@ -427,127 +416,56 @@ class _Rows:
                     raise ValueError(
                         f"{'.'.join(child.path)}: expected a dict of values, got {_describe(value)}"
                     )
-                self._store_checked(child, value, row, scalar_row)
+                self._store_checked(child, value, row, line)
                 continue
-            stored = child.check(value, row)
-            if child.shape:
-                self.arrays[row, child.offset : child.offset + child.width] = stored
-            else:
-                scalar_row[child.offset] = stored
-            if child.kind == "i" and isinstance(stored, float) and not stored.is_integer():
-                child.kind = "f"
+            line[child.offset : child.offset + child.width] = child.check(value, row)
             if child.valid is not None:
                 child.valid[row] = True
 
-    def _mark_missing(self, child: _Leaf | _Node, row: int) -> None:
-        if type(child) is _Node:
-            for grandchild in child.children.values():
-                self._mark_missing(grandchild, row)
-            return
-        if child.valid is None:
-            child.valid = np.ones(self.capacity, dtype=bool)
-        child.valid[row] = False
-        if child.shape:
-            self.arrays[row, child.offset : child.offset + child.width] = 0.0
-
-    # -- layout
     def grow(self, capacity: int) -> None:
-        arrays = np.zeros((capacity, self.arrays.shape[1]))
-        arrays[: self.capacity] = self.arrays
-        self._set_arrays(arrays)
-        self.scalars.extend([()] * (capacity - self.capacity))
+        data = np.zeros((capacity, self.data.shape[1]))
+        data[: self.capacity] = self.data
         for leaf in self.leaves():
             if leaf.valid is not None:
-                valid = np.ones(capacity, dtype=bool)
-                valid[: self.capacity] = leaf.valid
-                leaf.valid = valid
+                leaf.valid = np.concatenate([leaf.valid, np.ones(capacity - self.capacity, bool)])
         self.capacity = capacity
+        self._set_data(data)
 
     def leaves(self) -> list[_Leaf]:
         """All leaves in table column order."""
-        return [leaf for group in self.groups for leaf in group.all_leaves()]
+        return [leaf for group in self.groups for leaf in group.leaves()]
 
     def _relayout(self, rows: int) -> None:
-        """Place every leaf (depth-first dict order, as the plan reads them), keeping the
-        first ``rows`` rows; new keys start at zero (their earlier rows are masked)."""
-        old_arrays, old_scalars = self.arrays, self.scalars
-        width = 0
-        scalar_source: list[int] = []  # per new scalar index: its old index, -1 if new
-        placed: list[tuple[_Leaf, int]] = []  # (array leaf, old offset)
-        for group in self.groups:
-            for node in group.nodes():
-                for _, leaf in node.own_leaves(shaped=True):
-                    placed.append((leaf, leaf.offset))
-                    leaf.offset = width
-                    width += leaf.width
-                for _, leaf in node.own_leaves(shaped=False):
-                    scalar_source.append(leaf.offset)
-                    leaf.offset = len(scalar_source) - 1
-        arrays = np.zeros((self.capacity, width))
-        for leaf, old in placed:
-            if old >= 0 and rows:
-                new = leaf.offset
-                arrays[:rows, new : new + leaf.width] = old_arrays[:rows, old : old + leaf.width]
-        self._set_arrays(arrays)
-        self.scalars = [
-            tuple(r[i] if i >= 0 else 0.0 for i in scalar_source) for r in old_scalars[:rows]
-        ] + old_scalars[rows:]
-        self.n_scalars = len(scalar_source)
+        """Place every leaf (step and t, the scalars, then the arrays, each in column
+        order), keep the first ``rows`` rows (new keys hold zeros there, masked) and make
+        the row's fetch function."""
+        leaves = self.leaves()
+        scalars = [leaf for leaf in leaves if not leaf.shape]
+        arrays = [leaf for leaf in leaves if leaf.shape]
+        old = getattr(self, "data", None)
+        offset = _INDEX_WIDTH
+        moves = [(0, 0, _INDEX_WIDTH)]  # (old offset, new offset, width)
+        for leaf in scalars + arrays:
+            if leaf.offset >= 0:
+                moves.append((leaf.offset, offset, leaf.width))
+            leaf.offset = offset
+            offset += leaf.width
+        data = np.zeros((self.capacity, offset))
+        if old is not None and rows:
+            for was, now, width in moves:
+                data[:rows, now : now + width] = old[:rows, was : was + width]
+        self._set_data(data)
+        self._pack_into = struct.Struct(f"={_INDEX_WIDTH + len(scalars)}d").pack_into
+        self._scalar_bytes = 8 * (_INDEX_WIDTH + len(scalars))
+        self._array_bytes = self._row_bytes - self._scalar_bytes
+        self._dtypes = (_FLOAT64,) * len(arrays)
+        self._fetch = _fetcher(self.groups)
+        self._stale = False
 
-    def _set_arrays(self, arrays: np.ndarray) -> None:
-        self.arrays = arrays  # C-ordered float64 (np.zeros)
-        self._bytes = memoryview(arrays).cast("B") if arrays.size else memoryview(b"")
-        self._row_bytes = arrays.shape[1] * arrays.itemsize
-
-    def _build_plan(self) -> list[_Step]:
-        plan: list[_Step] = []
-        n_arrays = 0
-        position = len(self.groups)  # the values list: the groups, then nested dicts
-
-        def visit(node: _Node, src: int, key: str | None) -> None:
-            nonlocal position, n_arrays
-            arrays = [k for k, _ in node.own_leaves(shaped=True)]
-            scalars = [k for k, _ in node.own_leaves(shaped=False)]
-            n_arrays += len(arrays)
-            plan.append(
-                (
-                    src,
-                    key,
-                    len(node.children),
-                    _getter(arrays) if arrays else None,
-                    _getter(scalars) if scalars else None,
-                )
-            )
-            here = src
-            if key is not None:
-                here, position = position, position + 1
-            for name, child in node.children.items():
-                if type(child) is _Node:
-                    visit(child, here, name)
-
-        for g, group in enumerate(self.groups):
-            visit(group, g, None)
-        self._dtypes = (_FLOAT64,) * n_arrays
-        return plan
-
-    # -- output
-    def scalar_matrix(self, n: int) -> np.ndarray:
-        """The first ``n`` scalar rows as a float64 matrix (n, number of scalar keys)."""
-        if not self.n_scalars:
-            return np.zeros((n, 0))
-        try:
-            flat = itertools.chain.from_iterable(self.scalars[:n])
-            count = n * self.n_scalars
-            return np.fromiter(flat, np.float64, count=count).reshape(n, self.n_scalars)
-        except (TypeError, ValueError):
-            pass
-        leaves = sorted(
-            (leaf for leaf in self.leaves() if not leaf.shape), key=lambda leaf: leaf.offset
-        )
-        for row, values in enumerate(self.scalars[:n]):
-            for leaf, value in zip(leaves, values, strict=True):
-                leaf.check(value, row)  # raises with the key and the row
-        raise ValueError("scalar values could not be stored as numbers")
+    def _set_data(self, data: np.ndarray) -> None:
+        self.data = data  # C-ordered float64 (np.zeros)
+        self._bytes = memoryview(data).cast("B") if data.size else memoryview(b"")
+        self._row_bytes = data.shape[1] * data.itemsize
 
 
 def _typed(column: np.ndarray, kind: str) -> np.ndarray:
@@ -557,28 +475,6 @@ def _typed(column: np.ndarray, kind: str) -> np.ndarray:
     if kind == "b" and np.all((column == 0.0) | (column == 1.0)):
         return column.astype(bool)
     return column
-
-
-_ARROW_TYPES = {np.dtype(np.float64): pa.float64(), np.dtype(np.int64): pa.int64()}
-
-
-def _to_arrow(values: np.ndarray, valid: np.ndarray | None) -> pa.Array:
-    """A 1-D numpy column as an Arrow array; float64 and int64 columns without a copy.
-
-    ``pa.Array.from_buffers`` over the numpy buffer (and a little-endian validity bitmap
-    when some rows are null) costs ~2 us a column where ``pa.array`` costs ~10 us or more.
-    """
-    arrow_type = _ARROW_TYPES.get(values.dtype)
-    if arrow_type is None or not values.flags.c_contiguous:
-        return pa.array(values, mask=None if valid is None else ~valid)
-    bitmap, nulls = None, 0
-    if valid is not None:
-        nulls = int(values.shape[0] - np.count_nonzero(valid))
-        if nulls:
-            bitmap = pa.py_buffer(np.packbits(valid, bitorder="little"))
-    return pa.Array.from_buffers(
-        arrow_type, values.shape[0], [bitmap, pa.py_buffer(values)], null_count=nulls
-    )
 
 
 class RunWriter:
@@ -650,7 +546,6 @@ class RunWriter:
             metadata["joint_names"] = joint_names
         self._joint_names: list[str] | None = joint_names
         self._component_names = dict(component_names) if component_names else None
-        self._names_by_leaf: dict[tuple[tuple[str, ...], tuple[int, ...]], list[str]] = {}
         self._compression = compression
         detected = package_versions()
         given = metadata.pop("versions", None)
@@ -729,9 +624,7 @@ class RunWriter:
         store = self._store
         if row == store.capacity:
             store.grow(2 * store.capacity)
-            self._index.extend([(0, 0.0)] * (store.capacity - len(self._index)))
-        self._index[row] = (step, t)
-        store.put([external, sensory, active, {} if internal is None else internal], row)
+        store.put(step, t, (external, sensory, active, {} if internal is None else internal), row)
         self._rows = row + 1
 
     def end_episode(self, extra: Mapping[str, Any] | None = None) -> Path:
@@ -829,58 +722,56 @@ class RunWriter:
 
     def _reset_buffers(self, capacity: int) -> None:
         self._rows = 0
-        self._index: list[tuple[int, float]] = [(0, 0.0)] * capacity
         self._store = _Rows(capacity)
 
     def _build_table(self, episode: int, extra: dict[str, Any]) -> pa.Table:
         n = self._rows
-        try:
-            flat = itertools.chain.from_iterable(self._index[:n])
-            index = np.fromiter(flat, np.float64, count=2 * n).reshape(n, 2)
-        except (TypeError, ValueError):
-            raise ValueError("record: step must be an int and t a float (seconds)") from None
-        steps = index[:, 0].astype(np.int64)
-        if not np.array_equal(steps, index[:, 0]):
+        store = self._store
+        # One transposed copy of the rows; every column is then a contiguous slice of it
+        # (float columns without nulls are Arrow arrays over those slices, no copy).
+        columns = np.ascontiguousarray(store.data[:n].T)
+        steps = columns[0].astype(np.int64)
+        if not np.array_equal(steps, columns[0]):
             raise ValueError("record: step must be an integer")
-        times = np.ascontiguousarray(index[:, 1])
         names = ["episode", "step", "t"]
         arrays: list[pa.Array] = [
-            _to_arrow(np.full(n, episode, dtype=np.int64), None),
-            _to_arrow(steps, None),
-            _to_arrow(times, None),
+            pa.array(np.full(n, episode, dtype=np.int64)),
+            pa.array(steps),
+            pa.array(columns[1]),
         ]
-        store = self._store
-        # One transposed copy of each buffer; every column is then a contiguous slice of it
-        # (float columns without nulls are Arrow arrays over those slices, no copy).
-        array_data = np.ascontiguousarray(store.arrays[:n].T)
-        scalar_data = np.ascontiguousarray(store.scalar_matrix(n).T)
-        buffers = (pa.py_buffer(array_data), pa.py_buffer(scalar_data))
-        row_bytes = 8 * n
+        buffer = pa.py_buffer(columns)
         f64 = pa.float64()
         from_buffers = pa.Array.from_buffers
         for leaf in store.leaves():
             names.extend(self._column_names(leaf))
+            first = leaf.offset
             if leaf.kind == "f" and leaf.valid is None:
-                buffer = buffers[0 if leaf.shape else 1]
-                start = leaf.offset * row_bytes
                 arrays.extend(
-                    from_buffers(f64, n, [None, buffer.slice(start + j * row_bytes, row_bytes)])
-                    for j in range(leaf.width)
+                    from_buffers(f64, n, [None, buffer.slice(8 * n * j, 8 * n)])
+                    for j in range(first, first + leaf.width)
                 )
                 continue
-            data = array_data if leaf.shape else scalar_data
             valid = None if leaf.valid is None else leaf.valid[:n]
-            for j in range(leaf.width):
-                values = data[leaf.offset + j]
+            for values in columns[first : first + leaf.width]:
                 if leaf.kind != "f":
                     # Masked rows hold 0: they do not decide the type.
                     probe = values if valid is None else values[valid]
                     if _typed(probe, leaf.kind).dtype != np.float64:
                         values = _typed(values, leaf.kind)
-                arrays.append(_to_arrow(values, valid))
-        fields, units_json = self._fields(names, [a.type for a in arrays])
+                arrays.append(pa.array(values, mask=None if valid is None else ~valid))
+        if len(set(names)) < len(names):
+            twice = next(name for name in names if names.count(name) > 1)
+            raise ValueError(f"column {twice!r} is produced twice; rename a key or its components")
+        units = {"t": "s"}
+        for leaf in store.leaves():
+            if leaf.unit is not None:
+                units.update(dict.fromkeys(leaf.names, leaf.unit))
+        units_json = to_json(units).encode()
         schema = pa.schema(
-            fields,
+            [
+                pa.field(name, a.type, metadata={"unit": units[name]} if name in units else None)
+                for name, a in zip(names, arrays, strict=True)
+            ],
             metadata={
                 META_SCHEMA: SCHEMA_VERSION.encode(),
                 META_RUN: self._run_json_bytes,
@@ -890,50 +781,18 @@ class RunWriter:
         )
         return pa.Table.from_arrays(arrays, schema=schema)
 
-    def _fields(self, names: list[str], types: list[pa.DataType]) -> tuple[list[pa.Field], bytes]:
-        """The Arrow fields (with their units) and the units JSON of a column layout; kept
-        while the layout stays the same (the usual case: every episode alike)."""
-        # (the units are a function of the column names, see component_labels/unit_for_key)
-        key = (tuple(names), tuple(types))
-        cached = _FIELDS_CACHE[0]
-        if cached is not None and cached[0] == key:
-            return cached[1], cached[2]
-        seen: set[str] = set()
-        for column in names:
-            if column in seen:
-                raise ValueError(
-                    f"column {column!r} is produced twice; rename a key or its components"
-                )
-            seen.add(column)
-        units = {"t": "s"}
-        for leaf in self._store.leaves():
-            if leaf.unit is not None:
-                units.update(dict.fromkeys(self._column_names(leaf), leaf.unit))
-        fields = [
-            pa.field(name, kind, metadata={"unit": units[name]} if name in units else None)
-            for name, kind in zip(names, types, strict=True)
-        ]
-        units_json = to_json(units).encode()
-        _FIELDS_CACHE[0] = (key, fields, units_json)
-        return fields, units_json
-
     def _column_names(self, leaf: _Leaf) -> list[str]:
-        if leaf.names:
-            return leaf.names
-        known = self._names_by_leaf.get((leaf.path, leaf.shape))
-        if known is not None:  # the same key in an earlier episode
-            leaf.names = known
-            return known
-        prefix = ".".join(leaf.path)
-        shape = leaf.shape
-        if not shape:
-            names = [prefix]
-        else:
-            comps = component_labels(leaf.path, shape[-1], self._joint_names, self._component_names)
-            if len(shape) == 1:
-                names = [f"{prefix}.{c}" for c in comps]
+        if not leaf.names:
+            prefix = ".".join(leaf.path)
+            shape = leaf.shape
+            if not shape:
+                leaf.names = [prefix]
             else:
-                names = [f"{prefix}.order{k}.{c}" for k in range(shape[0]) for c in comps]
-        leaf.names = names
-        self._names_by_leaf[(leaf.path, leaf.shape)] = names
-        return names
+                comps = component_labels(
+                    leaf.path, shape[-1], self._joint_names, self._component_names
+                )
+                if len(shape) == 1:
+                    leaf.names = [f"{prefix}.{c}" for c in comps]
+                else:
+                    leaf.names = [f"{prefix}.order{k}.{c}" for k in range(shape[0]) for c in comps]
+        return leaf.names
