@@ -842,6 +842,8 @@ def train_goal(
             row |= {f"raw_{k}": v for k, v in raw.items()}
         else:
             row |= _evaluate(actor, description, settings)
+        if entropy_end is not None:
+            row["target_entropy"] = float(model.target_entropy)
         row["eval_s"] = round(time.perf_counter() - t0, 1)
         curve.append(row)
         _write_curve(curve, out / "curve.parquet")
