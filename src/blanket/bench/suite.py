@@ -100,7 +100,9 @@ class BenchSettings:
                     if robot != "iiwa" or task != "reach":
                         left_out.append(f"{name}: the shipped weights are for the iiwa reach")
                     elif not weights.is_file():
-                        left_out.append(f"{name}: no {weights} (see docs/rl.md)")
+                        left_out.append(
+                            f"{name}: no {weights.name} in models/ or --rl-models (docs/rl.md)"
+                        )
                     else:
                         policies.append(name)
             if not quick:
