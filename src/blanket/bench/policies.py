@@ -386,7 +386,7 @@ POLICIES: dict[str, PolicySpec] = {
         ),
         PolicySpec(
             "ppo-vec",
-            "goal-conditioned PPO trained on vector envs, weights models/ppo-vec.* or "
+            "goal-conditioned PPO trained on vector envs, shipped weights in models/ or "
             "--rl-models DIR (iiwa, velocity control)",
             "velocity",
             _goal_rl("ppo-vec"),
