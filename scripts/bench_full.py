@@ -1,95 +1,65 @@
-"""The full reaching benchmark in one command (hours on 2 cores; not part of CI).
+"""The full reaching benchmark table (every built-in policy x every condition) in one command.
 
-    python scripts/bench_full.py --out /work/bench-full
+    python scripts/bench_full.py --out /work/bench-full --episodes 20
+    python scripts/bench_full.py --out /work/bench-full --episodes 20 --train-hours 1.0
 
-1. Trains the RL baselines (SAC and PPO, 200k policy decisions each = 1.6M control steps at
-   the default action repeat of 8) with ``blanket train-rl`` into OUT/models, unless a
-   finished model is already there (``--retrain`` forces it). Each run is niced and uses one
-   torch thread; its log goes to OUT/train-<algo>.log and its learning curve to
-   OUT/models/<algo>-progress.jsonl.
-2. Runs ``blanket bench`` with every built-in policy and condition, 20 episodes each,
-   into OUT/results (results.json, report.md, charts).
+Runs ``blanket bench`` with its default grid: every built-in policy (the active-inference
+variants, the classical controllers, and the goal-conditioned RL baselines whose weights exist:
+``sac-her`` from ``models/``, ``ppo-vec`` from ``models/`` or ``--rl-models``) on every named
+condition, into OUT/results (results.json, report.md with the tables and the training cost of
+every row, and the charts, among them rl_learning_curves.png with the agent as a flat line).
+``--resume`` continues an interrupted run cell by cell.
 
-Needs the rl extra: ``pip install torch==2.13.0`` (the CPU wheel) first, then
-``pip install stable-baselines3``.
+``--train-hours H`` first trains the RL baselines with ``scripts/train_baselines.py`` (SAC +
+HER seeds 0, 1, 2 in turn, then PPO on 4 vector envs; each run niced and bounded by H hours,
+resuming what exists in OUT/rl-train) and ships the best SAC + HER seed into ``models/`` (PPO
+into OUT/rl-models, passed to the bench as ``--rl-models``). That takes hours on 2 cores; the
+table alone takes about a minute per policy-condition cell at 20 episodes.
 """
 
 from __future__ import annotations
 
 import argparse
-import json
 import os
 import subprocess
 import sys
 import time
 from pathlib import Path
 
+ROOT = Path(__file__).resolve().parents[1]
 
-def _finished(models: Path, algo: str, steps: int) -> bool:
-    meta = models / f"{algo}.json"
-    if not meta.is_file():
-        return False
-    data = json.loads(meta.read_text())
-    return bool(data.get("finished")) and int(data.get("policy_steps", 0)) >= steps
+
+def _call(cmd: list[str], env: dict[str, str]) -> int:
+    print("running:", " ".join(cmd), flush=True)
+    return subprocess.call(cmd, env=env)
 
 
 def main() -> int:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--out", default="bench-full", help="output folder (default ./bench-full)")
-    p.add_argument("--steps", type=int, default=200_000, help="RL policy steps per algorithm")
-    p.add_argument("--episodes", type=int, default=20)
-    p.add_argument("--robot", default="iiwa")
-    p.add_argument("--seed", type=int, default=0)
-    p.add_argument("--algos", default="sac,ppo")
-    p.add_argument("--retrain", action="store_true")
-    p.add_argument("--parallel", action="store_true", help="train the algorithms side by side")
+    p.add_argument("--episodes", type=int, default=20, help="episodes per cell (default 20)")
+    p.add_argument("--seed", type=int, default=0, help="first bench seed (default 0)")
+    p.add_argument("--rl-models", metavar="DIR", help="extra RL weights (ppo-vec, sac/ppo zips)")
+    p.add_argument("--workers", type=int, default=1, help="cells in parallel (default 1)")
+    p.add_argument("--resume", action="store_true", help="continue OUT/results cell by cell")
+    p.add_argument("--train-hours", type=float, help="train the RL baselines first (hours/run)")
     args = p.parse_args()
 
     out = Path(args.out).resolve()
-    models = out / "models"
-    models.mkdir(parents=True, exist_ok=True)
+    out.mkdir(parents=True, exist_ok=True)
     env = dict(os.environ, OMP_NUM_THREADS="1", MKL_NUM_THREADS="1", MPLBACKEND="Agg")
     start = time.perf_counter()
-    jobs = []
-    for algo in [a for a in args.algos.split(",") if a]:
-        if not args.retrain and _finished(models, algo, args.steps):
-            print(f"{algo}: finished model found, not retraining")
-            continue
-        eval_every = 10_000 if algo == "sac" else 20_480
-        cmd = [
-            "nice",
-            "-n",
-            "10",
-            sys.executable,
-            "-m",
-            "blanket.cli",
-            "train-rl",
-            "--algo",
-            algo,
-            "--steps",
-            str(args.steps),
-            "--out",
-            str(models),
-            "--seed",
-            str(args.seed),
-            "--robot",
-            args.robot,
-            "--eval-every",
-            str(eval_every),
-        ]
-        log = (out / f"train-{algo}.log").open("w")
-        print("running:", " ".join(cmd), flush=True)
-        proc = subprocess.Popen(cmd, stdout=log, stderr=subprocess.STDOUT, env=env)
-        if args.parallel:
-            jobs.append(proc)
-        elif proc.wait() != 0:
-            print(f"{algo} training failed; see {log.name}")
-            return 1
-    for proc in jobs:
-        if proc.wait() != 0:
-            print("RL training failed; see the train-*.log files")
-            return 1
-    cmd = [
+    rl_models = args.rl_models
+    if args.train_hours:
+        train = [sys.executable, str(ROOT / "scripts" / "train_baselines.py")]
+        hours = ["--out", str(out / "rl-train"), "--hours", str(args.train_hours)]
+        sac = [*train, *hours, "--algo", "sac-her", "--ship", str(ROOT / "models")]
+        rl_models = rl_models or str(out / "rl-models")
+        ppo = [*train, *hours, "--algo", "ppo-vec", "--seeds", "0", "--ship", rl_models]
+        for cmd in (sac, ppo):
+            if _call(cmd, env) != 0:
+                return 1
+    bench = [
         sys.executable,
         "-m",
         "blanket.cli",
@@ -98,17 +68,17 @@ def main() -> int:
         str(args.episodes),
         "--seed",
         str(args.seed),
-        "--robot",
-        args.robot,
-        "--rl-models",
-        str(models),
+        "--workers",
+        str(args.workers),
         "--out",
         str(out / "results"),
-        "--overwrite",
+        "--resume" if args.resume else "--overwrite",
     ]
-    print("running:", " ".join(cmd), flush=True)
-    code = subprocess.call(cmd, env=env)
-    print(f"total wall time {time.perf_counter() - start:.0f} s")
+    if rl_models:
+        bench += ["--rl-models", rl_models]
+    code = _call(bench, env)
+    table = out / "results" / "report.md"
+    print(f"total wall time {time.perf_counter() - start:.0f} s; table: {table}")
     return code
 
 

@@ -82,7 +82,7 @@ def summary(out: Path, algo: str, flat: float) -> list[tuple[tuple, Path]]:
             f"best at {best['policy_steps']}: 1 cm {best['success_1cm']:.0%}, 5 cm "
             f"{best['success_5cm']:.0%}, median {best['final_error_m'] * 100:.2f} cm"
         )
-        ranked.append((_rank(best), run))
+        ranked.append((_rank(best), run, last["wall_s"]))
     return sorted(ranked, reverse=True)
 
 
@@ -91,25 +91,43 @@ def main() -> int:
     p.add_argument("--out", default="rl-train", help="training folder (outside the git tree)")
     p.add_argument("--algo", default="sac-her", help="sac-her or ppo-vec")
     p.add_argument("--seeds", default="0,1,2")
-    p.add_argument("--steps", type=int, default=300_000, help="total decisions per seed")
+    p.add_argument(
+        "--steps",
+        type=int,
+        help="total decisions per seed (default: sac-her 50000, ppo-vec 1000000)",
+    )
     p.add_argument("--hours", type=float, default=1.5, help="wall-time bound of each run")
     p.add_argument("--summary", action="store_true", help="only summarise the runs in --out")
     p.add_argument("--ship", metavar="DIR", help="copy the best seed's weights into DIR")
     p.add_argument("--flat", type=float, default=0.1, help="flatness band of the 1 cm share")
     args, extra = p.parse_known_args()
+    steps = args.steps or (50_000 if args.algo == "sac-her" else 1_000_000)
     out = Path(args.out).resolve()
     out.mkdir(parents=True, exist_ok=True)
     if not args.summary:
         for seed in [int(s) for s in args.seeds.split(",") if s]:
-            _run(out, args.algo, seed, args.steps, args.hours, extra)
+            _run(out, args.algo, seed, steps, args.hours, extra)
     ranked = summary(out, args.algo, args.flat)
+    if len(ranked) > 1:
+        tails = []
+        for _r, run, _w in ranked:
+            curve = json.loads((run / "state.json").read_text())["curve"]
+            tails.append(sum(r["success_1cm"] for r in curve[-3:]) / len(curve[-3:]))
+        print(
+            f"spread over {len(ranked)} seeds of the mean 1 cm share of the last three "
+            f"evaluations: {min(tails):.0%} to {max(tails):.0%}"
+        )
     if args.ship and ranked:
         best = ranked[0][1] / "best"
         dest = Path(args.ship)
         dest.mkdir(parents=True, exist_ok=True)
-        for suffix in (".npz", ".json"):
-            shutil.copyfile(best / f"{args.algo}{suffix}", dest / f"{args.algo}{suffix}")
-        print(f"shipped {best} -> {dest}")
+        shutil.copyfile(best / f"{args.algo}.npz", dest / f"{args.algo}.npz")
+        # the JSON's hash covers the arrays; the record gains the seeds behind the choice
+        doc = json.loads((best / f"{args.algo}.json").read_text())
+        doc["seeds_trained"] = sorted(int(run.name.rsplit("seed", 1)[1]) for _r, run, _w in ranked)
+        doc["seeds_wall_time_s"] = round(sum(w for _r, _run, w in ranked), 1)
+        (dest / f"{args.algo}.json").write_text(json.dumps(doc, indent=1) + "\n")
+        print(f"shipped {best} -> {dest} (seeds {doc['seeds_trained']})")
     return 0
 
 

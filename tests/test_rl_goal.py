@@ -255,3 +255,75 @@ def test_learning_rate_end_gives_a_linear_schedule_over_the_budget():
         assert model.lr_schedule(0.0) == pytest.approx(1e-4)
     finally:
         env.close()
+
+
+def test_near_bonus_adds_the_smooth_term_inside_and_outside_the_tolerance():
+    # r = -d / s + b [d <= tol] + w exp(-d / tol), evaluated by hand (common practice, no source)
+    g = np.zeros((3, 3))
+    a = np.array([[0.0, 0.0, 0.0], [0.005, 0.0, 0.0], [0.0, 0.02, 0.0]])
+    expected = [1.0 + 2.0, -0.05 + 1.0 + 2.0 * np.exp(-0.5), -0.2 + 2.0 * np.exp(-2.0)]
+    np.testing.assert_allclose(reach_goal_reward(a, g, 0.01, 0.1, 1.0, 2.0), expected, rtol=1e-6)
+    # the term is sharper than the linear one near the goal: slope at 1 cm is w / (e tol)
+    h = 1e-6
+    d = np.array([[0.01 - h, 0, 0], [0.01 + h, 0, 0]])
+    r = reach_goal_reward(d, np.zeros((2, 3)), 0.02, 0.1, 0.0, 2.0).astype(float)
+    slope = (r[1] - r[0]) / (2 * h)
+    assert slope == pytest.approx(-1 / 0.1 - 2.0 / 0.02 * np.exp(-0.5), rel=1e-2)
+    with pytest.raises(ConfigError, match="near_bonus"):
+        ReachGoalView(make_bench_env("planar", "velocity", 0.5), 4, near_bonus=-1.0)
+
+
+def test_actor_average_follows_the_polyak_recursion():
+    # after k updates towards fixed weights theta from avg0: avg_k = theta + decay^k (avg0 -
+    # theta), the closed form of the geometric recursion (common practice, no source)
+    import torch
+
+    from blanket.bench.rl_goal import ActorAverage, _build
+
+    settings = GoalTrainSettings(
+        steps=1000, hyperparameters={"buffer_size": 1000, "net_arch": [8]}, **PLANAR
+    )
+    model, env = _build(settings, settings.defaults())
+    try:
+        average = ActorAverage(model, 0.9)
+        start = MlpActor.from_sb3(model)
+        with torch.no_grad():
+            for p in average.params:
+                p.add_(1.0)
+        for _ in range(5):
+            average.update()
+        avg = average.actor()
+        for w0, w in zip(start.weights, avg.weights, strict=True):
+            np.testing.assert_allclose(w, w0 + 1.0 - 0.9**5, atol=1e-6)
+        now = MlpActor.from_sb3(model)
+        np.testing.assert_allclose(now.weights[0], start.weights[0] + 1.0, atol=1e-6)
+        with pytest.raises(ConfigError, match="actor_ema"):
+            ActorAverage(model, 1.0)
+    finally:
+        env.close()
+
+
+def test_averaged_actor_and_falling_entropy_target_in_a_smoke_run(tmp_path):
+    import pyarrow.parquet as pq
+
+    hyper = {
+        "net_arch": [32, 32],
+        "batch_size": 32,
+        "actor_ema": 0.99,
+        "target_entropy_end": -5.0,
+    }
+    settings = GoalTrainSettings(
+        steps=160, eval_every=80, eval_episodes=2, hyperparameters=hyper, **PLANAR
+    )
+    train_goal(settings, tmp_path)
+    curve = pq.read_table(tmp_path / "curve.parquet").to_pylist()
+    # planar arm: 2 actions, SB3's automatic target -2 falls linearly to -5 over 160 decisions
+    assert [r["target_entropy"] for r in curve] == pytest.approx([-3.5, -5.0], abs=0.05)
+    for r in curve:
+        assert 0 <= r["raw_success_1cm"] <= r["raw_success_5cm"] <= 1
+    assert (tmp_path / "checkpoint" / "actor_ema.npz").is_file()
+    more = GoalTrainSettings(
+        steps=240, eval_every=80, eval_episodes=2, hyperparameters=hyper, **PLANAR
+    )
+    meta = train_goal(more, tmp_path, resume=True)
+    assert [r["policy_steps"] for r in meta["learning_curve"]] == [80, 160, 240]

@@ -152,10 +152,18 @@ def test_bench_row_of_sac_her_carries_its_training_cost(tmp_path):
             "final_error_m": 0.04,
         }
     ]
-    doc |= {"policy_steps": 10, "control_steps": 40, "wall_time_s": 5.0, "learning_curve": curve}
+    doc |= {
+        "policy_steps": 10,
+        "control_steps": 40,
+        "wall_time_s": 5.0,
+        "learning_curve": curve,
+        "seed": 2,
+        "seeds_trained": [0, 1, 2],
+        "seeds_wall_time_s": 7200.0,
+    }
     path.write_text(json.dumps(doc))  # the hash covers the arrays, not the record
     settings = BenchSettings.from_cli(
-        policies=["sac-her"],
+        policies=["sac-her", "classical"],
         conditions=["nominal"],
         episodes=1,
         robot="planar",
@@ -163,7 +171,33 @@ def test_bench_row_of_sac_her_carries_its_training_cost(tmp_path):
         rl_models=str(tmp_path),
     )
     summary = run_benchmark(settings, tmp_path / "bench", progress=False)
-    (record,) = summary["records"]
+    record, classical = summary["records"]
     assert record["policy"] == "sac-her" and record["training_steps"] == 40
     assert record["training_wall_s"] == 5.0
-    assert "## RL training" in (tmp_path / "bench" / "report.md").read_text()
+    report = (tmp_path / "bench" / "report.md").read_text()
+    assert "## RL training" in report
+    # the cost table: RL's training beside the model-based policy's zero
+    assert "| sac-her | 40 | 10 | 0.00 (all seeds 2.00) | 3 (0, 1, 2) |" in report
+    assert "| classical | 0 | 0 | 0 | none (a body model, no training) |" in report
+    assert (tmp_path / "bench" / "rl_learning_curves.png").stat().st_size > 1000
+
+
+def test_default_bench_takes_goal_policies_whose_weights_exist(tmp_path):
+    from blanket.bench.suite import BenchSettings
+
+    empty = BenchSettings.from_cli(rl_models=str(tmp_path))
+    if not (DEFAULT_MODELS_DIR / "ppo-vec.json").is_file():
+        assert "ppo-vec" not in empty.policies
+        assert any(x.startswith("ppo-vec: no ") for x in empty.left_out)
+    assert "sac-her" in empty.policies  # shipped in models/
+    path = _save(tmp_path)
+    path.rename(tmp_path / "ppo-vec.json")
+    (tmp_path / "sac-her.npz").rename(tmp_path / "ppo-vec.npz")
+    doc = json.loads((tmp_path / "ppo-vec.json").read_text())
+    doc["weights"] = "ppo-vec.npz"
+    (tmp_path / "ppo-vec.json").write_text(json.dumps(doc))
+    found = BenchSettings.from_cli(rl_models=str(tmp_path))
+    assert "ppo-vec" in found.policies and "sac-her" in found.policies
+    planar = BenchSettings.from_cli(robot="planar", rl_models=str(tmp_path))
+    assert "ppo-vec" not in planar.policies and "sac-her" not in planar.policies
+    assert any(x.startswith("ppo-vec: the shipped weights") for x in planar.left_out)

@@ -234,6 +234,13 @@ def add_train_parser(sub: Any) -> argparse.ArgumentParser:
     )
     p.add_argument("--distance-scale-m", type=_positive_float, default=0.1, metavar="M")
     p.add_argument("--tolerance-bonus", type=float, default=1.0, metavar="R")
+    p.add_argument(
+        "--near-bonus",
+        type=float,
+        default=0.0,
+        metavar="R",
+        help="sac-her / ppo-vec: reward term R * exp(-d / tolerance), sharper near the goal",
+    )
     p.add_argument("--effort-weight", type=float, default=0.01, metavar="W")
     p.add_argument(
         "--hyper",
@@ -274,6 +281,7 @@ def run_train(args: argparse.Namespace) -> int:
             eval_every=args.eval_every or 5_000,
             eval_episodes=args.eval_episodes or 30,
             n_envs=args.n_envs,
+            near_bonus=args.near_bonus,
         )
         meta = train_goal(goal, Path(args.out), resume=args.resume, progress=not args.quiet)
         best = Path(args.out) / "best" / f"{args.algo}.json"

@@ -384,6 +384,14 @@ POLICIES: dict[str, PolicySpec] = {
             _goal_rl("sac-her"),
             model_based=False,
         ),
+        PolicySpec(
+            "ppo-vec",
+            "goal-conditioned PPO trained on vector envs, shipped weights in models/ or "
+            "--rl-models DIR (iiwa, velocity control)",
+            "velocity",
+            _goal_rl("ppo-vec"),
+            model_based=False,
+        ),
     )
 }
 

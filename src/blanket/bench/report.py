@@ -14,6 +14,7 @@ __all__ = [
     "plot_success",
     "plot_final_error",
     "plot_learning_curves",
+    "reference_success",
 ]
 
 _INK = "#2b2b2b"
@@ -137,6 +138,7 @@ def markdown_report(
         "path length over the straight line from the start to the target. Belief RMSE: the "
         "policy's believed joint angles against the true ones (policies that report a belief).",
     ]
+    lines += _training_cost(records, rl_meta or {})
     if rl_meta:
         lines += [
             "",
@@ -177,6 +179,49 @@ def markdown_report(
                     f"{_pct(row['success_5cm'])} | {_num(row['final_error_m'], 100)} |"
                 )
     return "\n".join(lines) + "\n"
+
+
+def _seeds(meta: Mapping[str, Any]) -> list[Any]:
+    """The training seeds behind shipped weights (``seeds_trained``, else the run's seed)."""
+    seeds = meta.get("seeds_trained")
+    return list(seeds) if isinstance(seeds, list) else [meta.get("seed")]
+
+
+def _training_cost(records: Sequence[Mapping[str, Any]], rl_meta: Mapping[str, Any]) -> list[str]:
+    """What each policy cost before the benchmark: RL's training beside the models' zero."""
+    from blanket.bench.policies import POLICIES
+
+    lines = [
+        "",
+        "## Training cost before the benchmark",
+        "",
+        "| policy | training control steps | decisions | training wall time, h | seeds trained |",
+        "| --- | --- | --- | --- | --- |",
+    ]
+    for name in _order(records, "policy"):
+        spec = POLICIES.get(name)
+        meta = rl_meta.get((spec.rl_algo or spec.name) if spec else name)
+        if meta:
+            wall = meta.get("wall_time_s")
+            seeds = _seeds(meta)
+            total = meta.get("seeds_wall_time_s")
+            hours = _num(None if wall is None else wall / 3600.0)
+            if total is not None:
+                hours += f" (all seeds {total / 3600.0:.2f})"
+            lines.append(
+                f"| {name} | {meta.get('control_steps')} | {meta.get('policy_steps')} | "
+                f"{hours} | {len(seeds)} ({', '.join(map(str, seeds))}) |"
+            )
+        elif spec is not None and spec.model_based:
+            lines.append(f"| {name} | 0 | 0 | 0 | none (a body model, no training) |")
+        else:
+            lines.append(f"| {name} | - | - | - | - |")
+    lines += [
+        "",
+        "Wall time at `nice 10` on a shared 2-core machine; decisions = control steps / action "
+        "repeat. The model-based policies run on the URDF's body model with no training.",
+    ]
+    return lines
 
 
 def _style(ax) -> None:
@@ -295,8 +340,30 @@ def plot_final_error(records: Sequence[Mapping[str, Any]], path: Path) -> Path:
     return path
 
 
-def plot_learning_curves(rl_meta: Mapping[str, Any], path: Path) -> Path | None:
-    """Eval success vs training steps of each RL baseline."""
+def reference_success(
+    records: Sequence[Mapping[str, Any]],
+    policy: str = "active-inference",
+    condition: str = "nominal",
+) -> dict[str, dict[str, float]]:
+    """``{policy: {"1cm": share, "5cm": share}}`` of one bench cell (empty when absent)."""
+    for r in records:
+        if r["policy"] == policy and r["condition"] == condition:
+            return {policy: {"1cm": r["success_1cm"], "5cm": r["success_5cm"]}}
+    return {}
+
+
+def plot_learning_curves(
+    rl_meta: Mapping[str, Any],
+    path: Path,
+    reference: Mapping[str, Mapping[str, float]] | None = None,
+) -> Path | None:
+    """Held-out success within 1 cm and 5 cm against training control steps.
+
+    One panel per tolerance; each entry of ``rl_meta`` (a training JSON, or any mapping with a
+    ``learning_curve`` list) is one line; ``reference`` (``{label: {"1cm": share, "5cm":
+    share}}``, e.g. :func:`reference_success`) adds flat lines for policies that need no
+    training.
+    """
     curves = {a: m.get("learning_curve", []) for a, m in rl_meta.items()}
     if not any(curves.values()):
         return None
@@ -305,34 +372,36 @@ def plot_learning_curves(rl_meta: Mapping[str, Any], path: Path) -> Path | None:
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    fig, ax = plt.subplots(figsize=(6.5, 3.2), constrained_layout=True)
-    for j, (algo, rows) in enumerate(curves.items()):
-        if not rows:
-            continue
-        steps = np.array([r["control_steps"] for r in rows])
-        colour = _COLOURS[j % len(_COLOURS)]
-        ax.plot(
-            steps,
-            [100 * r["success_5cm"] for r in rows],
-            "-o",
-            ms=3,
-            color=colour,
-            label=f"{algo}, 5 cm",
-        )
-        ax.plot(
-            steps,
-            [100 * r["success_1cm"] for r in rows],
-            "--s",
-            ms=3,
-            color=colour,
-            label=f"{algo}, 1 cm",
-        )
-    ax.set_xlabel("training control steps", color=_INK)
-    ax.set_ylabel("eval episodes reached [%]", color=_INK)
-    ax.set_ylim(-3, 103)
-    _style(ax)
-    ax.grid(True, axis="y", color=_GRID, lw=0.6)
-    ax.legend(frameon=False, fontsize=7)
+    fig, axes = plt.subplots(1, 2, figsize=(9.0, 3.4), sharey=True, constrained_layout=True)
+    for ax, tag in zip(axes, ("1cm", "5cm"), strict=True):
+        for j, (algo, rows) in enumerate(curves.items()):
+            if not rows:
+                continue
+            steps = np.array([r["control_steps"] for r in rows], dtype=float)
+            ax.plot(
+                steps,
+                [100 * r[f"success_{tag}"] for r in rows],
+                "-o",
+                ms=3,
+                lw=1.2,
+                color=_COLOURS[j % len(_COLOURS)],
+                label=algo,
+            )
+        for k, (label, shares) in enumerate((reference or {}).items()):
+            ax.axhline(
+                100 * shares[tag],
+                color=_INK,
+                lw=1.4,
+                ls=("-", "--", ":")[k % 3],
+                label=f"{label} (no training)",
+            )
+        ax.set_title(f"within {tag[:-2]} cm", color=_INK, fontsize=9)
+        ax.set_xlabel("training control steps", color=_INK)
+        ax.set_ylim(-3, 103)
+        _style(ax)
+        ax.grid(True, axis="y", color=_GRID, lw=0.6)
+    axes[0].set_ylabel("held-out episodes reached [%]", color=_INK)
+    axes[1].legend(frameon=False, fontsize=7, loc="lower right")
     fig.savefig(path, dpi=120)
     plt.close(fig)
     return path
@@ -353,7 +422,9 @@ def write_report(
     paths.append(plot_success(records, out / "success_1cm.png", "1cm"))
     paths.append(plot_final_error(records, out / "final_error.png"))
     if rl_meta:
-        p = plot_learning_curves(rl_meta, out / "rl_learning_curves.png")
+        p = plot_learning_curves(
+            rl_meta, out / "rl_learning_curves.png", reference_success(records)
+        )
         if p is not None:
             paths.append(p)
     return paths

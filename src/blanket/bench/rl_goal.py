@@ -23,7 +23,11 @@ between. The encoder readings of the control steps since the previous decision a
 
 Reward (a function of the goals only, as relabelling needs; :func:`reach_goal_reward`)::
 
-    r = -|achieved - desired| / distance_scale_m + tolerance_bonus * [|achieved - desired| <= tol]
+    r = -d / distance_scale_m + tolerance_bonus * [d <= tol] + near_bonus * exp(-d / tol)
+
+with ``d = |achieved - desired|``. The last term (off by default) is sharper near the goal than
+the linear one: its slope at ``d = tol`` is ``near_bonus / (e * tol)`` against
+``1 / distance_scale_m``, so that a critic can tell 5 mm from 15 mm apart.
 
 Shipped weights
 ---------------
@@ -86,15 +90,19 @@ def reach_goal_reward(
     tolerance_m: float,
     distance_scale_m: float = 0.1,
     tolerance_bonus: float = 1.0,
+    near_bonus: float = 0.0,
 ) -> np.ndarray:
     """Dense reaching reward of the module docstring, vectorised over leading axes.
 
     Dense negative distance plus a bonus inside the tolerance (the dense variant of the HER
-    reward; Andrychowicz et al. 2017 use the sparse ``-[d > tol]``). Returns float32 of shape
+    reward; Andrychowicz et al. 2017 use the sparse ``-[d > tol]``) plus an optional smooth
+    bonus ``near_bonus * exp(-d / tol)`` near the goal. Returns float32 of shape
     ``achieved.shape[:-1]`` (a 0-d array for single goals).
     """
     d = np.linalg.norm(np.asarray(achieved, float) - np.asarray(desired, float), axis=-1)
     r = -d / distance_scale_m + tolerance_bonus * (d <= tolerance_m)
+    if near_bonus:
+        r = r + near_bonus * np.exp(-d / tolerance_m)
     return np.asarray(r, dtype=np.float32)
 
 
@@ -161,7 +169,7 @@ class ReachGoalView(gym.Wrapper, gym.utils.RecordConstructorArgs):
         The benchmark env (:func:`blanket.bench.rl.make_bench_env`).
     action_repeat : {1, 2, 4, 8}
         Control steps per decision; the readings in between are averaged.
-    distance_scale_m, tolerance_bonus : float
+    distance_scale_m, tolerance_bonus, near_bonus : float
         Reward terms of :func:`reach_goal_reward`; the tolerance is the env's.
     """
 
@@ -171,12 +179,14 @@ class ReachGoalView(gym.Wrapper, gym.utils.RecordConstructorArgs):
         action_repeat: int = 8,
         distance_scale_m: float = 0.1,
         tolerance_bonus: float = 1.0,
+        near_bonus: float = 0.0,
     ) -> None:
         gym.utils.RecordConstructorArgs.__init__(
             self,
             action_repeat=action_repeat,
             distance_scale_m=distance_scale_m,
             tolerance_bonus=tolerance_bonus,
+            near_bonus=near_bonus,
         )
         gym.Wrapper.__init__(self, env)
         self.action_repeat = _check_repeat(action_repeat)
@@ -184,6 +194,9 @@ class ReachGoalView(gym.Wrapper, gym.utils.RecordConstructorArgs):
             raise ConfigError(f"distance_scale_m: must be > 0, got {distance_scale_m!r}")
         self.distance_scale_m = float(distance_scale_m)
         self.tolerance_bonus = float(tolerance_bonus)
+        if not (math.isfinite(near_bonus) and near_bonus >= 0):
+            raise ConfigError(f"near_bonus: must be a finite number >= 0, got {near_bonus!r}")
+        self.near_bonus = float(near_bonus)
         description = env.unwrapped.description
         self.tolerance_m = float(description.tolerance_m)
         self.body, self.scales = _body_and_scales(description)
@@ -230,6 +243,7 @@ class ReachGoalView(gym.Wrapper, gym.utils.RecordConstructorArgs):
             self.tolerance_m,
             self.distance_scale_m,
             self.tolerance_bonus,
+            self.near_bonus,
         )
 
 
@@ -244,6 +258,7 @@ class GoalTrainSettings(TrainSettings):
     algorithms: ClassVar[tuple[str, ...]] = GOAL_ALGORITHMS
 
     algo: str = "sac-her"
+    near_bonus: float = 0.0
     eval_every: int = 5_000
     eval_episodes: int = 30
     n_envs: int = 4
@@ -302,7 +317,11 @@ def make_goal_env(settings: GoalTrainSettings, monitor: bool = True) -> gym.Env:
     env = make_bench_env(settings.robot, settings.control, settings.episode_s)
     try:
         env = ReachGoalView(
-            env, settings.action_repeat, settings.distance_scale_m, settings.tolerance_bonus
+            env,
+            settings.action_repeat,
+            settings.distance_scale_m,
+            settings.tolerance_bonus,
+            settings.near_bonus,
         )
     except BaseException:
         env.close()
@@ -315,6 +334,69 @@ def make_goal_env(settings: GoalTrainSettings, monitor: bool = True) -> gym.Env:
 
 
 # ----------------------------------------------------------------------------- the actor
+def _sb3_actor_layers(model: Any) -> tuple[list[Any], str, str]:
+    """The deterministic actor's ``torch.nn.Linear`` layers, activation and squash."""
+    import torch
+
+    def linears(module: Any) -> list[Any]:
+        return [m for m in module.modules() if isinstance(m, torch.nn.Linear)]
+
+    policy = model.policy
+    if hasattr(policy, "actor"):  # SAC: latent_pi -> mu -> tanh
+        layers = linears(policy.actor.latent_pi) + [policy.actor.mu]
+        squash = "tanh"
+        act_fn = policy.actor.latent_pi
+    else:  # PPO: mlp_extractor.policy_net -> action_net, clipped to the action bounds
+        layers = linears(policy.mlp_extractor.policy_net) + [policy.action_net]
+        squash = "clip"
+        act_fn = policy.mlp_extractor.policy_net
+    names = {type(m).__name__ for m in act_fn.modules()}
+    return layers, ("tanh" if "Tanh" in names else "relu"), squash
+
+
+class ActorAverage:
+    """Polyak (exponential moving) average of the deterministic actor's weights.
+
+    ``avg <- decay * avg + (1 - decay) * theta`` after every decision (Polyak and Juditsky 1992,
+    SIAM J. Control Optim. 30(4), averaging of stochastic-approximation iterates; the same
+    update as SAC's target networks with ``tau = 1 - decay``). Evaluating and shipping the
+    average instead of the last iterate damps the swing of the actor between checkpoints.
+    """
+
+    def __init__(self, model: Any, decay: float) -> None:
+        if not 0.0 < decay < 1.0:
+            raise ConfigError(f"actor_ema: must be in (0, 1), got {decay!r}")
+        self.decay = float(decay)
+        self.layers, self.activation, self.squash = _sb3_actor_layers(model)
+        self.params = [p for layer in self.layers for p in (layer.weight, layer.bias)]
+        self.average = [p.detach().clone() for p in self.params]
+
+    def update(self) -> None:
+        import torch
+
+        with torch.no_grad():
+            for avg, p in zip(self.average, self.params, strict=True):
+                avg.mul_(self.decay).add_(p.detach(), alpha=1.0 - self.decay)
+
+    def actor(self) -> MlpActor:
+        arrays = [a.cpu().numpy().copy() for a in self.average]
+        return MlpActor(arrays[0::2], arrays[1::2], self.activation, self.squash)
+
+    def save(self, path: Path) -> None:
+        """Plain arrays (``numpy.savez``) so that a resumed run keeps its average."""
+        tmp = path.with_name(path.name + ".tmp.npz")
+        np.savez(tmp, *[a.cpu().numpy() for a in self.average])
+        tmp.replace(path)
+
+    def load(self, path: Path) -> None:
+        import torch
+
+        with np.load(path, allow_pickle=False) as data:
+            arrays = [data[f"arr_{i}"] for i in range(len(self.average))]
+        for avg, arr in zip(self.average, arrays, strict=True):
+            avg.copy_(torch.as_tensor(arr))
+
+
 def _sha256(path: Path) -> str:
     return hashlib.sha256(path.read_bytes()).hexdigest()
 
@@ -379,17 +461,7 @@ class MlpActor:
         def linears(module: Any) -> list[Any]:
             return [m for m in module.modules() if isinstance(m, torch.nn.Linear)]
 
-        policy = model.policy
-        if hasattr(policy, "actor"):  # SAC: latent_pi -> mu -> tanh
-            layers = linears(policy.actor.latent_pi) + [policy.actor.mu]
-            squash = "tanh"
-            act_fn = policy.actor.latent_pi
-        else:  # PPO: mlp_extractor.policy_net -> action_net, clipped to the action bounds
-            layers = linears(policy.mlp_extractor.policy_net) + [policy.action_net]
-            squash = "clip"
-            act_fn = policy.mlp_extractor.policy_net
-        names = {type(m).__name__ for m in act_fn.modules()}
-        activation = "tanh" if "Tanh" in names else "relu"
+        layers, activation, squash = _sb3_actor_layers(model)
         return cls(
             [layer.weight.detach().cpu().numpy() for layer in layers],
             [layer.bias.detach().cpu().numpy() for layer in layers],
@@ -587,12 +659,21 @@ class LinearRate:
         return self.end + (self.start - self.end) * remaining
 
 
+#: ``hyperparameters`` keys that the trainer applies itself (not SB3 keywords):
+#: ``target_entropy_end`` (SAC: the entropy target falls linearly from SB3's ``-dim(actions)``,
+#: or ``target_entropy``, to it over the budget) and ``actor_ema`` (the decay of
+#: :class:`ActorAverage`; the averaged actor is the one evaluated and saved).
+_TRAINER_KEYS = ("target_entropy_end", "actor_ema")
+
+
 def _build(settings: GoalTrainSettings, hp: dict[str, Any]) -> tuple[Any, Any]:
     from stable_baselines3 import PPO, SAC, HerReplayBuffer
     from stable_baselines3.common.vec_env import DummyVecEnv
 
     hp = dict(hp)
     net_arch = hp.pop("net_arch")
+    for key in _TRAINER_KEYS:  # read by train_goal, not SB3 keywords
+        hp.pop(key, None)
     end = hp.pop("learning_rate_end", None)
     if end is not None:  # linear from learning_rate to learning_rate_end over the whole budget
         hp["learning_rate"] = LinearRate(float(hp["learning_rate"]), float(end))
@@ -702,6 +783,17 @@ def train_goal(
             model.load_replay_buffer(str(ckpt / "replay_buffer.pkl"))
         curve = list(state["curve"])
         wall_before = float(state["wall_s"])
+    average = ActorAverage(model, float(hp["actor_ema"])) if hp.get("actor_ema") else None
+    if average is not None and resume and (ckpt / "actor_ema.npz").is_file():
+        average.load(ckpt / "actor_ema.npz")
+    entropy_end = hp.get("target_entropy_end")
+    if entropy_end is not None:
+        if settings.algo != "sac-her":
+            raise ConfigError("target_entropy_end: applies to sac-her only")
+        start_entropy = hp.get("target_entropy", "auto")
+        if start_entropy == "auto":
+            start_entropy = -float(np.prod(env.action_space.shape))
+        entropy_span = (float(start_entropy), float(entropy_end))
     log = (out / "progress.log").open("a")
     start = time.perf_counter()
     best = [max((_score(r) for r in curve), default=None)]
@@ -728,6 +820,8 @@ def train_goal(
         model.save(str(ckpt / "model.zip"))
         if settings.algo == "sac-her":
             model.save_replay_buffer(str(ckpt / "replay_buffer.pkl"))
+        if average is not None:
+            average.save(ckpt / "actor_ema.npz")
         state = {"settings": asdict(settings), "curve": curve, "wall_s": wall()}
         tmp = state_path.with_suffix(".tmp")
         tmp.write_text(json.dumps(state) + "\n")
@@ -740,8 +834,16 @@ def train_goal(
             "policy_steps": steps,
             "control_steps": steps * settings.action_repeat,
             "wall_s": round(wall(), 1),
-            **_evaluate(actor, description, settings),
         }
+        if average is not None:  # the average is evaluated and saved; the last iterate beside
+            raw = _evaluate(actor, description, settings)
+            actor = average.actor()
+            row |= _evaluate(actor, description, settings)
+            row |= {f"raw_{k}": v for k, v in raw.items()}
+        else:
+            row |= _evaluate(actor, description, settings)
+        if entropy_end is not None:
+            row["target_entropy"] = float(model.target_entropy)
         row["eval_s"] = round(time.perf_counter() - t0, 1)
         curve.append(row)
         _write_curve(curve, out / "curve.parquet")
@@ -775,6 +877,11 @@ def train_goal(
             self._next = (model.num_timesteps // every + 1) * every
 
         def _on_step(self) -> bool:
+            if average is not None:
+                average.update()
+            if entropy_end is not None:
+                share = min(1.0, self.num_timesteps / settings.steps)
+                model.target_entropy = entropy_span[0] + (entropy_span[1] - entropy_span[0]) * share
             if self.num_timesteps >= self._next:
                 self._next += every
                 evaluate(int(self.num_timesteps))
@@ -802,7 +909,7 @@ def _write_curve(curve: Sequence[Mapping[str, Any]], path: Path) -> None:
     import pyarrow as pa
     import pyarrow.parquet as pq
 
-    keys = list(curve[0])
+    keys = list(dict.fromkeys(k for r in curve for k in r))
     table = pa.table({k: [r.get(k) for r in curve] for k in keys})
     tmp = path.with_name(path.name + ".tmp")
     pq.write_table(table, tmp)

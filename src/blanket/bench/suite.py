@@ -89,11 +89,22 @@ class BenchSettings:
                         for p in rl
                     ]
             else:
-                policies = [p for p in DEFAULT_POLICIES if POLICIES[p].rl_algo is None] + have
-                # the shipped goal-conditioned weights fit the iiwa reach only
-                if robot != "iiwa" or task != "reach":
-                    policies.remove("sac-her")
-                    left_out.append("sac-her: the shipped weights are for the iiwa reach")
+                from blanket.bench.rl_goal import GOAL_ALGORITHMS, goal_weights_path
+
+                goal = [p for p in DEFAULT_POLICIES if p in GOAL_ALGORITHMS]
+                policies = [
+                    p for p in DEFAULT_POLICIES if POLICIES[p].rl_algo is None and p not in goal
+                ] + have
+                for name in goal:  # the goal-conditioned weights fit the iiwa reach only
+                    weights = goal_weights_path(name, rl_models)
+                    if robot != "iiwa" or task != "reach":
+                        left_out.append(f"{name}: the shipped weights are for the iiwa reach")
+                    elif not weights.is_file():
+                        left_out.append(
+                            f"{name}: no {weights.name} in models/ or --rl-models (docs/rl.md)"
+                        )
+                    else:
+                        policies.append(name)
             if not quick:
                 left_out += [
                     f"{p}: no {p}.zip in --rl-models (train one with blanket train-rl)"
