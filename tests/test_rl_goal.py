@@ -112,6 +112,10 @@ def test_action_repeat_must_be_one_of_the_allowed_values():
         GoalTrainSettings(eval_seed=5).validate()
     with pytest.raises(ConfigError, match="--algo"):
         GoalTrainSettings(algo="sac").validate()
+    for key in ("learning_rate_end", "target_entropy_end", "actor_ema"):
+        for bad in ("x", float("nan"), True):
+            with pytest.raises(ConfigError, match=key):
+                GoalTrainSettings(hyperparameters={key: bad}).defaults()
 
 
 def test_bench_policy_decides_exactly_as_the_training_view():

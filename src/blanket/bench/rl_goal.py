@@ -307,6 +307,14 @@ class GoalTrainSettings(TrainSettings):
                 "net_arch": [256, 256],
             }
         hp.update(self.hyperparameters)
+        for key in ("learning_rate_end", "target_entropy_end", "actor_ema"):
+            value = hp.get(key)
+            if value is not None and (
+                isinstance(value, bool)
+                or not isinstance(value, (int, float))
+                or not math.isfinite(value)
+            ):
+                raise ConfigError(f"{key}: must be a finite number, got {shorten(repr(value))}")
         return hp
 
 
